@@ -1,0 +1,111 @@
+"""The built-in simulated board for `--port sim`: the mock device as its own process on a pty."""
+
+from __future__ import annotations
+
+import os
+import select
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from types import TracebackType
+
+from autotune.errors import EXIT_LINK, UserError
+
+SIM = "sim"
+
+
+@dataclass
+class SimDevice:
+    """A running `python -m mock_device` process; `url` is the pty path to open with pyserial."""
+
+    process: subprocess.Popen[bytes]
+    url: str
+    plant: str
+    speed: float
+    stderr_file: object = field(default=None, repr=False)
+
+    def stderr_text(self) -> str:
+        """What the device process wrote to stderr so far."""
+        f = self.stderr_file
+        if f is None:
+            return ""
+        f.flush()
+        f.seek(0)
+        return f.read().decode(errors="replace")
+
+    def close(self, timeout: float = 3.0) -> None:
+        """Terminate the device process (SIGTERM, then SIGKILL)."""
+        if self.process.poll() is None:
+            self.process.terminate()
+            try:
+                self.process.wait(timeout)
+            except subprocess.TimeoutExpired:
+                self.process.kill()
+                self.process.wait(timeout)
+        if self.process.stdout is not None:
+            self.process.stdout.close()
+
+    def __enter__(self) -> SimDevice:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+
+def start_sim_device(
+    plant: str = "cart-wheel",
+    speed: float = 1.0,
+    faults: str | None = None,
+    seed: int | None = None,
+    baud: int | None = None,
+    startup_timeout: float = 10.0,
+) -> SimDevice:
+    """Start the simulated board on a pseudo-terminal and return once its port is known.
+
+    `plant` is a built-in scenario name or a plant TOML path; `speed` runs simulated time that many
+    times faster than the wall clock.
+    """
+    cmd = [sys.executable, "-m", "mock_device", "--plant", plant, "--pty", "--speed", str(speed)]
+    if faults:
+        cmd += ["--faults", faults]
+    if seed is not None:
+        cmd += ["--seed", str(seed)]
+    if baud is not None:
+        cmd += ["--baud", str(baud)]
+    errfile = tempfile.TemporaryFile()  # noqa: SIM115 (lives as long as the device)
+    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=errfile)
+    assert proc.stdout is not None
+    deadline = time.monotonic() + startup_timeout
+    line = b""
+    fd = proc.stdout.fileno()
+    while not line.endswith(b"\n"):
+        remaining = deadline - time.monotonic()
+        if remaining <= 0 or proc.poll() is not None:
+            break
+        ready, _, _ = select.select([fd], [], [], remaining)
+        if ready:
+            chunk = os.read(fd, 1)
+            if not chunk:
+                break
+            line += chunk
+    url = line.decode(errors="replace").strip()
+    if not url:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        errfile.seek(0)
+        reason = errfile.read().decode(errors="replace").strip().splitlines()
+        raise UserError(
+            "the simulated board did not start"
+            + (f": {reason[-1]}" if reason else " (no port announced within "
+               f"{startup_timeout:.0f} s)"),
+            exit_code=EXIT_LINK,
+        )
+    return SimDevice(process=proc, url=url, plant=plant, speed=speed, stderr_file=errfile)

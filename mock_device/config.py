@@ -1,0 +1,271 @@
+"""Plant file (TOML) for the mock device: loading, validation, defaults.
+
+A plant file has these tables (every table and key is optional; defaults shown)::
+
+    [plant]
+    num = [1.0]          # numerator, highest power of s first (as scipy.signal)
+    den = [1.0, 1.0]     # denominator, same order; ending in 0 = integrating plant
+    delay = 0.0          # dead time, s
+    load = 0.0           # constant disturbance at the plant input, output units
+    [actuator]
+    limit = 100.0        # drive saturates at +/- limit, output units
+    deadband = 0.0       # |drive| <= deadband moves nothing (dead zone), output units
+    [sensor]
+    noise = 0.0          # standard deviation of the PV noise, PV units
+    resolution = 0.0     # quantisation step, PV units; 0 = none
+    offset = 0.0         # PV at rest, PV units
+    [device]
+    period = 0.01        # device tick, s
+    name = "mock-device" # reported in the handshake (at most 16 bytes UTF-8)
+    max_output = 100.0   # the device refuses output limits above this, output units
+    watchdog = 0.25      # watchdog period used when SetLimits gives watchdog_ms = 0, s
+    relay = true         # offers the device-side relay
+    pid = true           # offers the device-side PID
+    seed = 0             # seed of the sensor noise generator (--seed overrides)
+    [faults]             # same keys as --faults (see mock_device.faults)
+
+Unknown tables or keys and wrong types raise MockConfigError naming the file and the key.
+Built-in scenarios (``cart-wheel``, ``mast-pan``) live in mock_device/scenarios/.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from mock_device.faults import FaultSpec, FaultSpecError, fault_spec_from_mapping
+
+__all__ = [
+    "ActuatorConfig",
+    "DeviceConfig",
+    "MockConfig",
+    "MockConfigError",
+    "PlantConfig",
+    "SCENARIOS",
+    "SensorConfig",
+    "load_config",
+    "parse_config",
+]
+
+SCENARIOS = ("cart-wheel", "mast-pan")
+
+
+class MockConfigError(ValueError):
+    """Bad plant file: ``"<file>: [table] key: problem"``."""
+
+    def __init__(self, source: str, key: str | None, problem: str) -> None:
+        where = f"{source}: {key}: " if key else f"{source}: "
+        super().__init__(where + problem)
+        self.source, self.key, self.problem = source, key, problem
+
+
+@dataclass(frozen=True)
+class PlantConfig:
+    """Transfer function num/den (s), dead time ``delay`` (s), ``load`` (output units)."""
+
+    num: tuple[float, ...] = (1.0,)
+    den: tuple[float, ...] = (1.0, 1.0)
+    delay: float = 0.0
+    load: float = 0.0
+
+
+@dataclass(frozen=True)
+class ActuatorConfig:
+    """Saturation ``limit`` and dead zone ``deadband``, output units."""
+
+    limit: float = 100.0
+    deadband: float = 0.0
+
+
+@dataclass(frozen=True)
+class SensorConfig:
+    """Noise std, quantisation step and rest offset, PV units."""
+
+    noise: float = 0.0
+    resolution: float = 0.0
+    offset: float = 0.0
+
+
+@dataclass(frozen=True)
+class DeviceConfig:
+    """Tick ``period`` (s), handshake ``name``, ``max_output`` (output units), default
+    ``watchdog`` (s), device-side ``relay``/``pid`` capabilities, noise ``seed``."""
+
+    period: float = 0.01
+    name: str = "mock-device"
+    max_output: float = 100.0
+    watchdog: float = 0.25
+    relay: bool = True
+    pid: bool = True
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class MockConfig:
+    """Everything the mock device needs; ``source`` names the file or scenario."""
+
+    plant: PlantConfig = field(default_factory=PlantConfig)
+    actuator: ActuatorConfig = field(default_factory=ActuatorConfig)
+    sensor: SensorConfig = field(default_factory=SensorConfig)
+    device: DeviceConfig = field(default_factory=DeviceConfig)
+    faults: FaultSpec = field(default_factory=FaultSpec)
+    source: str = "<defaults>"
+
+
+# key -> kind: "float", "floats", "str", "bool", "int"
+_SCHEMA: dict[str, dict[str, str]] = {
+    "plant": {"num": "floats", "den": "floats", "delay": "float", "load": "float"},
+    "actuator": {"limit": "float", "deadband": "float"},
+    "sensor": {"noise": "float", "resolution": "float", "offset": "float"},
+    "device": {
+        "period": "float",
+        "name": "str",
+        "max_output": "float",
+        "watchdog": "float",
+        "relay": "bool",
+        "pid": "bool",
+        "seed": "int",
+    },
+}
+
+
+def _typed(source: str, key: str, kind: str, value: Any) -> Any:
+    def bad(expected: str) -> MockConfigError:
+        return MockConfigError(source, key, f"expected {expected}, got {value!r}")
+
+    if kind == "float":
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise bad("a number")
+        v = float(value)
+        if not math.isfinite(v):
+            raise MockConfigError(source, key, f"must be finite, got {value!r}")
+        return v
+    if kind == "floats":
+        if not isinstance(value, list) or not value:
+            raise bad("a non-empty list of numbers")
+        out = []
+        for item in value:
+            if isinstance(item, bool) or not isinstance(item, int | float):
+                raise bad("a non-empty list of numbers")
+            if not math.isfinite(float(item)):
+                raise MockConfigError(source, key, f"must be finite, got {value!r}")
+            out.append(float(item))
+        return tuple(out)
+    if kind == "str":
+        if not isinstance(value, str):
+            raise bad("a string")
+        return value
+    if kind == "bool":
+        if not isinstance(value, bool):
+            raise bad("true or false")
+        return value
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise bad("an integer")
+        return value
+    raise AssertionError(kind)
+
+
+def parse_config(data: dict[str, Any], source: str = "<plant file>") -> MockConfig:
+    """Validate a parsed TOML document and build a MockConfig (errors name source and key)."""
+    sections: dict[str, dict[str, Any]] = {}
+    faults = FaultSpec()
+    for table, content in data.items():
+        if table == "faults":
+            if not isinstance(content, dict):
+                raise MockConfigError(source, "[faults]", "expected a table")
+            try:
+                faults = fault_spec_from_mapping(content)
+            except FaultSpecError as exc:
+                raise MockConfigError(source, f"[faults] {exc}".split(":")[0], str(exc).split(": ", 1)[-1]) from exc
+            continue
+        if table not in _SCHEMA:
+            raise MockConfigError(
+                source, f"[{table}]", f"unknown table (known: {', '.join([*_SCHEMA, 'faults'])})"
+            )
+        if not isinstance(content, dict):
+            raise MockConfigError(source, f"[{table}]", "expected a table")
+        schema = _SCHEMA[table]
+        values: dict[str, Any] = {}
+        for key, value in content.items():
+            name = f"[{table}] {key}"
+            if key not in schema:
+                raise MockConfigError(
+                    source, name, f"unknown key (known in [{table}]: {', '.join(schema)})"
+                )
+            values[key] = _typed(source, name, schema[key], value)
+        sections[table] = values
+
+    plant = PlantConfig(**sections.get("plant", {}))
+    actuator = ActuatorConfig(**sections.get("actuator", {}))
+    sensor = SensorConfig(**sections.get("sensor", {}))
+    device = DeviceConfig(**sections.get("device", {}))
+    _check(source, plant, actuator, sensor, device)
+    return MockConfig(plant, actuator, sensor, device, faults, source)
+
+
+def _check(
+    source: str,
+    plant: PlantConfig,
+    actuator: ActuatorConfig,
+    sensor: SensorConfig,
+    device: DeviceConfig,
+) -> None:
+    def err(key: str, problem: str) -> MockConfigError:
+        return MockConfigError(source, key, problem)
+
+    if plant.den[0] == 0.0:
+        raise err("[plant] den", "leading coefficient must not be 0")
+    if len(plant.num) > len(plant.den):
+        raise err("[plant] num", "more coefficients than den: the plant must be proper")
+    if plant.delay < 0.0:
+        raise err("[plant] delay", f"must be >= 0 s, got {plant.delay}")
+    if actuator.limit <= 0.0:
+        raise err("[actuator] limit", f"must be > 0, got {actuator.limit}")
+    if not 0.0 <= actuator.deadband < actuator.limit:
+        raise err("[actuator] deadband", f"must be in [0, limit), got {actuator.deadband}")
+    if sensor.noise < 0.0:
+        raise err("[sensor] noise", f"must be >= 0, got {sensor.noise}")
+    if sensor.resolution < 0.0:
+        raise err("[sensor] resolution", f"must be >= 0, got {sensor.resolution}")
+    if not 1e-4 <= device.period <= 1.0:
+        raise err("[device] period", f"must be in [0.0001, 1] s, got {device.period}")
+    if device.max_output <= 0.0:
+        raise err("[device] max_output", f"must be > 0, got {device.max_output}")
+    if not 0.0 < device.watchdog <= 65.535:
+        raise err("[device] watchdog", f"must be in (0, 65.535] s, got {device.watchdog}")
+    if len(device.name.encode("utf-8")) > 16:
+        raise err("[device] name", "at most 16 bytes (UTF-8)")
+    if device.seed < 0:
+        raise err("[device] seed", f"must be >= 0, got {device.seed}")
+
+
+def load_config(plant: str | Path) -> MockConfig:
+    """Load a plant file, or a built-in scenario by name (``cart-wheel``, ``mast-pan``)."""
+    name = str(plant)
+    if name in SCENARIOS:
+        ref = resources.files("mock_device") / "scenarios" / f"{name}.toml"
+        text = ref.read_text(encoding="utf-8")
+        source = f"scenario {name}"
+    else:
+        path = Path(plant)
+        try:
+            text = path.read_text(encoding="utf-8")
+        except FileNotFoundError as exc:
+            raise MockConfigError(
+                name, None, f"no such file (built-in scenarios: {', '.join(SCENARIOS)})"
+            ) from exc
+        except OSError as exc:
+            raise MockConfigError(name, None, f"cannot read: {exc.strerror or exc}") from exc
+        except UnicodeDecodeError as exc:
+            raise MockConfigError(name, None, "not UTF-8 text") from exc
+        source = name
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise MockConfigError(source, None, f"not valid TOML: {exc}") from exc
+    return parse_config(data, source)
