@@ -181,7 +181,7 @@ def parse_config(data: dict[str, Any], source: str = "<plant file>") -> MockConf
             try:
                 faults = fault_spec_from_mapping(content)
             except FaultSpecError as exc:
-                raise MockConfigError(source, f"[faults] {exc}".split(":")[0], str(exc).split(": ", 1)[-1]) from exc
+                raise MockConfigError(source, f"[faults] {exc.key}", exc.problem) from exc
             continue
         if table not in _SCHEMA:
             raise MockConfigError(

@@ -43,7 +43,11 @@ __all__ = ["FaultSpec", "FaultSpecError", "LinkFaults", "DeviceFaults", "parse_f
 
 
 class FaultSpecError(ValueError):
-    """A bad fault specification; the message names the key."""
+    """A bad fault specification; the message (``"key: problem"``) names the key."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.key, _, self.problem = message.partition(": ")
 
 
 @dataclass(frozen=True)

@@ -21,11 +21,31 @@ from collections.abc import Sequence
 
 import numpy as np
 from scipy.linalg import expm
-from scipy.signal import tf2ss
 
 __all__ = ["Actuator", "LtiPlant", "Sensor", "SimulatedAxis"]
 
 _EPS_T = 1e-12  # seconds: segments shorter than this are treated as empty
+
+
+def _controllable_form(
+    num: np.ndarray, den: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """State-space (A, B, C, D) of num/den in controllable canonical form (as scipy's tf2ss).
+
+    Built here rather than with scipy.signal so that the device process starts quickly.
+    """
+    n = den.size - 1
+    a = den / den[0]
+    b = np.concatenate([np.zeros(n + 1 - num.size), num]) / den[0]
+    d = float(b[0])
+    amat = np.zeros((n, n))
+    amat[0, :] = -a[1:]
+    if n > 1:
+        amat[1:, :-1] = np.eye(n - 1)
+    bmat = np.zeros((n, 1))
+    bmat[0, 0] = 1.0
+    cmat = (b[1:] - d * a[1:]).reshape(1, -1)
+    return amat, bmat, cmat, d
 
 
 class LtiPlant:
@@ -76,11 +96,7 @@ class LtiPlant:
             self._c = np.zeros((1, 0))
             self._d = float(num_a[-1] / den_a[0])
         else:
-            a, b, c, d = tf2ss(num_a, den_a)
-            self._a = np.asarray(a, dtype=float)
-            self._b = np.asarray(b, dtype=float).reshape(-1, 1)
-            self._c = np.asarray(c, dtype=float).reshape(1, -1)
-            self._d = float(np.asarray(d).ravel()[0]) if np.size(d) else 0.0
+            self._a, self._b, self._c, self._d = _controllable_form(num_a, den_a)
         self._b_vec = self._b[:, 0]
         self._c_vec = self._c[0, :]
         self._cache: dict[float, tuple[np.ndarray, np.ndarray]] = {}
@@ -109,7 +125,7 @@ class LtiPlant:
 
     @property
     def state(self) -> np.ndarray:
-        """Copy of the state vector (controllable canonical form of scipy.signal.tf2ss)."""
+        """Copy of the state vector (controllable canonical form, as scipy.signal.tf2ss)."""
         return self._x.copy()
 
     @property

@@ -1,0 +1,95 @@
+"""`autotune demo`: the whole tuning job against the built-in simulated board.
+
+Starts the simulated board (autotune.simdevice: `python -m mock_device` on a pseudo-terminal) in
+the background and runs start screen, relay, proposals, confirmation step and accept against it,
+exactly as against a real board on a serial port. `--yes` runs it unattended.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from autotune.errors import UserError
+
+HELP = "run the whole tuning job against the built-in simulated board (no hardware needed)"
+
+PLANTS = ("cart-wheel", "mast-pan")
+
+# Demo settings per scenario (invented demo data): limits and relay targets that suit each plant.
+# cart-wheel: wheel speed in rad/s, output in % duty; mast-pan: pan angle in degrees, % duty.
+DEMO_CONFIG: dict[str, dict[str, object]] = {
+    "cart-wheel": {
+        "safety.output_limit": 40.0,
+        "safety.pv_window": 3.0,
+        "relay.target_amplitude": 0.4,
+        "design.max_overshoot": 60.0,
+        "step.size": 1.0,
+    },
+    "mast-pan": {
+        "safety.output_limit": 40.0,
+        "safety.pv_window": 10.0,
+        "relay.target_amplitude": 1.0,
+        "design.max_overshoot": 60.0,
+        "step.size": 3.0,
+    },
+}
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.formatter_class = argparse.RawDescriptionHelpFormatter
+    p.epilog = (
+        "Keys: Space, Esc, q or Ctrl-C stop the motor on every screen; the start screen waits\n"
+        "for Y. On the gain choices: 1-9 or Tab choose, m/M lower/raise the Ms target, d/D\n"
+        "lower/raise the detune factor, Enter runs the step. On the step result: a accept,\n"
+        "d detune, o other proposal, r repeat. Exit codes as for `tune`; 0 once gains are\n"
+        "accepted and written."
+    )
+    p.add_argument("--plant", choices=PLANTS, default="cart-wheel",
+                   help="simulated scenario: a cart's wheel-speed loop or a camera mast's "
+                        "pan-angle loop (default: cart-wheel)")
+    p.add_argument("--yes", action="store_true",
+                   help="run unattended: no questions, default proposal, accept a passing step")
+    p.add_argument("--out", metavar="DIR",
+                   help="directory for the session, result and gains files (default: "
+                        "./autotune-sessions/demo-YYYYmmdd-HHMMSS)")
+    p.add_argument("--speed", type=float, default=1.0, metavar="X",
+                   help="simulated time runs X times faster than the wall clock (default: 1)")
+    p.add_argument("--config", metavar="FILE",
+                   help="TOML config file; its values replace the demo's (default: none)")
+    p.add_argument("--loop", choices=("host", "device"),
+                   help="where the relay and PID run (default: device, as the board offers it)")
+    p.add_argument("--seed", type=int, metavar="N", help="noise seed of the simulated board")
+
+
+def build_config(args: argparse.Namespace) -> object:
+    """The demo's config: the scenario's settings, then the config file, then the options."""
+    from autotune.config import config_from_dict, load_config, with_overrides
+
+    overrides: dict[str, object] = dict(DEMO_CONFIG[args.plant])
+    cfg = load_config(args.config) if args.config else config_from_dict({}, "<demo>")
+    if args.config:
+        overrides = {}
+    overrides["connection.plant"] = args.plant
+    overrides["connection.speed"] = args.speed
+    if args.loop:
+        overrides["connection.loop"] = args.loop
+    return with_overrides(cfg, overrides)
+
+
+def run(args: argparse.Namespace) -> int:
+    from autotune.commands.tune import default_out_dir
+    from autotune.simdevice import SIM
+    from autotune.ui.app import JobSettings, run_job
+
+    if not args.speed > 0:
+        raise UserError("--speed must be a positive number")
+    cfg = build_config(args)
+    out_dir = Path(args.out) if args.out else default_out_dir("demo")
+    out_dir.mkdir(parents=True, exist_ok=True)
+    # port "sim": each powered stage starts the simulated board (autotune.simdevice, a
+    # `python -m mock_device` process on a pty) in the background and ends it with the stage.
+    settings = JobSettings(port=SIM, out_dir=out_dir, yes=args.yes,
+                           label=f"simulated {args.plant} board on a pty", simulated=True,
+                           speed=args.speed, plant=args.plant, seed=args.seed)
+    return run_job(cfg, settings)

@@ -1,0 +1,501 @@
+"""`autotune step`: prove PID gains on the loop with one setpoint step (powers the motor).
+
+Loads the gains into the board (device PID) or runs autotune.pid on the host, holds the start
+value, steps the setpoint, records until the PV settles (or a timeout), optionally applies a load
+offset, returns to the start value; then compares the measured figures with the predicted ones,
+judges them on the spec, and offers: accept (writes a gains file), detune, another proposal,
+repeat.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TextIO
+
+from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_overrides
+from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, UserError
+from autotune.pid import PidGains
+from autotune.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
+
+HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
+
+_S, _ST = SafetyConfig(), StepConfig()
+DEFAULT_MAX_SATURATION = 0.25  # s the output may sit at its limit (common practice, no source)
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.formatter_class = argparse.RawDescriptionHelpFormatter
+    p.epilog = (
+        "Gains come from --kp/--ki/--kd (parallel form) or from a tune result (--from-result,\n"
+        "--proposal; explicit --kp/--ki/--kd override its values). Options override the config\n"
+        "file, which overrides the built-in defaults shown. Abort at any time with Space, Esc,\n"
+        "q or Ctrl-C; keep a physical power cut-off within reach.\n"
+        "Exit codes: 0 the step meets the spec, 1 it does not / limit / fault, 2 usage or\n"
+        "configuration, 3 aborted, 4 link lost, 5 zero output not confirmed."
+    )
+    p.add_argument("--port", metavar="URL|sim",
+                   help="serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, "
+                        "or 'sim' for the built-in simulated board (default: connection.port)")
+    p.add_argument("--config", metavar="FILE", help="TOML config file (default: built-in "
+                   "defaults)")
+    p.add_argument("--axis", type=int, metavar="N", help="axis index on the board (default: 0)")
+    p.add_argument("--kp", type=float, help="proportional gain, output units per PV unit")
+    p.add_argument("--ki", type=float, help="integral gain, output units per (PV unit s) "
+                   "(default 0)")
+    p.add_argument("--kd", type=float, help="derivative gain, output units s per PV unit "
+                   "(default 0)")
+    p.add_argument("--from-result", metavar="FILE", help="result.json of a tune run: take the "
+                   "gains and predictions of a proposal from it")
+    p.add_argument("--proposal", metavar="NAME", help="proposal name in --from-result "
+                   "(default: the default proposal, else the first)")
+    p.add_argument("--size", type=float, metavar="S",
+                   help="setpoint step, PV units, signed (default: step.size, else "
+                        "design.step_size, else relay.target_amplitude of the config); kept "
+                        "to at most 60%% of the PV window")
+    p.add_argument("--loop", choices=("host", "device"),
+                   help="where the PID runs (default: device when the board offers it)")
+    p.add_argument("--output-limit", type=float, metavar="U",
+                   help=f"largest |output|, output units (default: {_S.output_limit:g})")
+    p.add_argument("--pv-window", type=float, metavar="W",
+                   help=f"the PV may move at most W from its start value, PV units "
+                        f"(default: {_S.pv_window:g})")
+    p.add_argument("--hold", type=float, metavar="S",
+                   help=f"hold the start value this long before the step, s "
+                        f"(default: {_ST.settle_time:g})")
+    p.add_argument("--timeout", type=float, metavar="S",
+                   help=f"longest wait for the PV to settle after each change, s "
+                        f"(default: {_ST.duration:g})")
+    p.add_argument("--load-offset", type=float, metavar="U", default=0.0,
+                   help="load-disturbance test: output offset added at the device once the step "
+                        "has settled, output units (default: 0, no load test)")
+    p.add_argument("--filter-n", type=float, metavar="N", default=10.0,
+                   help="derivative filter: Tf = Td/N (default: 10)")
+    p.add_argument("--setpoint-weight", type=float, metavar="B", default=1.0,
+                   help="setpoint weight of the proportional term, 0..1 (default: 1)")
+    p.add_argument("--tracking-time", type=float, metavar="S",
+                   help="back-calculation anti-windup tracking time, s (default: clamping)")
+    p.add_argument("--max-overshoot", type=float, metavar="P",
+                   help="spec: largest overshoot, percent (default: design.max_overshoot; "
+                        "none)")
+    p.add_argument("--max-settling-time", type=float, metavar="S",
+                   help="spec: largest 2%% settling time, s (default: design.max_settling_time; "
+                        "none)")
+    p.add_argument("--max-saturation", type=float, metavar="S",
+                   default=DEFAULT_MAX_SATURATION,
+                   help=f"spec: longest time at the output limit, s "
+                        f"(default: {DEFAULT_MAX_SATURATION:g})")
+    p.add_argument("--detune", type=float, metavar="F", default=DEFAULT_DETUNE,
+                   help=f"factor the detune action scales all gains by (default: "
+                        f"{DEFAULT_DETUNE:g})")
+    p.add_argument("--retries", type=int, metavar="N", default=0,
+                   help="with --yes: when the verdict asks to detune, detune and repeat up to "
+                        "N times (default: 0)")
+    p.add_argument("--gains-file", metavar="FILE",
+                   help="where accepted gains are written (default: OUT/gains.toml)")
+    p.add_argument("--store", action="store_true",
+                   help="on accept, also store the gains on the board (needs its store-gains "
+                        "capability)")
+    p.add_argument("--yes", action="store_true",
+                   help="no questions: accept when the step meets the spec (for scripts)")
+    p.add_argument("--out", metavar="DIR",
+                   help="directory for session.jsonl, result.json and gains.toml (default: "
+                        "./autotune-sessions/step-YYYYmmdd-HHMMSS)")
+    p.add_argument("--plant", metavar="NAME",
+                   help="for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file")
+    p.add_argument("--speed", type=float, metavar="X",
+                   help="for --port sim: simulated time runs X times faster (default: 1)")
+    p.add_argument("--faults", metavar="SPEC", help="for --port sim: fault injection spec")
+    p.add_argument("--seed", type=int, metavar="N", help="for --port sim: noise seed")
+
+
+# ---------------------------------------------------------------------- gains and predictions
+@dataclass
+class Choice:
+    """The gains to try now, with their name and predictions; `pool` is every proposal known."""
+
+    name: str
+    gains: PidGains
+    predicted: dict[str, Any] = field(default_factory=dict)
+    pool: list[dict[str, Any]] = field(default_factory=list)
+    model: dict[str, Any] | None = None
+    pid_extra: dict[str, float] = field(default_factory=dict)
+
+
+def _num(v: Any, what: str, path: str) -> float:
+    if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
+        raise UserError(f"{path}: {what}: expected a number, got {v!r}", exit_code=EXIT_USAGE)
+    return float(v)
+
+
+def pick_proposal(result: dict[str, Any], name: str | None, path: str) -> dict[str, Any]:
+    """The proposal `name` (or the default one, else the first) of a result.json dict."""
+    props = result.get("proposals")
+    if not isinstance(props, list) or not props:
+        raise UserError(f"{path}: has no proposals", exit_code=EXIT_USAGE)
+    if name is None:
+        for p in props:
+            if isinstance(p, dict) and p.get("default"):
+                return p
+        return props[0]
+    for p in props:
+        if isinstance(p, dict) and p.get("name") == name:
+            return p
+    names = ", ".join(str(p.get("name")) for p in props if isinstance(p, dict))
+    raise UserError(f"{path}: no proposal named {name!r} (there are: {names})",
+                    exit_code=EXIT_USAGE)
+
+
+def choose_gains(args: argparse.Namespace) -> Choice:
+    """Gains from --kp/--ki/--kd and/or --from-result/--proposal."""
+    if args.from_result is None and args.kp is None:
+        raise UserError("no gains given: use --kp (and --ki, --kd) or --from-result FILE",
+                        exit_code=EXIT_USAGE)
+    if args.proposal is not None and args.from_result is None:
+        raise UserError("--proposal needs --from-result FILE", exit_code=EXIT_USAGE)
+    pool: list[dict[str, Any]] = []
+    model = None
+    name, predicted = "manual", {}
+    kp = ki = kd = None
+    extra: dict[str, float] = {}
+    if args.from_result is not None:
+        from autotune.recorder import read_result
+
+        res = read_result(args.from_result)
+        prop = pick_proposal(res, args.proposal, args.from_result)
+        pool = [p for p in res.get("proposals", []) if isinstance(p, dict)]
+        name = str(prop.get("name", "proposal"))
+        kp = _num(prop.get("kp"), f"proposal {name} kp", args.from_result)
+        ki = _num(prop.get("ki", 0.0), f"proposal {name} ki", args.from_result)
+        kd = _num(prop.get("kd", 0.0), f"proposal {name} kd", args.from_result)
+        predicted = dict(prop.get("predicted") or {})
+        model = res.get("model") if isinstance(res.get("model"), dict) else None
+        for key in ("deriv_filter_n", "setpoint_weight", "tracking_time"):
+            if isinstance(prop.get(key), int | float) and not isinstance(prop.get(key), bool):
+                extra[key] = float(prop[key])
+    if args.kp is not None:
+        if args.from_result is not None:
+            name = f"{name} (edited)" if (args.kp, args.ki, args.kd) != (kp, ki, kd) else name
+            predicted = {} if name.endswith("(edited)") else predicted
+        kp = args.kp
+        ki = args.ki if args.ki is not None else (ki if args.from_result else 0.0)
+        kd = args.kd if args.kd is not None else (kd if args.from_result else 0.0)
+    assert kp is not None and ki is not None and kd is not None
+    for what, v in (("kp", kp), ("ki", ki), ("kd", kd)):
+        if not math.isfinite(v):
+            raise UserError(f"--{what} must be a finite number", exit_code=EXIT_USAGE)
+    return Choice(name, PidGains(kp, ki, kd), predicted, pool, model, extra)
+
+
+def step_size(cfg: Config, args: argparse.Namespace) -> float:
+    """--size, else step.size, else design.step_size, else relay.target_amplitude (PV units)."""
+    for v in (args.size, cfg.step.size, cfg.design.step_size):
+        if v is not None:
+            if v == 0 or not math.isfinite(v):
+                raise UserError("--size must be a non-zero number (PV units)",
+                                exit_code=EXIT_USAGE)
+            return float(v)
+    return float(cfg.relay.target_amplitude)
+
+
+def _overrides(args: argparse.Namespace) -> dict[str, object]:
+    return {
+        "connection.port": args.port,
+        "connection.axis": args.axis,
+        "connection.loop": args.loop,
+        "connection.plant": args.plant,
+        "connection.speed": args.speed,
+        "safety.output_limit": args.output_limit,
+        "safety.pv_window": args.pv_window,
+        "step.settle_time": args.hold,
+        "step.duration": args.timeout,
+    }
+
+
+# ---------------------------------------------------------------------- one powered batch
+@dataclass
+class Batch:
+    """What one powered run produced: step outcomes in order, the run's outcome."""
+
+    outcomes: list[Any] = field(default_factory=list)
+    run_outcome: Any = None
+    session: Path | None = None
+    stored: bool | None = None
+
+
+def _predict(choice: Choice, gains: PidGains, settings: Any, ts: float, loop: str,
+             size: float, timeout: float) -> dict[str, Any]:
+    """Predicted figures for detuned/edited gains from the tune result's model, if any."""
+    from autotune.steptest import model_from_dict, predict_step
+
+    if choice.model is None:
+        return {}
+    plant = model_from_dict(choice.model)
+    if plant is None:
+        return {}
+    try:
+        pid = settings.pid_settings(gains, ts)
+        return predict_step(plant, pid, size, timeout, extra_ticks=1 if loop == "host" else 0)
+    except (ValueError, ArithmeticError):
+        return {}
+
+
+def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Path,
+              spec: StepSpec, stdout: TextIO, retries: int) -> Batch:
+    """Connect, confirm, arm, run the step (and automatic detuned repeats), stop."""
+    from autotune.runner_base import PoweredRun, RunOptions
+    from autotune.steptest import (
+        StepCandidate,
+        StepEnded,
+        StepPlan,
+        StepSettings,
+        fit_step_to_window,
+        run_step,
+    )
+
+    options = RunOptions(port=str(cfg.connection.port), yes=args.yes, out_dir=out_dir,
+                         plant=cfg.connection.plant, speed=cfg.connection.speed,
+                         faults=args.faults, seed=args.seed, verb="step", stdout=stdout)
+    batch = Batch()
+    size, note = fit_step_to_window(step_size(cfg, args), cfg.safety.pv_window)
+    run = PoweredRun(cfg, options, header_extra={"step_request": {
+        "proposal": choice.name, "kp": choice.gains.kp, "ki": choice.gains.ki,
+        "kd": choice.gains.kd, "size": size, "load_offset": args.load_offset}})
+    with run:
+        info = run.info
+        loop = cfg.connection.loop
+        if loop == "auto":
+            loop = "device" if info.has_device_pid else "host"
+        if loop == "device" and not info.has_device_pid:
+            raise UserError("the board does not offer a device PID: use --loop host",
+                            exit_code=EXIT_USAGE)
+        if loop == "host" and not info.has_host_loop:
+            raise UserError("the board does not offer host-loop control: use --loop device",
+                            exit_code=EXIT_USAGE)
+        if note:
+            run.say(note)
+        plan = StepPlan(size=size, hold_time=cfg.step.settle_time, timeout=cfg.step.duration,
+                        load_offset=args.load_offset)
+        settings = StepSettings(
+            plan=plan, loop=loop, output_limit=cfg.safety.output_limit,
+            deriv_filter_n=choice.pid_extra.get("deriv_filter_n", args.filter_n),
+            setpoint_weight=choice.pid_extra.get("setpoint_weight", args.setpoint_weight),
+            tracking_time=choice.pid_extra.get("tracking_time", args.tracking_time),
+            bias=cfg.relay.bias, spec=spec,
+        )
+        run.arm({"step_plan": {"size": size, "hold_time": plan.hold_time,
+                               "timeout": plan.timeout, "load_offset": plan.load_offset,
+                               "loop": loop}})
+        gains, name, predicted = choice.gains, choice.name, dict(choice.predicted)
+        ts = float(info.tick)
+        if not predicted:
+            predicted = _predict(choice, gains, settings, ts, loop, size, plan.timeout)
+        for attempt in range(retries + 1):
+            run.say(f"step {size:+g} PV units with {name}: kp {gains.kp:.4g}, ki {gains.ki:.4g}"
+                    f"/s, kd {gains.kd:.4g} s ({loop} loop); abort: Space, Esc, q, Ctrl-C")
+            cand = StepCandidate(name, gains, predicted)
+            try:
+                outcome = run_step(run, cand, settings)
+            except StepEnded as ended:
+                batch.outcomes.append(ended.outcome)
+                raise ended.ended from None
+            batch.outcomes.append(outcome)
+            v = outcome.verdict
+            if v is None or v.action is not Action.DETUNE or attempt == retries:
+                break
+            gains = detune(gains, args.detune)
+            name = f"{choice.name} x{args.detune ** (attempt + 1):.3g}"
+            predicted = _predict(choice, gains, settings, ts, loop, size, plan.timeout)
+            run.say(f"verdict: {v.reason}; detuning by {args.detune:g} and repeating")
+        last = batch.outcomes[-1] if batch.outcomes else None
+        if (args.store and args.yes and last is not None and last.verdict is not None
+                and last.verdict.passed):
+            batch.stored = _store(run, last.candidate.gains)
+    batch.run_outcome = run.outcome
+    run.end_session()
+    batch.session = out_dir / "session.jsonl"
+    return batch
+
+
+def _store(run: Any, gains: PidGains) -> bool:
+    """Store the gains on the board (StoreGains); False when it cannot."""
+    from protocol.messages import StoreGains
+
+    if not run.info.has_store_gains:
+        run.say("the board cannot store gains (no store-gains capability); not stored")
+        return False
+    run.request(StoreGains(run.axis, gains.kp, gains.ki, gains.kd))
+    run.event("gains_stored", {"kp": gains.kp, "ki": gains.ki, "kd": gains.kd})
+    run.say("gains stored on the board")
+    return True
+
+
+# ---------------------------------------------------------------------- reporting
+def describe(outcome: Any) -> str:
+    """Lines for the operator: figures side by side, load test, verdict."""
+    lines: list[str] = []
+    if outcome.metrics is not None:
+        lines.append(format_comparison(outcome.rows))
+        if not outcome.settled:
+            lines.append("the PV did not settle within the timeout")
+    if outcome.load is not None:
+        lf = outcome.load
+        rec = "-" if lf.recovery_time is None else f"{lf.recovery_time:.3g} s"
+        lines.append(f"load offset {lf.offset:g}: peak deviation {lf.peak_deviation:+.4g} PV "
+                     f"units at {lf.time_to_peak:.3g} s, recovery {rec}")
+    if outcome.verdict is not None:
+        v = outcome.verdict
+        lines.append(("PASS: " if v.passed else "FAIL: ") + v.reason
+                     + ("" if v.passed else f" (suggested: {v.action.value})"))
+    return "\n".join(lines)
+
+
+def write_outputs(out_dir: Path, outcomes: list[Any], end_reason: str,
+                  gains_file: Path | None, sessions: list[Path]) -> Path:
+    """result.json with the `step` field (the last step) and every attempt."""
+    from autotune.recorder import write_result
+
+    result: dict[str, Any] = {
+        "verb": "step",
+        "end_reason": end_reason,
+        "step": outcomes[-1].step_field() if outcomes else None,
+        "attempts": [o.step_field() for o in outcomes],
+        "gains_file": None if gains_file is None else str(gains_file),
+        "sessions": [str(s) for s in sessions],
+    }
+    return write_result(out_dir / "result.json", result)
+
+
+def accept(outcome: Any, path: Path, session: Path | None, stdout: TextIO,
+           device: dict[str, Any]) -> Path:
+    """Write the gains file for `outcome` and print the code-ready block."""
+    from autotune import __version__
+    from autotune.gainsfile import GainsRecord, code_block, write_gains_file
+
+    measured: dict[str, Any] = {k: v for k, v in outcome.step_field().items()
+                                if k in ("overshoot", "rise_time", "settling_time",
+                                         "steady_state_error", "iae", "peak_output",
+                                         "time_saturated", "settle_band")}
+    if outcome.load is not None:
+        measured["load"] = outcome.load.to_dict()
+    rec = GainsRecord.from_settings(
+        outcome.pid, loop_mode=outcome.loop, axis=device.get("axis", 0),
+        output_limit=outcome.pid.out_max if math.isfinite(outcome.pid.out_max) else None,
+        origin={"session": None if session is None else str(session),
+                "proposal": outcome.candidate.name, "device": device.get("name"),
+                "firmware": device.get("firmware"), "tool_version": __version__},
+        measured=measured,
+        predicted={k: v for k, v in outcome.candidate.predicted.items()
+                   if isinstance(v, int | float) and not isinstance(v, bool)},
+    )
+    p = write_gains_file(path, rec)
+    print(f"gains written to {p}", file=stdout)
+    print(code_block(rec), file=stdout)
+    return p
+
+
+def _ask(stdout: TextIO, stdin: Any, prompt: str) -> str:
+    stdout.write(prompt)
+    stdout.flush()
+    line = stdin.readline()
+    return line.strip().lower()
+
+
+def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = None) -> int:
+    from autotune.commands.tune import default_out_dir
+
+    stdout = stdout if stdout is not None else sys.stdout
+    stdin = stdin if stdin is not None else sys.stdin
+    cfg = with_overrides(load_config(args.config), _overrides(args))
+    if not cfg.connection.port:
+        raise UserError("no port given: use --port URL (or --port sim), or set "
+                        "connection.port in the config", exit_code=EXIT_USAGE)
+    if not 0.0 < args.detune < 1.0:
+        raise UserError(f"--detune must lie between 0 and 1, got {args.detune:g}",
+                        exit_code=EXIT_USAGE)
+    if args.retries < 0:
+        raise UserError("--retries must be >= 0", exit_code=EXIT_USAGE)
+    choice = choose_gains(args)
+    spec = StepSpec(
+        max_overshoot=args.max_overshoot if args.max_overshoot is not None
+        else cfg.design.max_overshoot,
+        max_settling_time=args.max_settling_time if args.max_settling_time is not None
+        else cfg.design.max_settling_time,
+        max_time_saturated=args.max_saturation,
+    )
+    out_root = Path(args.out) if args.out else default_out_dir("step")
+    outcomes: list[Any] = []
+    sessions: list[Path] = []
+    gains_file: Path | None = None
+    n_batch = 0
+    code = EXIT_FAILED
+    end_reason = "unknown"
+    while True:
+        n_batch += 1
+        out_dir = out_root if n_batch == 1 else out_root / f"attempt-{n_batch}"
+        batch = run_batch(cfg, args, choice, out_dir, spec, stdout,
+                          args.retries if args.yes else 0)
+        outcomes += batch.outcomes
+        if batch.session is not None and batch.session.exists():
+            sessions.append(batch.session)
+        ro = batch.run_outcome
+        end_reason = ro.reason
+        for o in batch.outcomes:
+            text = describe(o)
+            if text:
+                print(text, file=stdout)
+        last = batch.outcomes[-1] if batch.outcomes else None
+        if ro.reason != "completed" or last is None or last.verdict is None:
+            code = ro.exit_code if ro.exit_code != EXIT_OK else EXIT_FAILED
+            write_outputs(out_root, outcomes, end_reason, gains_file, sessions)
+            print(f"autotune step: {ro.message or ro.reason}", file=sys.stderr)
+            return code
+        verdict = last.verdict
+        device = {"axis": cfg.connection.axis}
+        gpath = Path(args.gains_file) if args.gains_file else out_root / "gains.toml"
+        if args.yes:
+            if verdict.passed:
+                gains_file = accept(last, gpath, batch.session, stdout, device)
+                code = EXIT_OK
+            else:
+                code = EXIT_FAILED
+            break
+        action = _ask(stdout, stdin, f"suggested: {verdict.action.value}. [a]ccept, "
+                      f"[d]etune x{args.detune:g}, [o]ther proposal, [r]epeat, [q]uit: ")
+        if action in ("a", "accept"):
+            gains_file = accept(last, gpath, batch.session, stdout, device)
+            code = EXIT_OK
+            break
+        if action in ("d", "detune"):
+            g = detune(last.candidate.gains, args.detune)
+            choice = Choice(f"{choice.name} x{args.detune:g}", g, {}, choice.pool, choice.model,
+                            choice.pid_extra)
+            continue
+        if action in ("r", "repeat"):
+            continue
+        if action in ("o", "other"):
+            if not choice.pool:
+                print("no other proposals (use --from-result FILE)", file=stdout)
+                continue
+            names = ", ".join(str(p.get("name")) for p in choice.pool)
+            pick = _ask(stdout, stdin, f"proposal ({names}): ")
+            match = [p for p in choice.pool if str(p.get("name")).lower() == pick]
+            if not match:
+                print(f"no proposal {pick!r}", file=stdout)
+                continue
+            p = match[0]
+            choice = Choice(str(p["name"]), PidGains(float(p["kp"]), float(p.get("ki", 0.0)),
+                                                     float(p.get("kd", 0.0))),
+                            dict(p.get("predicted") or {}), choice.pool, choice.model,
+                            choice.pid_extra)
+            continue
+        code = EXIT_FAILED if not verdict.passed else EXIT_OK
+        break
+    write_outputs(out_root, outcomes, end_reason, gains_file, sessions)
+    print(f"result: {out_root / 'result.json'}", file=stdout)
+    if code != EXIT_OK:
+        print(f"autotune step: the step misses the spec: {verdict.reason}", file=sys.stderr)
+    return code

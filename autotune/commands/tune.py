@@ -1,0 +1,144 @@
+"""`autotune tune`: prechecks and a bounded relay experiment on one loop, then gain proposals."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+from autotune.config import (
+    ConnectionConfig,
+    PrecheckConfig,
+    RelayConfig,
+    SafetyConfig,
+    load_config,
+    with_overrides,
+)
+from autotune.errors import EXIT_OK, UserError
+from autotune.runner_base import RunOptions
+
+HELP = "run the relay experiment on one loop and propose PID gains (powers the motor)"
+
+_S, _R, _C, _P = SafetyConfig(), RelayConfig(), ConnectionConfig(), PrecheckConfig()
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.formatter_class = argparse.RawDescriptionHelpFormatter
+    p.epilog = (
+        "Options override the config file, which overrides the built-in defaults shown.\n"
+        "Abort at any time with Space, Esc, q or Ctrl-C; keep a physical power cut-off within\n"
+        "reach. Exit codes: 0 converged, 1 limit/fault/failed check or no convergence,\n"
+        "2 usage or configuration, 3 aborted, 4 link lost, 5 zero output not confirmed."
+    )
+    p.add_argument("--port", metavar="URL|sim",
+                   help="serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, "
+                        "or 'sim' for the built-in simulated board (default: connection.port "
+                        "of the config; required if that is not set)")
+    p.add_argument("--config", metavar="FILE", help="TOML config file (default: none, "
+                   "built-in defaults)")
+    p.add_argument("--axis", type=int, metavar="N",
+                   help=f"axis index on the board (default: {_C.axis})")
+    p.add_argument("--yes", action="store_true",
+                   help="do not ask for confirmation (for scripts; the cautions still apply)")
+    p.add_argument("--out", metavar="DIR",
+                   help="directory for session.jsonl and result.json (default: "
+                        "./autotune-sessions/tune-YYYYmmdd-HHMMSS)")
+    p.add_argument("--loop", choices=("host", "device"),
+                   help="where the relay runs: on the board (device) or here (host) (default: "
+                        "device when the board offers it and sign is +1, else host)")
+    p.add_argument("--output-limit", type=float, metavar="U",
+                   help=f"largest |output|, output units (default: {_S.output_limit:g})")
+    p.add_argument("--pv-window", type=float, metavar="W",
+                   help=f"the PV may move at most W from its start value, PV units "
+                        f"(default: {_S.pv_window:g})")
+    p.add_argument("--target-amplitude", type=float, metavar="A",
+                   help=f"PV oscillation peak amplitude to aim for, PV units "
+                        f"(default: {_R.target_amplitude:g})")
+    p.add_argument("--amplitude", type=float, metavar="D",
+                   help="relay start amplitude, output units (default: a quarter of the "
+                        "output limit)")
+    p.add_argument("--hysteresis", type=float, metavar="EPS",
+                   help="relay hysteresis, PV units (default: from the rest check, "
+                        "max(3 x noise, 2 x resolution))")
+    p.add_argument("--max-cycles", type=int, metavar="N",
+                   help=f"stop the relay after N cycles (default: {_R.max_cycles})")
+    p.add_argument("--max-time", type=float, metavar="S",
+                   help=f"stop the relay after S seconds (default: {_R.max_time:g})")
+    p.add_argument("--plant", metavar="NAME",
+                   help=f"for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file "
+                        f"(default: {_C.plant})")
+    p.add_argument("--speed", type=float, metavar="X",
+                   help=f"for --port sim: simulated time runs X times faster; with another "
+                        f"port: the speed that simulated device was started with, so host "
+                        f"timeouts and the heartbeat scale with it (default: {_C.speed:g})")
+    p.add_argument("--faults", metavar="SPEC", help="for --port sim: fault injection spec "
+                   "passed to the simulated board (default: none)")
+    p.add_argument("--seed", type=int, metavar="N",
+                   help="for --port sim: noise seed (default: the plant's)")
+    p.add_argument("--csv", action="store_true",
+                   help="also write the samples as session.csv next to session.jsonl")
+
+
+def _overrides(args: argparse.Namespace) -> dict[str, object]:
+    return {
+        "connection.port": args.port,
+        "connection.axis": args.axis,
+        "connection.loop": args.loop,
+        "connection.plant": args.plant,
+        "connection.speed": args.speed,
+        "safety.output_limit": args.output_limit,
+        "safety.pv_window": args.pv_window,
+        "relay.target_amplitude": args.target_amplitude,
+        "relay.start_amplitude": args.amplitude,
+        "relay.hysteresis": args.hysteresis,
+        "relay.max_cycles": args.max_cycles,
+        "relay.max_time": args.max_time,
+    }
+
+
+def default_out_dir(verb: str) -> Path:
+    """./autotune-sessions/<verb>-YYYYmmdd-HHMMSS (made unique with a suffix)."""
+    base = Path("autotune-sessions") / f"{verb}-{time.strftime('%Y%m%d-%H%M%S')}"
+    p, n = base, 1
+    while p.exists():
+        n += 1
+        p = base.with_name(f"{base.name}-{n}")
+    return p
+
+
+def run(args: argparse.Namespace) -> int:
+    from autotune.session import LinePrinter, run_tune
+
+    cfg = with_overrides(load_config(args.config), _overrides(args))
+    port = cfg.connection.port
+    if not port:
+        raise UserError("no port given: use --port URL (or --port sim), or set "
+                        "connection.port in the config")
+    out_dir = Path(args.out) if args.out else default_out_dir("tune")
+    options = RunOptions(port=port, yes=args.yes, out_dir=out_dir, plant=cfg.connection.plant,
+                         speed=cfg.connection.speed, faults=args.faults, seed=args.seed,
+                         verb="tune")
+    printer = LinePrinter(sys.stdout)
+    outcome = run_tune(cfg, options, on_update=printer, csv=args.csv)
+    res = outcome.result
+    if res is not None:
+        ku, tu = res.get("ultimate_gain"), res.get("ultimate_period")
+        if ku is not None and tu is not None:
+            print(f"ultimate gain Ku = {ku:.4g} (output units per PV unit), "
+                  f"ultimate period Tu = {tu:.4g} s")
+        kc, tc = res.get("ultimate_gain_classic"), res.get("ultimate_period_classic")
+        if kc is not None and tc is not None:
+            print(f"plain describing function: Ku = {kc:.4g}, Tu = {tc:.4g} s")
+        for prop in res.get("proposals", []) or []:
+            print(f"  {prop['name']:<12} kp {prop['kp']:.4g}  ki {prop['ki']:.4g}/s  "
+                  f"kd {prop['kd']:.4g} s")
+        for note in res.get("notes", []) or []:
+            print(f"note: {note}")
+    if outcome.session_path is not None:
+        print(f"session: {outcome.session_path}")
+    if outcome.result_path is not None:
+        print(f"result: {outcome.result_path}")
+    if outcome.exit_code != EXIT_OK:
+        print(f"autotune tune: {outcome.reason}: {outcome.message}", file=sys.stderr)
+    return outcome.exit_code

@@ -1,0 +1,476 @@
+"""Run configuration: TOML file -> validated, frozen dataclasses with documented defaults.
+
+A config file holds any of the sections below; every key is optional (the defaults are in the
+dataclasses). An unknown section or key, a wrong type or an impossible combination of limits is a
+`ConfigError` naming the file, the key (``section.key``) and the problem; nothing moves.
+
+```toml
+[connection]   # port, axis, loop mode, sign
+[safety]       # limits enforced by the host on every sample and loaded into the device
+[relay]        # the relay experiment
+[prechecks]    # rest, direction pulse, breakaway ramp
+[design]       # what the proposed gains should achieve
+[step]         # the confirmation step test
+```
+
+Units: seconds, PV units, output units. Keys whose default is `None` ("automatic") are simply
+left out of the file; TOML has no null.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+import types
+import typing
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any, Literal, get_args, get_origin
+
+from autotune.errors import ConfigError
+
+LoopMode = Literal["auto", "host", "device"]
+
+
+@dataclass(frozen=True)
+class ConnectionConfig:
+    """Where and what to drive.
+
+    port: anything `serial.serial_for_url` takes, or "sim" (the built-in simulated board);
+        None means it must come from `--port`.
+    axis: axis index on the board (0-based).
+    loop: "device" runs the relay on the board, "host" computes it on the host for each sample,
+        "auto" picks device when the board offers it.
+    sign: +1 when a positive output makes the PV rise, -1 when it makes it fall.
+    baudrate: serial speed (ignored by pty/socket ports).
+    plant, speed: only for port "sim": the simulated plant (scenario name or plant TOML file) and
+        how many times faster than the wall clock its time runs.
+    """
+
+    port: str | None = None
+    axis: int = 0
+    loop: LoopMode = "auto"
+    sign: int = 1
+    baudrate: int = 115200
+    plant: str = "cart-wheel"
+    speed: float = 1.0
+
+
+@dataclass(frozen=True)
+class SafetyConfig:
+    """Limits, enforced twice: by the host on every sample and by the device itself.
+
+    output_limit: |output| never exceeds this (output units).
+    pv_window: the PV may move at most this far from its value at the start (PV units).
+    pv_rate_limit: |d pv / dt| above this stops the run (PV units per s); 0 = off.
+    max_duration: the powered part of the run stops after this long (s, device time).
+    watchdog: the device zeroes its output when the host is silent this long (s, device time).
+    max_sample_gap: a gap between consecutive samples longer than this stops the run (s, device
+        time).
+    """
+
+    output_limit: float = 30.0
+    pv_window: float = 5.0
+    pv_rate_limit: float = 0.0
+    max_duration: float = 300.0
+    watchdog: float = 0.5
+    max_sample_gap: float = 0.25
+
+
+@dataclass(frozen=True)
+class RelayConfig:
+    """The relay experiment.
+
+    start_amplitude: first relay amplitude d (output units); None = a quarter of the output limit.
+    target_amplitude: PV oscillation amplitude (peak, PV units) the adaptation aims for.
+    hysteresis: relay hysteresis (PV units); None = from the rest precheck,
+        max(3 x noise, 2 x resolution).
+    max_cycles: the relay stops after this many cycles.
+    max_time: the relay stops after this long (s, device time).
+    bias: output at the operating point (output units), the relay switches bias +/- d.
+    bias_tolerance: half-periods are balanced when they differ by less than this fraction.
+    amplitude_step_factor: d grows by at most this factor a cycle while the PV stays below target.
+    converge_tol: relative agreement of period and amplitude between the last cycles.
+    adapt_amplitude: adapt d towards the target amplitude (false: keep the start amplitude).
+    balance_bias: adjust the bias until the half-periods match (false: keep the bias).
+    stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot rise.
+    min_cycles: steady cycles (after the last settings change) needed before convergence can be
+        declared; the last three of them must agree within converge_tol.
+    """
+
+    start_amplitude: float | None = None
+    target_amplitude: float = 0.5
+    hysteresis: float | None = None
+    max_cycles: int = 20
+    max_time: float = 120.0
+    bias: float = 0.0
+    bias_tolerance: float = 0.03
+    amplitude_step_factor: float = 1.5
+    converge_tol: float = 0.02
+    adapt_amplitude: bool = True
+    balance_bias: bool = True
+    stall_time: float = 5.0
+    min_cycles: int = 5
+
+
+@dataclass(frozen=True)
+class PrecheckConfig:
+    """Checks before any relay motion.
+
+    rest_time: output held at the bias this long to measure noise, drift, resolution (s).
+    pulse_size: size of the direction pulse (output units); None = the relay start amplitude.
+    pulse_timeout: the PV must respond to the pulse within this long (s).
+    breakaway: run a slow output ramp first to measure the deadband.
+    breakaway_rate: ramp rate of the breakaway test (output units per s).
+    """
+
+    rest_time: float = 1.0
+    pulse_size: float | None = None
+    pulse_timeout: float = 2.0
+    breakaway: bool = False
+    breakaway_rate: float = 5.0
+
+
+@dataclass(frozen=True)
+class DesignConfig:
+    """What the proposed gains should achieve.
+
+    ms_target: maximum sensitivity target (robustness; 1.4 is a common choice).
+    max_overshoot: largest acceptable overshoot of a setpoint step (percent); None = no limit.
+    max_settling_time: largest acceptable 2% settling time (s); None = no limit.
+    step_size: setpoint step used for the predictions (PV units); None = the target amplitude.
+    """
+
+    ms_target: float = 1.4
+    max_overshoot: float | None = None
+    max_settling_time: float | None = None
+    step_size: float | None = None
+
+
+@dataclass(frozen=True)
+class StepConfig:
+    """The confirmation step test (gains applied, one setpoint step).
+
+    size: setpoint step (PV units); None = the design step size.
+    duration: how long the response is recorded after the step (s).
+    settle_time: how long to hold the setpoint before the step (s).
+    """
+
+    size: float | None = None
+    duration: float = 5.0
+    settle_time: float = 1.0
+
+
+@dataclass(frozen=True)
+class Config:
+    """The whole configuration; `source` is the file it came from (or "<defaults>")."""
+
+    connection: ConnectionConfig = field(default_factory=ConnectionConfig)
+    safety: SafetyConfig = field(default_factory=SafetyConfig)
+    relay: RelayConfig = field(default_factory=RelayConfig)
+    prechecks: PrecheckConfig = field(default_factory=PrecheckConfig)
+    design: DesignConfig = field(default_factory=DesignConfig)
+    step: StepConfig = field(default_factory=StepConfig)
+    source: str = "<defaults>"
+
+    @property
+    def start_amplitude(self) -> float:
+        """The relay start amplitude in output units (the automatic default resolved)."""
+        if self.relay.start_amplitude is not None:
+            return self.relay.start_amplitude
+        return 0.25 * self.safety.output_limit
+
+    @property
+    def pulse_size(self) -> float:
+        """The direction pulse size in output units (the automatic default resolved)."""
+        if self.prechecks.pulse_size is not None:
+            return self.prechecks.pulse_size
+        return self.start_amplitude
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain dict of all sections (for the session header)."""
+        d = dataclasses.asdict(self)
+        return d
+
+
+SECTIONS: dict[str, type] = {
+    "connection": ConnectionConfig,
+    "safety": SafetyConfig,
+    "relay": RelayConfig,
+    "prechecks": PrecheckConfig,
+    "design": DesignConfig,
+    "step": StepConfig,
+}
+
+
+def _type_name(tp: Any) -> str:
+    origin = get_origin(tp)
+    if origin is Literal:
+        return " or ".join(repr(a) for a in get_args(tp))
+    if origin in (typing.Union, types.UnionType):
+        args = [a for a in get_args(tp) if a is not type(None)]
+        return " or ".join(_type_name(a) for a in args)
+    return {float: "a number", int: "an integer", bool: "true or false", str: "a string"}.get(
+        tp, str(tp)
+    )
+
+
+def _coerce(tp: Any, value: Any) -> Any:
+    """Return `value` as type `tp` or raise TypeError (bool is never a number here)."""
+    origin = get_origin(tp)
+    if origin in (typing.Union, types.UnionType):
+        args = [a for a in get_args(tp) if a is not type(None)]
+        if value is None and type(None) in get_args(tp):
+            return None
+        for a in args:
+            try:
+                return _coerce(a, value)
+            except TypeError:
+                continue
+        raise TypeError
+    if origin is Literal:
+        if value in get_args(tp) and type(value) is type(get_args(tp)[0]):
+            return value
+        raise TypeError
+    if tp is bool:
+        if isinstance(value, bool):
+            return value
+        raise TypeError
+    if tp is int:
+        if isinstance(value, int) and not isinstance(value, bool):
+            return value
+        raise TypeError
+    if tp is float:
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            v = float(value)
+            if not math.isfinite(v):
+                raise TypeError
+            return v
+        raise TypeError
+    if tp is str:
+        if isinstance(value, str):
+            return value
+        raise TypeError
+    raise TypeError  # pragma: no cover (unsupported field type)
+
+
+def _section_from_dict(cls: type, data: dict[str, Any], path: str, section: str) -> Any:
+    hints = typing.get_type_hints(cls)
+    names = {f.name for f in fields(cls)}
+    kwargs: dict[str, Any] = {}
+    for key, value in data.items():
+        if key not in names:
+            known = ", ".join(sorted(names))
+            raise ConfigError(path, f"{section}.{key}", f"unknown key (known keys: {known})")
+        try:
+            kwargs[key] = _coerce(hints[key], value)
+        except TypeError:
+            raise ConfigError(
+                path,
+                f"{section}.{key}",
+                f"expected {_type_name(hints[key])}, got {value!r}",
+            ) from None
+    return cls(**kwargs)
+
+
+def config_from_dict(data: dict[str, Any], path: str = "<dict>") -> Config:
+    """Build and validate a Config from a TOML-shaped dict; raises ConfigError."""
+    if not isinstance(data, dict):
+        raise ConfigError(path, None, "expected a table of sections")
+    parts: dict[str, Any] = {}
+    for name, value in data.items():
+        if name not in SECTIONS:
+            known = ", ".join(f"[{s}]" for s in SECTIONS)
+            raise ConfigError(path, name, f"unknown section (known sections: {known})")
+        if not isinstance(value, dict):
+            raise ConfigError(path, name, f"expected a [{name}] table, got {value!r}")
+        parts[name] = _section_from_dict(SECTIONS[name], value, path, name)
+    cfg = Config(**parts, source=path)
+    validate(cfg)
+    return cfg
+
+
+def load_config(path: str | Path | None) -> Config:
+    """Read a TOML config file (None -> all defaults); raises ConfigError on any problem."""
+    if path is None:
+        cfg = Config()
+        validate(cfg)
+        return cfg
+    p = str(path)
+    try:
+        with open(p, "rb") as f:
+            data = tomllib.load(f)
+    except FileNotFoundError:
+        raise ConfigError(p, None, "no such file") from None
+    except OSError as exc:
+        raise ConfigError(p, None, f"cannot read: {exc.strerror or exc}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(p, None, f"not valid TOML: {exc}") from None
+    return config_from_dict(data, p)
+
+
+def with_overrides(cfg: Config, overrides: dict[str, Any]) -> Config:
+    """Return `cfg` with `{"section.key": value}` replaced (None values are skipped), validated.
+
+    Used for command-line options; a problem names the option's key as `section.key` and the
+    source "command line".
+    """
+    sections: dict[str, dict[str, Any]] = {}
+    for dotted, value in overrides.items():
+        if value is None:
+            continue
+        section, key = dotted.split(".", 1)
+        sections.setdefault(section, {})[key] = value
+    new = cfg
+    for section, values in sections.items():
+        cls = SECTIONS[section]
+        checked = _section_from_dict(cls, values, "command line", section)
+        new = replace(new, **{section: replace(getattr(new, section), **{
+            k: getattr(checked, k) for k in values
+        })})
+    validate(new, source=f"{cfg.source} with command-line options")
+    return new
+
+
+def _positive(cfg_source: str, key: str, value: float | int | None, *, allow_zero: bool = False,
+              optional: bool = False) -> None:
+    if value is None:
+        if optional:
+            return
+        raise ConfigError(cfg_source, key, "must be given")
+    if allow_zero:
+        if value < 0:
+            raise ConfigError(cfg_source, key, f"must be >= 0, got {value!r}")
+    elif value <= 0:
+        raise ConfigError(cfg_source, key, f"must be > 0, got {value!r}")
+
+
+def validate(cfg: Config, source: str | None = None) -> None:
+    """Reject impossible values and combinations; raises ConfigError naming the key."""
+    src = source or cfg.source
+    c, s, r, p, d, st = cfg.connection, cfg.safety, cfg.relay, cfg.prechecks, cfg.design, cfg.step
+    if c.axis < 0 or c.axis > 255:
+        raise ConfigError(src, "connection.axis", f"must be 0..255, got {c.axis}")
+    if c.sign not in (1, -1):
+        raise ConfigError(src, "connection.sign", f"must be +1 or -1, got {c.sign}")
+    _positive(src, "connection.baudrate", c.baudrate)
+    _positive(src, "connection.speed", c.speed)
+    _positive(src, "safety.output_limit", s.output_limit)
+    _positive(src, "safety.pv_window", s.pv_window)
+    _positive(src, "safety.pv_rate_limit", s.pv_rate_limit, allow_zero=True)
+    _positive(src, "safety.max_duration", s.max_duration)
+    _positive(src, "safety.watchdog", s.watchdog)
+    if s.watchdog > 65.535:
+        raise ConfigError(src, "safety.watchdog", f"must be at most 65.535 s, got {s.watchdog}")
+    if s.watchdog < 0.01:
+        raise ConfigError(src, "safety.watchdog", f"must be at least 0.01 s, got {s.watchdog}")
+    _positive(src, "safety.max_sample_gap", s.max_sample_gap)
+    _positive(src, "relay.start_amplitude", r.start_amplitude, optional=True)
+    _positive(src, "relay.target_amplitude", r.target_amplitude)
+    _positive(src, "relay.hysteresis", r.hysteresis, allow_zero=True, optional=True)
+    _positive(src, "relay.max_cycles", r.max_cycles)
+    _positive(src, "relay.max_time", r.max_time)
+    _positive(src, "relay.bias_tolerance", r.bias_tolerance)
+    _positive(src, "relay.converge_tol", r.converge_tol)
+    _positive(src, "relay.stall_time", r.stall_time)
+    if r.min_cycles < 2:
+        raise ConfigError(src, "relay.min_cycles", f"must be >= 2, got {r.min_cycles}")
+    if r.min_cycles > r.max_cycles:
+        raise ConfigError(src, "relay.min_cycles", f"{r.min_cycles} is more than "
+                          f"relay.max_cycles {r.max_cycles}")
+    if r.amplitude_step_factor <= 1.0:
+        raise ConfigError(src, "relay.amplitude_step_factor",
+                          f"must be > 1, got {r.amplitude_step_factor}")
+    _positive(src, "prechecks.rest_time", p.rest_time)
+    _positive(src, "prechecks.pulse_size", p.pulse_size, optional=True)
+    _positive(src, "prechecks.pulse_timeout", p.pulse_timeout)
+    _positive(src, "prechecks.breakaway_rate", p.breakaway_rate)
+    if d.ms_target <= 1.0:
+        raise ConfigError(src, "design.ms_target", f"must be > 1, got {d.ms_target}")
+    _positive(src, "design.max_overshoot", d.max_overshoot, allow_zero=True, optional=True)
+    _positive(src, "design.max_settling_time", d.max_settling_time, optional=True)
+    _positive(src, "design.step_size", d.step_size, optional=True)
+    _positive(src, "step.size", st.size, optional=True)
+    _positive(src, "step.duration", st.duration)
+    _positive(src, "step.settle_time", st.settle_time, allow_zero=True)
+
+    # Combinations that cannot work.
+    if abs(r.bias) >= s.output_limit:
+        raise ConfigError(src, "relay.bias", f"|bias| {abs(r.bias):g} leaves no room within "
+                          f"safety.output_limit {s.output_limit:g}")
+    room = s.output_limit - abs(r.bias)
+    if cfg.start_amplitude > room:
+        raise ConfigError(src, "relay.start_amplitude",
+                          f"{cfg.start_amplitude:g} plus |bias| {abs(r.bias):g} exceeds "
+                          f"safety.output_limit {s.output_limit:g}")
+    if cfg.pulse_size > room:
+        raise ConfigError(src, "prechecks.pulse_size",
+                          f"{cfg.pulse_size:g} plus |bias| {abs(r.bias):g} exceeds "
+                          f"safety.output_limit {s.output_limit:g}")
+    # The oscillation (peak target_amplitude either side of the centre) plus its overshoot
+    # while the amplitude adapts must fit in the window: half the window (common practice,
+    # no source).
+    if r.target_amplitude > 0.5 * s.pv_window:
+        raise ConfigError(src, "relay.target_amplitude",
+                          f"{r.target_amplitude:g} is more than half of safety.pv_window "
+                          f"{s.pv_window:g}; widen the window or aim lower")
+    if r.hysteresis is not None and r.hysteresis >= r.target_amplitude:
+        raise ConfigError(src, "relay.hysteresis",
+                          f"{r.hysteresis:g} must be below relay.target_amplitude "
+                          f"{r.target_amplitude:g}")
+    if d.step_size is not None and d.step_size > s.pv_window:
+        raise ConfigError(src, "design.step_size",
+                          f"{d.step_size:g} exceeds safety.pv_window {s.pv_window:g}")
+    if st.size is not None and st.size > s.pv_window:
+        raise ConfigError(src, "step.size",
+                          f"{st.size:g} exceeds safety.pv_window {s.pv_window:g}")
+    if s.max_sample_gap < 0.0:  # pragma: no cover (caught above)
+        raise ConfigError(src, "safety.max_sample_gap", "must be > 0")
+
+
+def check_against_device(cfg: Config, max_output: float, axis_count: int,
+                         tick: float) -> None:
+    """Reject limits the board cannot honour (after the handshake); raises ConfigError.
+
+    max_output: the board's largest output (output units); axis_count: axes on the board;
+    tick: the board's tick (s).
+    """
+    src = cfg.source
+    if cfg.safety.output_limit > max_output:
+        raise ConfigError(src, "safety.output_limit",
+                          f"{cfg.safety.output_limit:g} is above the device's maximum output "
+                          f"{max_output:g}")
+    if cfg.connection.axis >= axis_count:
+        raise ConfigError(src, "connection.axis",
+                          f"axis {cfg.connection.axis} does not exist: the device has "
+                          f"{axis_count} axis(es), numbered from 0")
+    if cfg.safety.max_sample_gap < 2 * tick:
+        raise ConfigError(src, "safety.max_sample_gap",
+                          f"{cfg.safety.max_sample_gap:g} s is shorter than two device ticks "
+                          f"({2 * tick:g} s)")
+    if cfg.safety.watchdog < 2 * tick:
+        raise ConfigError(src, "safety.watchdog",
+                          f"{cfg.safety.watchdog:g} s is shorter than two device ticks "
+                          f"({2 * tick:g} s)")
+
+
+def check_against_noise(cfg: Config, noise_std: float, resolution: float) -> None:
+    """Reject a PV window or target amplitude the measured noise makes meaningless.
+
+    Called after the rest precheck (noise_std, resolution in PV units); raises ConfigError.
+    A window narrower than 10 noise standard deviations, or a target amplitude below 5 of them,
+    cannot be told apart from noise (common practice, no source).
+    """
+    src = cfg.source
+    floor = max(noise_std, 0.5 * resolution)
+    if floor > 0 and cfg.safety.pv_window < 10 * floor:
+        raise ConfigError(src, "safety.pv_window",
+                          f"{cfg.safety.pv_window:g} is narrower than the measured noise allows "
+                          f"(noise {noise_std:.3g}, resolution {resolution:.3g}; need at least "
+                          f"{10 * floor:.3g})")
+    if floor > 0 and cfg.relay.target_amplitude < 5 * floor:
+        raise ConfigError(src, "relay.target_amplitude",
+                          f"{cfg.relay.target_amplitude:g} is lost in the measured noise "
+                          f"(noise {noise_std:.3g}, resolution {resolution:.3g}; need at least "
+                          f"{5 * floor:.3g})")

@@ -1,0 +1,205 @@
+"""Gain design: proposals from Ku, Tu and the fitted model, each with its predicted behaviour.
+
+Pure functions. Gains are output units per PV unit, `ki` per second, `kd` in seconds (parallel
+form); the model is a `DelayedTF` with positive gain (the runner applies the loop sign).
+Tuning tables live in `autotune.rules`, the robust optimum and the loop analysis in
+`autotune.robust`, the sampled closed-loop simulation in `autotune.closedloop`.
+
+Default proposal (documented choice): "robust-pid", unless the derivative buys less than 10 %
+more integral gain than "robust-pi" (derivative does not help), or the PID's high-frequency
+gain kp (1 + N) times the PV noise exceeds 2 % of the output limit (noise would reach the
+actuator); then "robust-pi". The thresholds are common practice, no source.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from autotune import robust, rules
+from autotune.closedloop import simulate_closed_loop
+from autotune.lti import DelayedTF
+from autotune.metrics import step_metrics
+from autotune.pid import PidGains, PidSettings, per_tick, to_standard
+
+
+@dataclass(frozen=True)
+class DesignSpec:
+    """What the user asks for.
+
+    ms_target: robust-design bound on max |S|; phase_margin_deg: for the Åström–Hägglund
+    ultimate-point design; simc_tau_c: SIMC closed-loop time constant (s; None = the model's
+    dead time); max_overshoot (%), max_settling_time (s): spec limits to flag (None = none);
+    step_size: setpoint step for the prediction (PV units); output_limit: actuator limit
+    (output units, symmetric); ts: loop period (s; None = continuous design and predictions
+    at Tu/200); n: derivative filter N; setpoint_weight: b; tracking_time: Tt (None =
+    clamping); pv_noise: PV noise standard deviation (PV units) for the default choice.
+    """
+
+    ms_target: float = 1.4
+    phase_margin_deg: float = 45.0
+    simc_tau_c: float | None = None
+    max_overshoot: float | None = None
+    max_settling_time: float | None = None
+    step_size: float = 1.0
+    output_limit: float = math.inf
+    ts: float | None = None
+    n: float = 10.0
+    setpoint_weight: float = 1.0
+    tracking_time: float | None = None
+    pv_noise: float = 0.0
+
+
+@dataclass(frozen=True)
+class Proposal:
+    """One set of gains with its predicted behaviour on the model.
+
+    predicted keys: ms, gain_margin, phase_margin_deg, stable, overshoot (%), rise_time,
+    settling_time (s), iae_load (PV units s, unit load step at the plant input), peak_output
+    (output units, for the configured step), time_saturated (s), ts (s, loop period used).
+    """
+
+    name: str
+    gains: PidGains
+    predicted: dict[str, float | bool]
+    violations: list[str] = field(default_factory=list)
+    default: bool = False
+    source: str = ""
+
+    def as_dict(self, n: float = 10.0) -> dict[str, object]:
+        """The result.json entry: name, kp, ki, kd, predicted, plus the other gain forms."""
+        g = self.gains
+        d: dict[str, object] = {"name": self.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
+                                "predicted": dict(self.predicted),
+                                "violations": list(self.violations), "default": self.default,
+                                "source": self.source}
+        if g.kp != 0:
+            kc, ti, td = to_standard(g)
+            d["standard"] = {"kc": kc, "ti": None if math.isinf(ti) else ti, "td": td}
+        ts = self.predicted.get("ts")
+        if isinstance(ts, float) and ts > 0:
+            d["per_tick"] = per_tick(g, ts, n)
+        return d
+
+
+def loop_period(model: DelayedTF, spec: DesignSpec) -> float:
+    """The loop period of the predictions: spec.ts, else Tu/200 of the model."""
+    if spec.ts is not None:
+        return spec.ts
+    return 2.0 * math.pi / robust.reference_frequency(model) / 200.0
+
+
+def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, float | bool]:
+    """Predicted figures of `gains` on `model` with the discrete PID at the loop period and its
+    ZOH (see `autotune.robust` for the loop, `autotune.closedloop` for the simulation)."""
+    ts = loop_period(model, spec)
+    mg = robust.loop_margins(model, gains, spec.n, ts)
+    stable = robust.is_stable(model, gains, spec.n, ts)
+    tu = 2.0 * math.pi / robust.reference_frequency(model, ts)
+    ti = math.inf if gains.ki == 0 else abs(gains.kp / gains.ki)
+    t_end = max(15.0 * tu, min(8.0 * ti, 60.0 * tu))
+    t_end = min(t_end, 6000 * ts)
+    lim = spec.output_limit
+    settings = PidSettings(gains, ts, spec.n, spec.setpoint_weight, spec.tracking_time,
+                           -lim, lim)
+    run = simulate_closed_loop(model, settings, t_end, spec.step_size)
+    if stable and np.all(np.isfinite(run.y)):
+        m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u,
+                         lim if math.isfinite(lim) else None)
+        overshoot, rise, settle = m.overshoot, m.rise_time, m.settling_time
+        peak, tsat = m.peak_output, m.time_saturated
+    else:
+        overshoot = rise = settle = math.nan
+        peak = float(np.nanmax(np.abs(run.u))) if np.any(np.isfinite(run.u)) else math.inf
+        tsat = math.nan
+    iae = math.nan
+    if stable:
+        load = simulate_closed_loop(model, PidSettings(gains, ts, spec.n, spec.setpoint_weight),
+                                    t_end, 0.0, load_step=1.0)
+        iae = float(np.sum(0.5 * (np.abs(load.y[1:]) + np.abs(load.y[:-1])) * ts))
+    return {"ms": mg.ms, "gain_margin": mg.gain_margin, "phase_margin_deg": mg.phase_margin_deg,
+            "stable": stable, "overshoot": overshoot, "rise_time": rise, "settling_time": settle,
+            "iae_load": iae, "peak_output": peak, "time_saturated": tsat, "ts": ts,
+            "t_end": float(run.t[-1])}
+
+
+def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:
+    """Spec violations and saturation of one prediction, as short messages."""
+    out: list[str] = []
+    if not pred["stable"]:
+        return ["closed loop unstable on the model"]
+    os_ = float(pred["overshoot"])
+    st = float(pred["settling_time"])
+    if spec.max_overshoot is not None and os_ > spec.max_overshoot:
+        out.append(f"overshoot {os_:.1f}% above the limit {spec.max_overshoot:g}%")
+    if spec.max_settling_time is not None and (math.isnan(st) or st > spec.max_settling_time):
+        if math.isnan(st):
+            out.append(f"not settled within {float(pred['t_end']):.3g} s "
+                       f"(limit {spec.max_settling_time:g} s)")
+        else:
+            out.append(f"settling time {st:.3g} s above the limit {spec.max_settling_time:g} s")
+    tsat = float(pred["time_saturated"])
+    if math.isfinite(spec.output_limit) and tsat > 0:
+        out.append(f"output saturates at {spec.output_limit:g} for {tsat:.3g} s of the step")
+    return out
+
+
+def _rule_designs(ku: float | None, tu: float | None, model: DelayedTF, spec: DesignSpec
+                  ) -> list[tuple[str, PidGains, str]]:
+    out: list[tuple[str, PidGains, str]] = []
+    if ku is not None and tu is not None and ku > 0 and tu > 0:
+        table: list[tuple[str, Callable[[float, float], PidGains], str]] = [
+            ("zn-p", rules.zn_p, "Ziegler-Nichols 1942"),
+            ("zn-pi", rules.zn_pi, "Ziegler-Nichols 1942"),
+            ("zn-pid", rules.zn_pid, "Ziegler-Nichols 1942"),
+            ("tl-pi", rules.tl_pi, "Tyreus-Luyben 1992"),
+            ("tl-pid", rules.tl_pid, "Tyreus-Luyben 1992"),
+        ]
+        out += [(name, fn(ku, tu), src) for name, fn, src in table]
+        out.append(("ah-pm", rules.ah_phase_margin(ku, tu, spec.phase_margin_deg),
+                    f"Astrom-Hagglund 1984, phase margin {spec.phase_margin_deg:g} deg"))
+    m = rules.recognise(model)
+    if m is not None:
+        out.append(("simc-pi", rules.simc_pi(m, spec.simc_tau_c), "SIMC, Skogestad 2003"))
+        pid = rules.simc_pid(m, spec.simc_tau_c)
+        if pid is not None:
+            out.append(("simc-pid", pid, "SIMC, Skogestad 2003"))
+        out.append(("amigo-pi", rules.amigo_pi(m), "AMIGO, Astrom-Hagglund 2004"))
+        out.append(("amigo-pid", rules.amigo_pid(m), "AMIGO, Astrom-Hagglund 2004"))
+    return out
+
+
+def choose_default(pi: PidGains, pid: PidGains, spec: DesignSpec) -> str:
+    """"robust-pid" or "robust-pi" by the rule in the module docstring."""
+    if pid.ki < 1.10 * pi.ki:
+        return "robust-pi"
+    if math.isfinite(spec.output_limit) and spec.pv_noise > 0:
+        if pid.kp * (1.0 + spec.n) * spec.pv_noise > 0.02 * spec.output_limit:
+            return "robust-pi"
+    return "robust-pid"
+
+
+def propose(ku: float | None, tu: float | None, model: DelayedTF,
+            spec: DesignSpec | None = None) -> list[Proposal]:
+    """All proposals, robust ones first; exactly one has `default=True`.
+
+    ku (output units per PV unit) and tu (s) feed the ultimate-point rules (skipped when None);
+    the model feeds SIMC, AMIGO (when it is a FOPDT, SOPDT or integrator+lag+dead time) and
+    the robust optimum, and every prediction.
+    """
+    spec = DesignSpec() if spec is None else spec
+    ts_design = spec.ts
+    rpi = robust.robust_pi(model, spec.ms_target, ts_design)
+    rpid = robust.robust_pid(model, spec.ms_target, spec.n, ts_design)
+    default = choose_default(rpi.gains, rpid.gains, spec)
+    src = f"max ki subject to Ms <= {spec.ms_target:g} (Astrom-Panagopoulos-Hagglund 1998)"
+    designs = [("robust-pid", rpid.gains, src), ("robust-pi", rpi.gains, src)]
+    designs += _rule_designs(ku, tu, model, spec)
+    out = []
+    for name, g, source in designs:
+        pred = predict(model, g, spec)
+        out.append(Proposal(name, g, pred, violations(pred, spec), name == default, source))
+    return out

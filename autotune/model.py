@@ -1,0 +1,305 @@
+"""Low-order process models fitted to a recorded relay experiment.
+
+The fit models the *sampled* experiment exactly: the recorded output `u[k]` (output units) is
+held over [t_k, t_k + ts) (zero-order hold, as the device applies it) and the recorded PV
+`y[k]` (PV units) is the plant output sampled at t_k. The fitted transfer function is therefore
+the continuous plant itself; the hold's delay (about ts/2) is *not* part of it (see
+`autotune.analysis`, `delays_included`).
+
+Candidates (DelayedTF constructors in autotune.lti):
+  "fopdt"          K exp(-L s) / (T s + 1)
+  "sopdt"          K exp(-L s) / ((T1 s + 1)(T2 s + 1))
+  "integrator_lag" Kv exp(-L s) / (s (T s + 1))
+The gain, an output offset and (integrating models only) an input offset enter linearly and are
+solved by linear least squares inside the nonlinear search over the time constants and the dead
+time (variable projection). The winner has the lowest Akaike criterion n ln(RSS/n) + 2 p, which
+for the record lengths of a relay experiment is "best residual wins" unless two candidates are
+practically tied, when the simpler one is kept.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import linalg, optimize, signal
+
+from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
+
+CANDIDATES = ("fopdt", "sopdt", "integrator_lag", "sopdt_zero")
+_N_NONLINEAR = {"fopdt": 2, "sopdt": 3, "integrator_lag": 2, "sopdt_zero": 3}
+_N_LINEAR = {"fopdt": 2, "sopdt": 2, "integrator_lag": 3, "sopdt_zero": 3}
+
+
+# ---------------------------------------------------------------------------- sampled response
+def discrete_coefficients(tf: DelayedTF, dt: float) -> tuple[np.ndarray, np.ndarray, int]:
+    """Exact ZOH-sampled form of `tf`: y = z^-m B(z^-1)/A(z^-1) u, returned as (b, a, m).
+
+    Same mathematics as DelayedTF.simulate_zoh (input held over each tick of `dt` seconds, the
+    dead time split into m whole ticks and a fraction), expressed as a difference equation so
+    that scipy.signal.lfilter can run it over a whole record at once.
+    """
+    a_c, b_c, c_c, d_c = signal.tf2ss(tf.num, tf.den)
+    n = a_c.shape[0]
+    m, frac = divmod(tf.delay, dt)
+    m = int(m)
+    if frac > dt * (1 - 1e-9):
+        m, frac = m + 1, 0.0
+    d0 = float(d_c[0, 0]) if d_c.size else 0.0
+    if n == 0:
+        b = np.array([0.0, d0]) if frac > 0 else np.array([d0])
+        return b, np.array([1.0]), m
+    phi1, gam1 = _zoh(a_c, b_c, frac) if frac > 0 else (np.eye(n), np.zeros((n, 1)))
+    phi2, gam2 = _zoh(a_c, b_c, dt - frac)
+    phi = phi2 @ phi1
+    g_early = phi2 @ gam1  # multiplies u[k-m-1]
+    g_late = gam2  # multiplies u[k-m]
+    a_poly = np.real(np.poly(phi))
+    # C adj(zI - Phi) g as polynomials in z (descending), via ss2tf on the discrete system.
+    num_late, _ = signal.ss2tf(phi, g_late, c_c, np.zeros((1, 1)))
+    num_early, _ = signal.ss2tf(phi, g_early, c_c, np.zeros((1, 1)))
+    num_late = np.real(num_late[0])
+    num_early = np.real(num_early[0])
+    # In powers of z^-1 (divide by z^n): b_late[i] z^-i, b_early shifted one tick more.
+    b = np.zeros(n + 2)
+    b[: n + 1] += num_late
+    b[1 : n + 2] += num_early
+    if d0 != 0.0:
+        # direct feed-through of the input acting at t_k: u[k-m-1] with a fraction, else u[k-m]
+        b[: n + 2] += d0 * (np.r_[0.0, a_poly] if frac > 0 else np.r_[a_poly, 0.0])
+    return b, a_poly, m
+
+
+def _zoh(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
+    n = a.shape[0]
+    block = np.zeros((n + 1, n + 1))
+    block[:n, :n] = a * h
+    block[:n, n:] = b * h
+    e = linalg.expm(block)
+    return e[:n, :n], e[:n, n:]
+
+
+def sampled_response(tf: DelayedTF, u: np.ndarray, dt: float) -> np.ndarray:
+    """y[k] = y(k dt) for u[k] held over [k dt, (k+1) dt), from rest; vectorised (lfilter).
+
+    Equals DelayedTF.simulate_zoh(u, dt) (exact ZOH with the dead time, fractional ticks
+    included); u in output units, y in PV units.
+    """
+    u = np.asarray(u, dtype=float)
+    b, a, m = discrete_coefficients(tf, dt)
+    if m:
+        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
+    return signal.lfilter(b, a, u)
+
+
+def modal_response(poles: Sequence[float], residues: Sequence[float], delay: float,
+                   u: np.ndarray, dt: float) -> np.ndarray:
+    """Sampled response of sum_i r_i / (s - p_i) exp(-delay s) to u held over each tick.
+
+    Distinct real poles p_i (1/s; 0 = integrator) and residues r_i; same mathematics as
+    `sampled_response`, one first-order difference equation per mode, no matrix exponential:
+    the fast path of the model fit. From rest; u in output units, dt and delay in seconds.
+    """
+    u = np.asarray(u, dtype=float)
+    m, frac = divmod(delay, dt)
+    m = int(m)
+    if frac > dt * (1 - 1e-9):
+        m, frac = m + 1, 0.0
+    if m:
+        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
+    h2 = dt - frac
+    y = np.zeros(u.size)
+    for p, r in zip(poles, residues, strict=True):
+        if p == 0.0:
+            g_late, g_early, lam = r * h2, r * frac, 1.0
+        else:
+            e2 = math.exp(p * h2)
+            g_late = r * math.expm1(p * h2) / p
+            g_early = e2 * r * math.expm1(p * frac) / p
+            lam = e2 * math.exp(p * frac)
+        y += signal.lfilter([0.0, g_late, g_early], [1.0, -lam], u)
+    return y
+
+
+def _modes(kind: str, shape: dict[str, float]) -> tuple[list[float], list[float]]:
+    """Poles and residues of the unit-gain candidate (distinct poles; near-equal lags split)."""
+    if kind == "fopdt":
+        tc = shape["time_constant"]
+        return [-1.0 / tc], [1.0 / tc]
+    if kind in ("sopdt", "sopdt_zero"):
+        ta, tb = shape["t1"], shape["t2"]
+        tb = min(tb, ta * (1 - 1e-3))  # split a double pole (error far below any fit error)
+        p1, p2 = -1.0 / ta, -1.0 / tb
+        k = 1.0 / (ta * tb)
+        return [p1, p2], [k / (p1 - p2), k / (p2 - p1)]
+    if kind == "integrator_lag":
+        tc = shape["time_constant"]
+        return [0.0, -1.0 / tc], [1.0, -1.0]
+    raise ValueError(f"unknown model kind {kind!r}")
+
+
+# ---------------------------------------------------------------------------- fitted model
+@dataclass(frozen=True)
+class CandidateFit:
+    """One candidate's least-squares result: params (units as in FittedModel), rms residual."""
+
+    kind: str
+    params: dict[str, float]
+    tf: DelayedTF
+    residual: float  # rms output error, PV units
+    aic: float
+    offset: float  # fitted PV offset (PV units)
+    input_offset: float  # fitted input offset (output units; integrating models), else 0
+
+
+@dataclass(frozen=True)
+class FittedModel:
+    """The winning model and all candidates.
+
+    kind: "fopdt" | "sopdt" | "integrator_lag"; params: gain (PV units per output unit) or
+    velocity_gain (PV units per output unit per second), time constants and delay (s);
+    tf: the DelayedTF (continuous plant, hold delay not included); residual: rms output error
+    (PV units); candidates: every candidate's fit by kind.
+    """
+
+    kind: str
+    params: dict[str, float]
+    tf: DelayedTF
+    residual: float
+    candidates: dict[str, CandidateFit] = field(default_factory=dict)
+
+
+def _build(kind: str, theta: np.ndarray) -> tuple[DelayedTF, dict[str, float]]:
+    """Unit-gain model for the nonlinear parameters theta (log time constants, delay)."""
+    if kind == "fopdt":
+        t1, lag = math.exp(theta[0]), max(float(theta[1]), 0.0)
+        return fopdt(1.0, t1, lag), {"time_constant": t1, "delay": lag}
+    if kind in ("sopdt", "sopdt_zero"):
+        ta, tb = sorted((math.exp(theta[0]), math.exp(theta[1])), reverse=True)
+        lag = max(float(theta[2]), 0.0)
+        return sopdt(1.0, ta, tb, lag), {"t1": ta, "t2": tb, "delay": lag}
+    if kind == "integrator_lag":
+        t1, lag = math.exp(theta[0]), max(float(theta[1]), 0.0)
+        return integrator_lag(1.0, t1, lag), {"time_constant": t1, "delay": lag}
+    raise ValueError(f"unknown model kind {kind!r}")
+
+
+class _Problem:
+    """Variable-projection output-error problem for one candidate over a record."""
+
+    def __init__(self, kind: str, u: np.ndarray, y: np.ndarray, dt: float, window: slice):
+        self.kind = kind
+        self.u = u
+        self.y = y
+        self.dt = dt
+        self.window = window
+        self.yw = y[window]
+        self.ones = np.ones_like(u)
+
+    def solve(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, DelayedTF, dict]:
+        tf, shape = _build(self.kind, theta)
+        poles, res = _modes(self.kind, shape)
+        r = modal_response(poles, res, tf.delay, self.u, self.dt)[self.window]
+        cols = [r, np.ones_like(r)]
+        if self.kind == "integrator_lag":
+            cols.append(modal_response(poles, res, tf.delay, self.ones, self.dt)[self.window])
+        elif self.kind == "sopdt_zero":  # s / den: residues p_i r_i
+            res_d = [p * r for p, r in zip(poles, res, strict=True)]
+            cols.append(modal_response(poles, res_d, tf.delay, self.u, self.dt)[self.window])
+        x = np.column_stack(cols)
+        beta, *_ = np.linalg.lstsq(x, self.yw, rcond=None)
+        return self.yw - x @ beta, beta, tf, shape
+
+    def residual(self, theta: np.ndarray) -> np.ndarray:
+        return self.solve(theta)[0]
+
+
+def _start_grid(kind: str, w1: float, phase1: float) -> list[np.ndarray]:
+    """Starting points whose phase at w1 (rad/s) equals the measured phase1 (rad, < 0)."""
+    lag_total = -phase1 - (math.pi / 2 if kind == "integrator_lag" else 0.0)
+    lag_total = max(lag_total, 0.05)
+    starts: list[np.ndarray] = []
+    lag_max = math.pi / 2 * (2 if kind in ("sopdt", "sopdt_zero") else 1) * 0.97
+    for q in (0.05, 0.2, 0.35, 0.5, 0.65, 0.8, 0.95):
+        lag_phase = min((1 - q) * lag_total, lag_max)
+        delay = max(lag_total - lag_phase, 0.0) / w1
+        if kind in ("sopdt", "sopdt_zero"):
+            for share in (0.5, 0.75, 0.95):
+                pa = min(share * lag_phase, math.pi / 2 * 0.97)
+                pb = min(lag_phase - pa, math.pi / 2 * 0.97)
+                ta = max(math.tan(pa) / w1, 1e-6)
+                tb = max(math.tan(max(pb, 1e-4)) / w1, 1e-6)
+                starts.append(np.array([math.log(ta), math.log(tb), delay]))
+        else:
+            tc = max(math.tan(lag_phase) / w1, 1e-6)
+            starts.append(np.array([math.log(tc), delay]))
+    return starts
+
+
+def fit_models(
+    t: np.ndarray,
+    y: np.ndarray,
+    u: np.ndarray,
+    *,
+    ts: float | None = None,
+    w1: float,
+    phase1: float,
+    fit_from: int = 0,
+    u_ref: float | None = None,
+    candidates: Sequence[str] = CANDIDATES,
+) -> FittedModel:
+    """Fit each candidate to the sampled record by least squares; return the best.
+
+    t: sample times (s, uniform tick); y: PV (PV units); u: applied output (output units), held
+    over each tick; ts: tick (s), default the median sample spacing; w1, phase1: the measured
+    first-harmonic frequency (rad/s) and plant phase there (rad, in (-2 pi, 0)), used to seed
+    the search; fit_from: first sample index of the residual window (the model is simulated
+    from sample 0, assuming the plant at rest with input u_ref, default u[0], before it);
+    candidates: model kinds to try.
+    """
+    t = np.asarray(t, dtype=float)
+    y = np.asarray(y, dtype=float)
+    u = np.asarray(u, dtype=float)
+    if ts is None:
+        ts = float(np.median(np.diff(t)))
+    ref = float(u[0]) if u_ref is None else float(u_ref)
+    du = u - ref
+    window = slice(int(fit_from), None)
+    n_win = y.size - int(fit_from)
+    if n_win < 8:
+        raise ValueError("too few samples to fit a model")
+    fits: dict[str, CandidateFit] = {}
+    log_lo = math.log(ts * 1e-3)
+    log_hi = math.log(max(t[-1] - t[0], ts) * 1e3)
+    for kind in candidates:
+        prob = _Problem(kind, du, y, ts, window)
+        starts = _start_grid(kind, w1, phase1)
+        costs = [float(np.sum(prob.residual(s) ** 2)) for s in starts]
+        best = starts[int(np.argmin(costs))]
+        npar = _N_NONLINEAR[kind]
+        lo = np.full(npar, log_lo)
+        hi = np.full(npar, log_hi)
+        lo[-1], hi[-1] = 0.0, max(t[-1] - t[0], ts)
+        x0 = np.clip(best, lo + 1e-9, hi - 1e-9)
+        sol = optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
+                                     x_scale=np.r_[np.ones(npar - 1), max(1.0 / w1, ts)],
+                                     xtol=1e-9, ftol=1e-10, gtol=1e-10, max_nfev=200)
+        res, beta, tf_unit, shape = prob.solve(sol.x)
+        gain = float(beta[0])
+        if kind == "sopdt_zero":
+            zero = float(beta[2] / gain) if gain else 0.0
+            tf = DelayedTF((gain * zero, gain), tf_unit.den, tf_unit.delay)
+            shape = {**shape, "zero_time": zero}
+        else:
+            tf = DelayedTF(tuple(gain * c for c in tf_unit.num), tf_unit.den, tf_unit.delay)
+        params = {("velocity_gain" if kind == "integrator_lag" else "gain"): gain, **shape}
+        rss = float(np.sum(res**2))
+        npar_total = npar + _N_LINEAR[kind]
+        aic = n_win * math.log(max(rss / n_win, 1e-300)) + 2 * npar_total
+        input_offset = float(beta[2] / gain) if kind == "integrator_lag" and gain else 0.0
+        fits[kind] = CandidateFit(kind, params, tf, math.sqrt(rss / n_win), aic,
+                                  float(beta[1]), input_offset)
+    winner = min(fits.values(), key=lambda f: f.aic)
+    return FittedModel(winner.kind, dict(winner.params), winner.tf, winner.residual, fits)

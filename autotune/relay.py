@@ -1,0 +1,718 @@
+"""Relay-feedback experiment: relay state machine, amplitude adaptation, bias balancing.
+
+Pure module: samples come in as (t, pv) or (t, pv, out) with `t` device time in seconds; no clock,
+no I/O.
+
+Conventions
+- PV in PV units, output in output units, time in seconds.
+- Error e = centre - pv. Positive output makes the PV rise (for a reversed loop the runner flips
+  signs with its `sign` config before the core sees anything).
+- The relay switches to its high side (bias + amplitude*(1+asymmetry)) when e > +hysteresis and
+  to its low side (bias - amplitude*(1-asymmetry)) when e < -hysteresis; in between it keeps its
+  state. Before the first switch it starts high when pv < centre, as the device relay does.
+- The output is always clamped to [-output_limit, +output_limit].
+- "Amplitude" of the PV oscillation (`target_amplitude`, `CycleFigures.amplitude`) means the peak
+  amplitude, half the peak-to-peak swing, as in the describing function (a in d/a).
+- A cycle runs from one switch to the high side to the next one; its high half is the time spent
+  high, its low half the time spent low.
+
+Two ways to drive a `RelayExperiment`:
+- host loop: `update(t, pv)` returns the output to send for each sample;
+- device loop: the board runs the relay; `observe(t, pv, out)` follows it from the applied output
+  and returns `RelayStep.new_settings` whenever the runner should send new relay settings.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import asdict, dataclass, field, replace
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from autotune.safety import SafetyGuard, Violation
+
+__all__ = [
+    "CycleFigures",
+    "ConvergedFn",
+    "Relay",
+    "RelayEvent",
+    "RelayExperiment",
+    "RelayPlan",
+    "RelaySettings",
+    "RelayStep",
+    "clamp",
+    "default_converged",
+]
+
+HIGH = 1
+LOW = -1
+
+
+def clamp(x: float, limit: float) -> float:
+    """`x` clamped to [-limit, +limit]; NaN becomes 0.0 (never forwarded to an actuator)."""
+    if math.isnan(x):
+        return 0.0
+    return max(-limit, min(limit, x))
+
+
+def _finite(name: str, value: float) -> None:
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be a finite number, got {value!r}")
+
+
+# ---------------------------------------------------------------------------------- settings
+@dataclass(frozen=True)
+class RelaySettings:
+    """One relay configuration.
+
+    centre: relay centre (setpoint), PV units. bias: operating-point output, output units.
+    amplitude: relay amplitude d, output units (>= 0). hysteresis: eps, PV units (>= 0).
+    asymmetry: in (-1, 1); amp_high = d (1 + asymmetry), amp_low = d (1 - asymmetry).
+    """
+
+    centre: float
+    bias: float
+    amplitude: float
+    hysteresis: float
+    asymmetry: float = 0.0
+
+    def __post_init__(self) -> None:
+        for name in ("centre", "bias", "amplitude", "hysteresis", "asymmetry"):
+            _finite(name, getattr(self, name))
+        if self.amplitude < 0:
+            raise ValueError(f"relay amplitude must be >= 0, got {self.amplitude}")
+        if self.hysteresis < 0:
+            raise ValueError(f"relay hysteresis must be >= 0, got {self.hysteresis}")
+        if not -1.0 < self.asymmetry < 1.0:
+            raise ValueError(f"relay asymmetry must lie in (-1, 1), got {self.asymmetry}")
+
+    @property
+    def amp_high(self) -> float:
+        """Step above the bias on the high side, output units."""
+        return self.amplitude * (1.0 + self.asymmetry)
+
+    @property
+    def amp_low(self) -> float:
+        """Step below the bias on the low side, output units."""
+        return self.amplitude * (1.0 - self.asymmetry)
+
+    @property
+    def midpoint(self) -> float:
+        """Midway between the two output levels, output units."""
+        return self.bias + self.amplitude * self.asymmetry
+
+    def levels(self, output_limit: float) -> tuple[float, float]:
+        """(high, low) output levels after clamping to +/- output_limit."""
+        return (clamp(self.bias + self.amp_high, output_limit),
+                clamp(self.bias - self.amp_low, output_limit))
+
+    def max_amplitude(self, output_limit: float) -> float:
+        """Largest d whose two levels both stay within +/- output_limit at this bias (>= 0)."""
+        up = (output_limit - self.bias) / (1.0 + self.asymmetry)
+        down = (output_limit + self.bias) / (1.0 - self.asymmetry)
+        return max(0.0, min(up, down))
+
+    def as_dict(self) -> dict[str, float]:
+        return asdict(self)
+
+
+# ---------------------------------------------------------------------------------- relay
+class Relay:
+    """Relay with hysteresis on the error e = centre - pv; output clamped to +/- output_limit.
+
+    `update(t, pv)` returns the output (output units) to hold from this sample on. `state` is +1
+    (high), -1 (low) or 0 before the first sample. `switches` holds (t, new_state) of every
+    switch (the initial choice is not a switch); `switch_times` only the times.
+    """
+
+    def __init__(self, settings: RelaySettings, output_limit: float) -> None:
+        _finite("output_limit", output_limit)
+        if output_limit <= 0:
+            raise ValueError(f"output limit must be > 0, got {output_limit}")
+        self.settings = settings
+        self.output_limit = float(output_limit)
+        self.state = 0
+        self.switches: list[tuple[float, int]] = []
+        self.output = 0.0
+
+    @property
+    def switch_times(self) -> list[float]:
+        return [t for t, _ in self.switches]
+
+    def output_for(self, state: int) -> float:
+        """Clamped output level of `state` (+1 high, -1 low) under the current settings."""
+        high, low = self.settings.levels(self.output_limit)
+        return high if state == HIGH else low
+
+    def decide(self, pv: float) -> int:
+        """State the relay would take for `pv` (no side effects). NaN keeps the state."""
+        s = self.settings
+        e = s.centre - pv
+        if self.state == 0:
+            return HIGH if e > 0 else LOW
+        if self.state == LOW and e > s.hysteresis:
+            return HIGH
+        if self.state == HIGH and e < -s.hysteresis:
+            return LOW
+        return self.state
+
+    def update(self, t: float, pv: float) -> float:
+        new = self.decide(pv)
+        if self.state != 0 and new != self.state:
+            self.switches.append((t, new))
+        self.state = new
+        self.output = self.output_for(new)
+        return self.output
+
+
+# ---------------------------------------------------------------------------------- records
+@dataclass(frozen=True)
+class CycleFigures:
+    """Figures of one relay cycle (from a switch to high to the next one).
+
+    index: 1-based. t_start, t_end, period, high_time, low_time: seconds. amplitude_pp, pv_max,
+    pv_min, mean_pv: PV units. amplitude_d, bias: relay amplitude and bias in force (output
+    units). settled: the cycle started at or after the last settings change took effect.
+    samples: number of samples in the cycle.
+    """
+
+    index: int
+    t_start: float
+    t_end: float
+    period: float
+    amplitude_pp: float
+    high_time: float
+    low_time: float
+    mean_pv: float
+    pv_max: float
+    pv_min: float
+    amplitude_d: float
+    bias: float
+    settled: bool = True
+    samples: int = 0
+
+    @property
+    def amplitude(self) -> float:
+        """Peak amplitude a = half the peak-to-peak swing, PV units."""
+        return 0.5 * self.amplitude_pp
+
+    @property
+    def half_period_mismatch(self) -> float:
+        """(high_time - low_time) / mean half-period; 0 for equal halves, > 0 when high is longer."""
+        mean = 0.5 * (self.high_time + self.low_time)
+        return (self.high_time - self.low_time) / mean if mean > 0 else 0.0
+
+    def as_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class RelayEvent:
+    """Something the recorder and the UI should know: `kind` and plain-value `detail`.
+
+    Kinds: "cycle", "amplitude_raised", "amplitude_lowered", "amplitude_capped", "bias_changed",
+    "settings_applied" (device loop: the board uses the new settings), "converged", "limit",
+    "end".
+    """
+
+    t: float
+    kind: str
+    detail: dict[str, Any] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"t": self.t, "kind": self.kind, "detail": dict(self.detail)}
+
+
+@dataclass(frozen=True)
+class RelayStep:
+    """Result of one sample: output to hold (output units; 0.0 once done), events raised by this
+    sample, whether the experiment is over and why, relay settings to send (device loop; in host
+    loop they are already applied and given for the record), and the relay state (+1/-1)."""
+
+    output: float
+    events: list[RelayEvent]
+    done: bool
+    end_reason: str | None
+    new_settings: RelaySettings | None = None
+    state: int = 0
+
+
+ConvergedFn = Callable[[Sequence[CycleFigures]], bool]
+
+
+def default_converged(cycles: Sequence[CycleFigures], tol: float = 0.02) -> bool:
+    """True when the last two cycles agree within `tol` (relative) in period and amplitude.
+
+    Stand-in until the analysis module's criterion is plugged in (common practice, no source).
+    """
+    if len(cycles) < 2:
+        return False
+    a, b = cycles[-2], cycles[-1]
+
+    def close(x: float, y: float) -> bool:
+        scale = max(abs(x), abs(y))
+        return scale == 0 or abs(x - y) <= tol * scale
+
+    return close(a.period, b.period) and close(a.amplitude_pp, b.amplitude_pp)
+
+
+# ---------------------------------------------------------------------------------- plan
+@dataclass(frozen=True)
+class RelayPlan:
+    """How the experiment adapts and when it ends.
+
+    target_amplitude: wanted PV peak amplitude a (half peak-to-peak), PV units.
+    start_amplitude: first relay amplitude d (output units); None keeps the settings' amplitude.
+    amplitude_step_factor: largest factor by which one adjustment raises (or lowers) d.
+    max_amplitude: ceiling on d (output units); None: only the output limit bounds it.
+    pv_window: the PV may move at most this far from pv_start (PV units); None: no constraint.
+        The adaptation keeps the predicted excursion within pv_window * (1 - window_margin).
+    amplitude_tolerance: relative band around the target within which d is left alone.
+    bias_tolerance: half-periods count as balanced when |high - low| / mean half <= this.
+    bias_gain: fraction of the estimated bias error corrected per adjustment.
+    max_bias_step: largest bias change per adjustment, as a fraction of d.
+    settle_cycles: cycles to wait after a change before judging the result.
+    max_cycles: end after this many cycles ("max_cycles"). max_time: end after this many seconds
+        of samples ("max_time"); None: no time limit here (the safety guard has its own).
+    converge_tol: relative tolerance of the default convergence test.
+    stall_time: if the relay has not switched for this long (s), raise d (or end with
+        "no_oscillation" when it cannot rise); None: off.
+    max_adjustments: after this many settings changes the settings stay as they are.
+    """
+
+    target_amplitude: float
+    start_amplitude: float | None = None
+    amplitude_step_factor: float = 2.0
+    max_amplitude: float | None = None
+    pv_window: float | None = None
+    window_margin: float = 0.2
+    amplitude_tolerance: float = 0.1
+    adapt_amplitude: bool = True
+    balance_bias: bool = True
+    bias_tolerance: float = 0.03
+    bias_gain: float = 1.0
+    max_bias_step: float = 0.3
+    settle_cycles: int = 2
+    max_cycles: int = 30
+    max_time: float | None = None
+    converge_tol: float = 0.02
+    stall_time: float | None = None
+    max_adjustments: int = 12
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.target_amplitude) and self.target_amplitude > 0):
+            raise ValueError(f"target amplitude must be > 0, got {self.target_amplitude}")
+        if self.start_amplitude is not None and not (
+                math.isfinite(self.start_amplitude) and self.start_amplitude > 0):
+            raise ValueError(f"start amplitude must be > 0, got {self.start_amplitude}")
+        if not self.amplitude_step_factor > 1.0:
+            raise ValueError("amplitude step factor must be > 1")
+        for name in ("max_amplitude", "pv_window", "max_time", "stall_time"):
+            v = getattr(self, name)
+            if v is not None and not v > 0:
+                raise ValueError(f"{name} must be > 0 or None, got {v}")
+        if not 0.0 <= self.window_margin < 1.0:
+            raise ValueError("window margin must lie in [0, 1)")
+        for name in ("amplitude_tolerance", "bias_tolerance", "converge_tol", "bias_gain",
+                     "max_bias_step"):
+            if not getattr(self, name) > 0:
+                raise ValueError(f"{name} must be > 0")
+        if self.settle_cycles < 1 or self.max_cycles < 1 or self.max_adjustments < 0:
+            raise ValueError("settle_cycles and max_cycles must be >= 1, max_adjustments >= 0")
+
+
+# ---------------------------------------------------------------------------------- experiment
+class _CycleAccumulator:
+    """Running figures of the cycle in progress."""
+
+    def __init__(self, t_start: float) -> None:
+        self.t_start = t_start
+        self.t_down: float | None = None
+        self.pv_max = -math.inf
+        self.pv_min = math.inf
+        self.pv_sum = 0.0
+        self.n = 0
+
+    def add(self, pv: float) -> None:
+        if not math.isfinite(pv):  # a corrupt sample must not poison the cycle's figures
+            return
+        self.pv_max = max(self.pv_max, pv)
+        self.pv_min = min(self.pv_min, pv)
+        self.pv_sum += pv
+        self.n += 1
+
+
+class RelayExperiment:
+    """Relay experiment with amplitude adaptation, bias balancing and end conditions.
+
+    Args:
+        plan: adaptation and end conditions.
+        settings: initial relay settings (the amplitude is replaced by plan.start_amplitude
+            when given, and lowered if needed to keep both levels within the output limit).
+        output_limit: output units; every output returned lies within +/- output_limit.
+        converged: `converged(settled_cycles) -> bool`, called with the cycles completed since
+            the last settings change took effect; default `default_converged` with
+            plan.converge_tol.
+        guard: optional `SafetyGuard`; every sample is checked first and a violation ends the
+            experiment with end_reason "limit:<which>" and output 0.
+        pv_start: reference PV for the window prediction (PV units); default: the guard's
+            pv_start, else the first sample.
+
+    Attributes: `cycles` (all completed cycles), `events` (all events), `done`, `end_reason`,
+    `violation`, `settings` (as in force / last sent), `switches` ((t, new_state) list).
+    """
+
+    def __init__(self, plan: RelayPlan, settings: RelaySettings, output_limit: float, *,
+                 converged: ConvergedFn | None = None, guard: SafetyGuard | None = None,
+                 pv_start: float | None = None) -> None:
+        if not (math.isfinite(output_limit) and output_limit > 0):
+            raise ValueError(f"output limit must be a finite number > 0, got {output_limit!r}")
+        if not abs(settings.bias) < output_limit:
+            raise ValueError(f"relay bias {settings.bias:g} leaves no room inside the output "
+                             f"limit of +/-{output_limit:g}")
+        if plan.start_amplitude is not None:
+            settings = replace(settings, amplitude=plan.start_amplitude)
+        ceiling = settings.max_amplitude(output_limit)
+        if plan.max_amplitude is not None:
+            ceiling = min(ceiling, plan.max_amplitude)
+        if settings.amplitude > ceiling:
+            settings = replace(settings, amplitude=ceiling)
+        self.plan = plan
+        self.relay = Relay(settings, output_limit)
+        self.output_limit = float(output_limit)
+        self._converged: ConvergedFn = converged or (
+            lambda cs: default_converged(cs, plan.converge_tol))
+        self.guard = guard
+        if pv_start is None and guard is not None:
+            pv_start = guard.pv_start
+        self.pv_start = pv_start
+        self.cycles: list[CycleFigures] = []
+        self.events: list[RelayEvent] = []
+        self.done = False
+        self.end_reason: str | None = None
+        self.violation: Violation | None = None
+        self.adjustments = 0
+        self._t0: float | None = None
+        self._t_last_switch: float | None = None
+        self._t_change = -math.inf  # when the last settings change took effect
+        self._pending: RelaySettings | None = None  # device loop: sent, not yet seen applied
+        self._acc: _CycleAccumulator | None = None
+        self._history: list[tuple[float, float, float]] = []  # (d, bias, a) of judged cycles
+        self._capped_reported = False
+        self._step_events: list[RelayEvent] = []
+        self._new_settings: RelaySettings | None = None
+
+    # ------------------------------------------------------------------ public
+    @property
+    def settings(self) -> RelaySettings:
+        """Settings in force (device loop: the last ones sent, once the board uses them)."""
+        return self._pending or self.relay.settings
+
+    @property
+    def switches(self) -> list[tuple[float, int]]:
+        return self.relay.switches
+
+    @property
+    def state(self) -> int:
+        return self.relay.state
+
+    @property
+    def settled_cycles(self) -> list[CycleFigures]:
+        """Cycles completed since the last settings change took effect."""
+        return [c for c in self.cycles if c.t_start >= self._t_change]
+
+    def update(self, t: float, pv: float) -> RelayStep:
+        """Host loop: one sample in (t seconds, pv PV units), the output to send out."""
+        if self.done:
+            return self._result(0.0)
+        self._begin(t, pv)
+        prev_state = self.relay.state
+        new_state = self.relay.decide(pv)
+        self.relay.state = new_state
+        if prev_state == 0:
+            self._t_last_switch = t
+        elif new_state != prev_state:
+            self.relay.switches.append((t, new_state))
+            self._on_switch(t, new_state)
+        self._check_stall(t)
+        if self._new_settings is not None and not self.done:
+            # host loop: new settings apply from this sample on; a change made at a switch to
+            # high therefore leaves the cycle that starts here clean
+            self.relay.settings = self._new_settings
+            self._t_change = t
+        output = self.relay.output_for(self.relay.state)
+        self.relay.output = output
+        if self._acc is not None:
+            self._acc.add(pv)
+        self._check_end(t, pv, output)
+        return self._result(0.0 if self.done else output)
+
+    def observe(self, t: float, pv: float, out: float) -> RelayStep:
+        """Device loop: one sample of the board's own relay (t s, pv PV units, applied out output
+        units). Returns `new_settings` when the runner should send new relay settings."""
+        if self.done:
+            return self._result(0.0)
+        self._begin(t, pv)
+        if self._pending is not None and self._matches_new_levels(out):
+            self.relay.settings = self._pending
+            self._pending = None
+            self._t_change = t
+            self._emit(t, "settings_applied", self.relay.settings.as_dict())
+        new_state = HIGH if out > self.relay.settings.midpoint else LOW
+        prev_state = self.relay.state
+        if prev_state == 0:
+            self._t_last_switch = t
+        elif new_state != prev_state:
+            self.relay.switches.append((t, new_state))
+            self.relay.state = new_state
+            self._on_switch(t, new_state)
+        self.relay.state = new_state
+        self.relay.output = out
+        self._check_stall(t)
+        if self._new_settings is not None:
+            self._pending = self._new_settings
+        if self._acc is not None:
+            self._acc.add(pv)
+        self._check_end(t, pv, out)
+        return self._result(0.0 if self.done else out)
+
+    def confirm_settings(self, t: float) -> None:
+        """Device loop: the runner knows the board now uses the last settings sent (t: device
+        time, s). Normally not needed: `observe` notices the new output levels by itself."""
+        if self._pending is not None and not self.done:
+            self.relay.settings = self._pending
+            self._pending = None
+            self._t_change = t
+            self._emit(t, "settings_applied", self.relay.settings.as_dict())
+
+    def stop(self, t: float, reason: str, detail: dict[str, Any] | None = None) -> RelayStep:
+        """End the experiment from outside (abort key, fault, lost link): output 0 from now on."""
+        if not self.done:
+            self._finish(t, reason, detail or {})
+        return self._result(0.0)
+
+    # ------------------------------------------------------------------ internals
+    def _result(self, output: float) -> RelayStep:
+        events, self._step_events = self._step_events, []
+        new, self._new_settings = self._new_settings, None
+        return RelayStep(output=output, events=events, done=self.done,
+                         end_reason=self.end_reason, new_settings=new, state=self.relay.state)
+
+    def _emit(self, t: float, kind: str, detail: dict[str, Any]) -> None:
+        ev = RelayEvent(t, kind, detail)
+        self.events.append(ev)
+        self._step_events.append(ev)
+
+    def _begin(self, t: float, pv: float) -> None:
+        if self._t0 is None:
+            self._t0 = t
+            if self.pv_start is None and math.isfinite(pv):
+                self.pv_start = pv
+
+    def _finish(self, t: float, reason: str, detail: dict[str, Any]) -> None:
+        self.done = True
+        self.end_reason = reason
+        self._new_settings = None
+        self._pending = None
+        self.relay.output = 0.0
+        self._emit(t, "end", {"reason": reason, "cycles": len(self.cycles), **detail})
+
+    def _check_end(self, t: float, pv: float, out: float) -> None:
+        if self.done:
+            return
+        if self.guard is not None:
+            v = self.guard.check(t, pv, out)
+            if v is not None:
+                self.violation = v
+                self._emit(t, "limit", {"which": v.which, "value": v.value, "limit": v.limit,
+                                        "message": v.message})
+                self._finish(t, v.reason, {})
+                return
+        assert self._t0 is not None
+        if self.plan.max_time is not None and t - self._t0 >= self.plan.max_time:
+            self._finish(t, "max_time", {})
+
+    def _matches_new_levels(self, out: float) -> bool:
+        assert self._pending is not None
+        tol = 1e-5 * max(1.0, self.output_limit)
+        new = self._pending.levels(self.output_limit)
+        old = self.relay.settings.levels(self.output_limit)
+        return any(abs(out - lv) <= tol for lv in new) and not any(
+            abs(out - lv) <= tol for lv in old)
+
+    def _check_stall(self, t: float) -> None:
+        if self.plan.stall_time is None or self.done or self._t_last_switch is None:
+            return
+        if self._pending is not None or self._new_settings is not None:
+            return
+        if t - self._t_last_switch < self.plan.stall_time:
+            return
+        s = self.relay.settings
+        ceiling = self._amplitude_ceiling(s.bias)
+        d_new = min(s.amplitude * self.plan.amplitude_step_factor, ceiling)
+        if d_new <= s.amplitude * 1.01 or self.adjustments >= self.plan.max_adjustments:
+            self._finish(t, "no_oscillation", {"stalled_for": t - self._t_last_switch,
+                                               "amplitude": s.amplitude})
+            return
+        self._t_last_switch = t
+        self._issue(t, replace(s, amplitude=d_new))
+        self._emit(t, "amplitude_raised", {"from": s.amplitude, "to": d_new,
+                                           "why": "no switch", "measured_amplitude": None,
+                                           "target": self.plan.target_amplitude})
+
+    def _on_switch(self, t: float, new_state: int) -> None:
+        self._t_last_switch = t
+        if new_state == LOW:
+            if self._acc is not None and self._acc.t_down is None:
+                self._acc.t_down = t
+            return
+        acc = self._acc
+        self._acc = _CycleAccumulator(t)
+        if acc is None or acc.t_down is None or acc.n == 0:
+            return
+        s = self.relay.settings
+        cyc = CycleFigures(
+            index=len(self.cycles) + 1, t_start=acc.t_start, t_end=t, period=t - acc.t_start,
+            amplitude_pp=acc.pv_max - acc.pv_min, high_time=acc.t_down - acc.t_start,
+            low_time=t - acc.t_down, mean_pv=acc.pv_sum / acc.n, pv_max=acc.pv_max,
+            pv_min=acc.pv_min, amplitude_d=s.amplitude, bias=s.bias,
+            settled=acc.t_start >= self._t_change, samples=acc.n)
+        self.cycles.append(cyc)
+        self._emit(t, "cycle", cyc.as_dict())
+        if len(self.cycles) >= self.plan.max_cycles:
+            self._finish(t, "max_cycles", {})
+            return
+        self._judge(t, cyc)
+
+    def _judge(self, t: float, cyc: CycleFigures) -> None:
+        """At the end of a cycle: adapt the settings, or test convergence."""
+        if self._pending is not None:
+            return
+        settled = self.settled_cycles
+        if not cyc.settled or len(settled) < self.plan.settle_cycles:
+            return
+        if not all(math.isfinite(x) for x in (cyc.period, cyc.amplitude_pp, cyc.high_time,
+                                              cyc.low_time, cyc.mean_pv)):
+            return
+        s = self.relay.settings
+        self._history.append((s.amplitude, s.bias, cyc.amplitude))
+        new = s
+        if self.adjustments < self.plan.max_adjustments:
+            new = self._balance_bias(t, cyc, new)
+            new = self._adapt_amplitude(t, cyc, new)
+        if new != s:
+            self._issue(t, new)
+            return
+        if len(settled) >= 2 and self._converged(settled):
+            self._emit(t, "converged", {"cycles": len(settled), "period": cyc.period,
+                                        "amplitude_pp": cyc.amplitude_pp})
+            self._finish(t, "converged", {})
+
+    def _issue(self, t: float, new: RelaySettings) -> None:
+        self.adjustments += 1
+        self._new_settings = new
+
+    def _amplitude_ceiling(self, bias: float) -> float:
+        s = replace(self.relay.settings, bias=bias)
+        ceiling = s.max_amplitude(self.output_limit)
+        if self.plan.max_amplitude is not None:
+            ceiling = min(ceiling, self.plan.max_amplitude)
+        return ceiling
+
+    def _balance_bias(self, t: float, cyc: CycleFigures, s: RelaySettings) -> RelaySettings:
+        """Proportional bias correction from the half-period mismatch (common practice, no source).
+
+        With an integrating approximation the half-periods go as 1/(d + delta) and 1/(d - delta)
+        for a bias error delta, so (high - low)/(high + low) = -delta/d: a longer high half means
+        the bias is too low.
+        """
+        if not self.plan.balance_bias or s.asymmetry != 0.0 or s.amplitude <= 0:
+            return s
+        half = 0.5 * (cyc.high_time + cyc.low_time)
+        tick = cyc.period / max(cyc.samples, 1)
+        tol = max(self.plan.bias_tolerance, 2.0 * tick / half if half > 0 else 0.0)
+        if abs(cyc.half_period_mismatch) <= tol:
+            return s
+        r = (cyc.high_time - cyc.low_time) / (cyc.high_time + cyc.low_time)
+        step = self.plan.bias_gain * r * s.amplitude
+        cap = self.plan.max_bias_step * s.amplitude
+        step = max(-cap, min(cap, step))
+        room = self.output_limit - s.amplitude
+        new_bias = max(-room, min(room, s.bias + step)) if room > 0 else s.bias
+        if abs(new_bias - s.bias) <= 1e-12 * max(1.0, abs(s.bias)):
+            return s
+        self._emit(t, "bias_changed", {"from": s.bias, "to": new_bias,
+                                       "high_time": cyc.high_time, "low_time": cyc.low_time,
+                                       "mismatch": cyc.half_period_mismatch})
+        return replace(s, bias=new_bias)
+
+    def _predict(self, d_new: float, d: float, a: float) -> tuple[float, float]:
+        """(best, conservative) predicted PV amplitude at d_new from the describing-function
+        proportionality a ~ d, refined by a secant through the last judged cycle at another d."""
+        prop = a * d_new / d if d > 0 else a
+        slope = self._secant_slope(d)
+        if slope is None:
+            return prop, prop
+        sec = a + slope * (d_new - d)
+        return sec, max(sec, prop)
+
+    def _secant_slope(self, d: float) -> float | None:
+        for d_prev, _, a_prev in reversed(self._history[:-1]):
+            if abs(d_prev - d) > 0.05 * d:
+                slope = (self._history[-1][2] - a_prev) / (d - d_prev)
+                return slope if slope > 0 else None
+        return None
+
+    def _adapt_amplitude(self, t: float, cyc: CycleFigures, s: RelaySettings) -> RelaySettings:
+        """Raise or lower d towards the target amplitude within the output and window limits."""
+        if not self.plan.adapt_amplitude or s.amplitude <= 0:
+            return s
+        p = self.plan
+        d, a, target = s.amplitude, cyc.amplitude, p.target_amplitude
+        slope = self._secant_slope(d)
+        # d aimed at the target
+        if a < target * (1 - p.amplitude_tolerance):
+            if a <= 0:
+                d_t = d * p.amplitude_step_factor
+            elif slope is not None:
+                d_t = d + (target - a) / slope
+            else:
+                d_t = d * target / a
+            d_t = min(max(d_t, d), d * p.amplitude_step_factor)
+        elif a > target * (1 + p.amplitude_tolerance):
+            d_t = d + (target - a) / slope if slope is not None else d * target / a
+            d_t = max(min(d_t, d), d / p.amplitude_step_factor)
+        else:
+            d_t = d
+        limited_by = None
+        # PV window: keep the predicted excursion within window * (1 - margin)
+        if p.pv_window is not None and self.pv_start is not None and a > 0:
+            mid = 0.5 * (cyc.pv_max + cyc.pv_min)
+            allow = p.pv_window * (1 - p.window_margin) - abs(mid - self.pv_start)
+            if allow <= 0:
+                d_w = d / p.amplitude_step_factor
+            else:
+                d_w = d * allow / a
+                if slope is not None:
+                    d_w = min(d_w, d + (allow - a) / slope)
+                d_w = max(d_w, d / p.amplitude_step_factor)
+            if d_w < d_t:
+                d_t, limited_by = d_w, "pv_window"
+        ceiling = self._amplitude_ceiling(s.bias)
+        if ceiling < d_t:
+            d_t = ceiling
+            limited_by = "output_limit" if (p.max_amplitude is None
+                                            or ceiling < p.max_amplitude) else "max_amplitude"
+        if abs(d_t - d) <= 0.02 * d:
+            if limited_by is not None and a < target * (1 - p.amplitude_tolerance) and (
+                    not self._capped_reported):
+                self._capped_reported = True
+                self._emit(t, "amplitude_capped", {"amplitude": d, "measured_amplitude": a,
+                                                   "target": target, "limited_by": limited_by})
+            return s
+        best, _ = self._predict(d_t, d, a)
+        kind = "amplitude_raised" if d_t > d else "amplitude_lowered"
+        self._emit(t, kind, {"from": d, "to": d_t, "measured_amplitude": a, "target": target,
+                             "predicted_amplitude": best, "limited_by": limited_by})
+        return replace(s, amplitude=d_t)

@@ -1,0 +1,367 @@
+"""Loop frequency response, margins, closed-loop stability and the robust PI/PID optimum (pure).
+
+The loop is L = C G: G a `DelayedTF` plant (PV units per output unit), C the PID's feedback
+path (parallel gains, derivative through the filter Tf = kd/(kp N)). With a loop period `ts`
+the controller is the discrete `DiscretePid` (C evaluated at z = exp(j w ts)) and the plant is
+preceded by the zero-order hold, taken as (1 - exp(-j w ts))/(j w ts) (this neglects aliasing of
+the plant's response above the Nyquist frequency pi/ts; it is close when the plant gain there is
+small). Without `ts` everything is continuous time. Frequencies in rad/s.
+
+The robust optimum maximises the integral gain ki (load-disturbance rejection) subject to a
+maximum sensitivity Ms = max |1/(1 + L)| of at most a target, the criterion of Åström,
+Panagopoulos and Hägglund ("Design of PI controllers based on non-convex optimization",
+Automatica 34, 1998), for PI and for PID with derivative filter.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize
+
+from autotune.lti import DelayedTF
+from autotune.pid import PidGains, filter_time
+
+# ---------------------------------------------------------------- frequency responses
+
+
+def reference_frequency(plant: DelayedTF, ts: float | None = None) -> float:
+    """A frequency (rad/s) that sets the scale of the loop: the plant's phase crossover at
+    -180 degrees (hold included when sampled), else 1/delay, else 1/(sum of time constants)."""
+    w180 = plant.phase_crossover(-np.pi)
+    if w180 is None and ts is not None:
+        w180 = _sampled_phase_crossover(plant, ts)
+    if w180 is not None:
+        return w180
+    if plant.delay > 0:
+        return 1.0 / plant.delay
+    return 1.0 / max(1e-6, abs(plant.den[-2] / plant.den[-1]) if len(plant.den) > 1 else 1.0)
+
+
+def _sampled_phase_crossover(plant: DelayedTF, ts: float) -> float | None:
+    w = np.linspace(1e-6, np.pi / ts, 4000)
+    ph = plant.phase(w) - w * ts / 2.0  # the hold's phase is -w ts/2
+    idx = np.nonzero(ph <= -np.pi)[0]
+    return None if idx.size == 0 else float(w[idx[0]])
+
+
+def frequency_grid(plant: DelayedTF, ts: float | None = None, points: int = 3000,
+                   span: tuple[float, float] = (1e-3, 40.0)) -> np.ndarray:
+    """Log-spaced grid around the reference frequency, capped at the Nyquist frequency."""
+    wr = reference_frequency(plant, ts)
+    lo, hi = wr * span[0], wr * span[1]
+    if ts is not None:
+        hi = min(hi, np.pi / ts * 0.999)
+    return np.logspace(np.log10(lo), np.log10(hi), points)
+
+
+def hold_response(w: np.ndarray, ts: float | None) -> np.ndarray:
+    """Zero-order hold (1 - exp(-j w ts))/(j w ts); 1 without ts."""
+    w = np.asarray(w, dtype=float)
+    if ts is None:
+        return np.ones(w.shape, dtype=complex)
+    x = 1j * w * ts
+    return (1.0 - np.exp(-x)) / x
+
+
+def controller_bases(w: np.ndarray, ts: float | None, tf: np.ndarray | float
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Per unit ki and per unit kd responses (I, D) of the PID's feedback path: C = kp + ki I +
+    kd D. Continuous: I = 1/(j w), D = j w/(1 + j w Tf). Discrete (DiscretePid): I = ts/(z - 1),
+    D = (1 - 1/z)/((Tf + ts)(1 - ad/z)), ad = Tf/(Tf + ts)."""
+    w = np.asarray(w, dtype=float)
+    tf = np.asarray(tf, dtype=float)
+    if ts is None:
+        s = 1j * w
+        return 1.0 / s, s / (1.0 + s * tf)
+    zi = np.exp(-1j * w * ts)  # 1/z
+    ad = tf / (tf + ts)
+    return ts * zi / (1.0 - zi), (1.0 - zi) / ((tf + ts) * (1.0 - ad * zi))
+
+
+def loop_response(plant: DelayedTF, gains: PidGains, w: np.ndarray, n: float = 10.0,
+                  ts: float | None = None) -> np.ndarray:
+    """L(j w) = C(j w) G(j w) (hold and discrete controller when `ts` is given)."""
+    ib, db = controller_bases(w, ts, filter_time(gains, n))
+    c = gains.kp + gains.ki * ib + gains.kd * db
+    return c * plant.freq_response(w) * hold_response(w, ts)
+
+
+# ---------------------------------------------------------------- margins and stability
+
+
+@dataclass(frozen=True)
+class LoopMargins:
+    """ms: max |1/(1+L)|; gain_margin: factor at the phase crossover closest to 1 on a log
+    scale (inf if none); phase_margin_deg: smallest |margin| among gain crossovers (inf if
+    none); frequencies in rad/s."""
+
+    ms: float
+    w_ms: float
+    gain_margin: float
+    w_pc: float
+    phase_margin_deg: float
+    w_gc: float
+
+
+def loop_margins(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float | None = None,
+                 w: np.ndarray | None = None) -> LoopMargins:
+    """Ms, gain and phase margins of the loop, crossings refined by root finding.
+
+    Selection as python-control's stability_margins: the gain margin closest to 1 in log, the
+    phase margin smallest in magnitude.
+    """
+    w = frequency_grid(plant, ts, points=4000, span=(1e-4, 100.0)) if w is None else w
+
+    def lf(x: float) -> complex:
+        return complex(loop_response(plant, gains, np.array([x]), n, ts)[0])
+
+    L = loop_response(plant, gains, w, n, ts)
+    s_abs = np.abs(1.0 + L)
+    i = int(np.argmin(s_abs))
+    lo, hi = w[max(i - 1, 0)], w[min(i + 1, w.size - 1)]
+    if hi > lo:
+        res = optimize.minimize_scalar(lambda x: abs(1.0 + lf(x)), bounds=(lo, hi),
+                                       method="bounded", options={"xatol": lo * 1e-10})
+        smin, w_ms = (res.fun, res.x) if res.fun < s_abs[i] else (s_abs[i], w[i])
+    else:
+        smin, w_ms = s_abs[i], w[i]
+    ms = math.inf if smin == 0 else 1.0 / float(smin)
+
+    # phase crossovers: Im L changes sign with Re L < 0; refine the candidates nearest to the
+    # selected one (grid estimate), python-control's rule then picks among the refined ones
+    gms, wpcs = [], []
+    im = L.imag
+    cand = [j for j in np.nonzero(np.sign(im[:-1]) != np.sign(im[1:]))[0]
+            if L.real[j] < 0 or L.real[j + 1] < 0]
+    cand.sort(key=lambda j: abs(math.log(max(abs(L[j]), 1e-300))))
+    for j in cand[:3]:
+        x = optimize.brentq(lambda v: lf(v).imag, w[j], w[j + 1], xtol=w[j] * 1e-12)
+        lx = lf(x)
+        if lx.real < 0:
+            gms.append(-1.0 / lx.real)
+            wpcs.append(x)
+    if gms:
+        k = int(np.argmin(np.abs(np.log(gms))))
+        gm, wpc = float(gms[k]), float(wpcs[k])
+    else:
+        gm, wpc = math.inf, math.nan
+
+    # gain crossovers: |L| = 1
+    pms, wgcs = [], []
+    mag = np.abs(L) - 1.0
+    cand = list(np.nonzero(np.sign(mag[:-1]) != np.sign(mag[1:]))[0])
+
+    def pm_of(x: float) -> float:
+        ang = math.degrees(np.angle(lf(x)))  # (-180, 180]
+        return ang + 180.0 if ang <= 0 else ang - 180.0
+
+    cand.sort(key=lambda j: abs(pm_of(w[j])))
+    for j in cand[:3]:
+        x = optimize.brentq(lambda v: abs(lf(v)) - 1.0, w[j], w[j + 1], xtol=w[j] * 1e-12)
+        pms.append(pm_of(x))
+        wgcs.append(x)
+    if pms:
+        k = int(np.argmin(np.abs(pms)))
+        pm, wgc = float(pms[k]), float(wgcs[k])
+    else:
+        pm, wgc = math.inf, math.nan
+    return LoopMargins(ms, float(w_ms), gm, wpc, pm, wgc)
+
+
+def pade(delay: float, order: int) -> tuple[np.ndarray, np.ndarray]:
+    """(num, den) of the [order/order] Padé approximant of exp(-delay s), highest power first.
+
+    Coefficient of s^k: (2n - k)! n! / ((2n)! k! (n - k)!) (-delay)^k in the numerator, the
+    same with +delay in the denominator (standard result).
+    """
+    n = order
+    c = [math.factorial(2 * n - k) * math.factorial(n)
+         / (math.factorial(2 * n) * math.factorial(k) * math.factorial(n - k)) for k in range(n + 1)]
+    num = np.array([c[k] * (-delay) ** k for k in range(n + 1)])[::-1]
+    den = np.array([c[k] * delay**k for k in range(n + 1)])[::-1]
+    return num, den
+
+
+def closed_loop_poles(plant: DelayedTF, gains: PidGains, n: float = 10.0,
+                      ts: float | None = None, pade_order: int = 12) -> np.ndarray:
+    """Closed-loop poles (rad/s) of the continuous loop with the dead time as a Padé approximant
+    of `pade_order`; with `ts` the hold is counted as ts/2 of extra dead time. Time is scaled by
+    the reference frequency before the roots are taken (conditioning)."""
+    wr = reference_frequency(plant, ts)
+    tau = 1.0 / wr
+
+    def scaled(p: np.ndarray | tuple[float, ...]) -> np.ndarray:
+        p = np.asarray(p, dtype=float)
+        deg = p.size - 1
+        return p * tau ** -np.arange(deg, -1, -1.0)  # p(s) with s = sigma / tau
+
+    tf = filter_time(gains, n)
+    # C(s) = (kp s (1 + Tf s) + ki (1 + Tf s) + kd s^2) / (s (1 + Tf s))
+    cnum = np.polyadd(np.polyadd(gains.kp * np.array([tf, 1.0, 0.0]),
+                                 gains.ki * np.array([tf, 1.0])), gains.kd * np.array([1.0, 0.0, 0.0]))
+    cden = np.array([tf, 1.0, 0.0])
+    if gains.ki == 0.0:
+        cnum = np.polyadd(gains.kp * np.array([tf, 1.0]), gains.kd * np.array([1.0, 0.0]))
+        cden = np.array([tf, 1.0])
+    delay = plant.delay + (ts / 2.0 if ts is not None else 0.0)
+    pn, pd = pade(delay, pade_order) if delay > 0 else (np.array([1.0]), np.array([1.0]))
+    num = np.polymul(np.polymul(scaled(cnum), scaled(plant.num)), scaled(pn))
+    den = np.polymul(np.polymul(scaled(cden), scaled(plant.den)), scaled(pd))
+    char = np.polyadd(den, num)
+    char = np.trim_zeros(char / np.max(np.abs(char)), "f")
+    return np.roots(char) / tau
+
+
+def is_stable(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float | None = None,
+              pade_order: int = 12) -> bool:
+    """True when every closed-loop pole (see `closed_loop_poles`) has negative real part."""
+    poles = closed_loop_poles(plant, gains, n, ts, pade_order)
+    wr = reference_frequency(plant, ts)
+    return bool(np.all(poles.real < -1e-9 * wr))
+
+
+# ---------------------------------------------------------------- robust optimum
+
+
+@dataclass(frozen=True)
+class RobustDesign:
+    """The optimum found: gains, its Ms (on the same loop), closed-loop stability."""
+
+    gains: PidGains
+    ms: float
+    stable: bool
+
+
+def _ki_max(a: np.ndarray, b: np.ndarray, r: float) -> np.ndarray:
+    """Largest ki >= 0 with |a + ki b| >= r at every frequency, reached from ki = 0 without
+    crossing the disc (per row of a 2-D array); -inf where ki = 0 already violates it."""
+    bb = np.abs(b) ** 2
+    ab = (a * np.conj(b)).real
+    c0 = np.abs(a) ** 2 - r * r
+    disc = ab * ab - bb * c0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sq = np.sqrt(np.where(disc > 0, disc, 0.0))
+        k1 = np.where(disc > 0, (-ab - sq) / bb, np.inf)
+    k1 = np.where(k1 > 0, k1, np.inf)
+    out = np.min(k1, axis=-1)
+    return np.where(np.any(c0 < 0, axis=-1), -np.inf, out)
+
+
+def _kp_upper(plant: DelayedTF, w: np.ndarray, g: np.ndarray, r: float) -> float:
+    """kp beyond which the P loop leaves the disc at the phase crossover: Ku (1 - 1/Ms)."""
+    im = g.imag
+    idx = np.nonzero((np.sign(im[:-1]) != np.sign(im[1:])) & (g.real[:-1] < 0))[0]
+    if idx.size:
+        return float((1.0 - r) / abs(g[idx[0]]))
+    return float(10.0 / np.min(np.abs(g)))
+
+
+def _verify(plant: DelayedTF, gains: PidGains, ms_target: float, n: float, ts: float | None
+            ) -> RobustDesign:
+    """Exact Ms of the design; scale ki (then all gains) down until Ms <= target (+0.002)."""
+    m = loop_margins(plant, gains, n, ts).ms
+    if m > ms_target + 0.002:
+        lo, hi = 0.0, 1.0
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            g = PidGains(gains.kp, gains.ki * mid, gains.kd)
+            if loop_margins(plant, g, n, ts).ms <= ms_target + 0.002:
+                lo = mid
+            else:
+                hi = mid
+        gains = PidGains(gains.kp, gains.ki * lo, gains.kd)
+        m = loop_margins(plant, gains, n, ts).ms
+    return RobustDesign(gains, m, is_stable(plant, gains, n, ts))
+
+
+def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None) -> RobustDesign:
+    """PI with the largest ki subject to Ms <= ms_target (Åström, Panagopoulos and Hägglund
+    1998): for each kp the largest admissible ki follows in closed form from the circle
+    condition |1 + L(j w)| >= 1/Ms at every w (a quadratic in ki); the best kp is found on a
+    grid and refined by a bounded scalar search."""
+    r = 1.0 / ms_target
+    w = frequency_grid(plant, ts)
+    g = plant.freq_response(w) * hold_response(w, ts)
+    ib, _ = controller_bases(w, ts, 0.0)
+    b = g * ib
+    kp_hi = _kp_upper(plant, w, g, r)
+
+    def f(kp: np.ndarray) -> np.ndarray:
+        kp = np.atleast_1d(kp)[:, None]
+        return _ki_max(1.0 + kp * g, np.broadcast_to(b, (kp.shape[0], b.size)), r)
+
+    kps = np.linspace(0.0, kp_hi, 81)[1:]
+    kis = f(kps)
+    j = int(np.argmax(kis))
+    lo, hi = kps[max(j - 1, 0)], kps[min(j + 1, kps.size - 1)]
+    res = optimize.minimize_scalar(lambda x: -float(f(np.array([x]))[0]), bounds=(lo, hi),
+                                   method="bounded", options={"xatol": kp_hi * 1e-6})
+    kp, ki = (res.x, -res.fun) if -res.fun > kis[j] else (kps[j], kis[j])
+    return _verify(plant, PidGains(float(kp), float(ki), 0.0), ms_target, 10.0, ts)
+
+
+def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
+               ts: float | None = None, td_ti_max: float = 0.5) -> RobustDesign:
+    """PID with derivative filter (Tf = Td/N) maximising ki subject to Ms <= ms_target.
+
+    For fixed (kp, kd) the largest ki follows in closed form (as for PI); (kp, kd) are searched
+    on a grid, then refined by Nelder-Mead. Td/Ti is kept at most `td_ti_max` (Td = Ti/4 is the
+    classical ratio; the bound keeps the optimiser off derivative-dominated designs whose gain
+    rests on the filter).
+    """
+    r = 1.0 / ms_target
+    w = frequency_grid(plant, ts, points=4000, span=(1e-3, 200.0))
+    g = plant.freq_response(w) * hold_response(w, ts)
+    ib, _ = controller_bases(w, ts, 0.0)
+    b = g * ib
+    pi = robust_pi(plant, ms_target, ts)
+    ku_like = _kp_upper(plant, w, g, 0.0)  # ~ Ku
+    wr = reference_frequency(plant, ts)
+
+    wc, gc, bc = w[::5], g[::5], b[::5]
+
+    def f(kp: np.ndarray, kd: np.ndarray, coarse: bool = False) -> np.ndarray:
+        ww, gg, bb = (wc, gc, bc) if coarse else (w, g, b)
+        kp = np.atleast_1d(kp)[:, None]
+        kd = np.atleast_1d(kd)[:, None]
+        tf = np.where(kp > 0, kd / np.maximum(kp, 1e-300) / n, 0.0)
+        _, db = controller_bases(ww[None, :], ts, tf)
+        lpd = (kp + kd * db) * gg
+        ki = _ki_max(1.0 + lpd, np.broadcast_to(bb, (kp.shape[0], bb.size)), r)
+        # the disc condition only certifies designs whose loop has rolled off inside the grid
+        # (else crossings beyond it go unseen): |L| < 0.5 at the top frequency, kp <= 4 Ku
+        ki = np.where((np.abs(lpd[:, -1]) < 0.5) & (kp[:, 0] <= 4.0 * ku_like), ki, -np.inf)
+        # Td/Ti = kd ki / kp^2 <= td_ti_max
+        cap = np.where(kd[:, 0] > 0, td_ti_max * kp[:, 0] ** 2 / np.maximum(kd[:, 0], 1e-300),
+                       np.inf)
+        ok = (kp[:, 0] > 0) & (kd[:, 0] >= 0)
+        return np.where(ok, np.minimum(ki, cap), -np.inf)
+
+    kp_grid = np.linspace(0.05, 1.6, 24) * ku_like
+    kd_grid = np.linspace(0.0, 1.2, 24) * ku_like / wr
+    kpm, kdm = np.meshgrid(kp_grid, kd_grid, indexing="ij")
+    vals = f(kpm.ravel(), kdm.ravel(), coarse=True)
+    j = int(np.argmax(vals))
+    x0 = np.array([kpm.ravel()[j] / ku_like, kdm.ravel()[j] * wr / ku_like])
+    best = (vals[j], kpm.ravel()[j], kdm.ravel()[j])
+    if pi.gains.ki > best[0]:
+        best = (pi.gains.ki, pi.gains.kp, 0.0)
+        x0 = np.array([pi.gains.kp / ku_like, 0.0])
+
+    def obj(x: np.ndarray) -> float:
+        v = float(f(np.array([x[0] * ku_like]), np.array([max(x[1], 0.0) * ku_like / wr]))[0])
+        return -v if np.isfinite(v) else 1e300
+
+    res = optimize.minimize(obj, x0, method="Nelder-Mead",
+                            options={"xatol": 1e-5, "fatol": 1e-9 * max(best[0], 1e-300),
+                                     "maxiter": 400, "initial_simplex": None})
+    if -res.fun > best[0]:
+        best = (-res.fun, res.x[0] * ku_like, max(res.x[1], 0.0) * ku_like / wr)
+    gains = PidGains(float(best[1]), float(best[0]), float(best[2]))
+    out = _verify(plant, gains, ms_target, n, ts)
+    if not out.stable or out.gains.ki < pi.gains.ki:
+        return pi  # PI is the PID with kd = 0; never return less than it
+    return out

@@ -1,0 +1,544 @@
+"""The `tune` runner: prechecks, then a bounded relay experiment, then analysis and proposals.
+
+Wires the pure core (prechecks, relay, safety, analysis, design) to a `protocol.Link` through
+`autotune.runner_base.PoweredRun` (connection, cautions, limits, recording, the stop path).
+
+Phases (all durations in device time, seconds):
+  rest       output held at the bias for `prechecks.rest_time`: noise, drift, resolution;
+             the relay hysteresis defaults to max(3 x noise, 2 x resolution)
+  direction  one output pulse of `prechecks.pulse_size` until the PV has moved beyond the
+             threshold or `prechecks.pulse_timeout` passed; wrong way or no motion stops the run
+  breakaway  (optional) a slow output ramp measures the deadband; the relay starts above it
+  relay      host loop (the relay runs here, one SetOutput per sample) or device loop
+             (StartRelay on the board; the host follows, supervises and sends new settings)
+Then the device is stopped (always, through the single stop path) and the recorded relay
+samples go to `autotune.analysis.analyse_relay` and `autotune.design.propose`.
+
+Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
+-centre, so it works with a loop whose positive output raises its PV. The device-side relay
+cannot invert its output, so such a loop runs in host loop.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TextIO
+
+import numpy as np
+
+from autotune import prechecks as pre
+from autotune.config import Config, check_against_noise
+from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
+from autotune.progress import CycleEstimate, Phase, RunSnapshot
+from autotune.recorder import export_csv, read_session, write_result
+from autotune.relay import RelayExperiment, RelayPlan, RelaySettings
+from autotune.runner_base import PoweredRun, RunEnded, RunOptions
+
+DIRECTION_MIN_FRACTION = 0.1  # the pulse must move the PV by a tenth of the target amplitude
+#                               at least (common practice, no source)
+
+
+@dataclass
+class Arrays:
+    """Growing arrays of one phase (device time s, PV units, output units)."""
+
+    t: list[float] = field(default_factory=list)
+    pv: list[float] = field(default_factory=list)
+    out: list[float] = field(default_factory=list)
+
+    def add(self, t: float, pv: float, out: float) -> None:
+        self.t.append(t)
+        self.pv.append(pv)
+        self.out.append(out)
+
+    def np(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        return np.array(self.t), np.array(self.pv), np.array(self.out)
+
+
+@dataclass
+class TuneOutcome:
+    """What `run_tune` returns: exit code, end reason, the result dict (None when the run
+    stopped before the relay produced cycles) and the files written."""
+
+    exit_code: int
+    reason: str
+    message: str
+    result: dict[str, Any] | None
+    session_path: Path | None
+    result_path: Path | None
+    stop_confirmed: bool | None
+
+
+def choose_loop(requested: str, has_device_relay: bool, has_host_loop: bool,
+                sign: int) -> str:
+    """"host" or "device" for the relay; raises UserError when the board cannot do it."""
+    if requested == "auto":
+        if has_device_relay and sign == 1:
+            return "device"
+        if has_host_loop:
+            return "host"
+        raise UserError("the board offers neither a host loop nor (for this sign) a device "
+                        "relay", exit_code=EXIT_USAGE)
+    if requested == "device":
+        if not has_device_relay:
+            raise UserError("--loop device: the board does not offer a device-side relay; "
+                            "use --loop host", exit_code=EXIT_USAGE)
+        if sign != 1:
+            raise UserError("--loop device needs sign = +1 (the device relay cannot invert its "
+                            "output); use --loop host", exit_code=EXIT_USAGE)
+        return "device"
+    if not has_host_loop:
+        raise UserError("--loop host: the board does not accept host outputs; use --loop device",
+                        exit_code=EXIT_USAGE)
+    return "host"
+
+
+def steady_cycles(cycles: list[Any], tol: float, *, min_cycles: int = 4, tick: float = 0.0,
+                  noise_std: float = 0.0, resolution: float = 0.0) -> bool:
+    """Has the relay oscillation settled? (pure; cycles with `period` s and `amplitude_pp`).
+
+    At least `min_cycles` cycles, and the mean period and mean peak-to-peak amplitude of the
+    last two cycles agree with those of the two before within a relative tolerance of `tol`,
+    widened to what the measurement can resolve: one tick (s) of switching jitter in the period,
+    resolution + 2 x noise (PV units) in a peak-to-peak reading (common practice, no source).
+    """
+    if len(cycles) < max(min_cycles, 4):
+        return False
+    a, b = cycles[-4:-2], cycles[-2:]
+    pa = sum(c.period for c in a) / 2
+    pb = sum(c.period for c in b) / 2
+    aa = sum(c.amplitude_pp for c in a) / 2
+    ab = sum(c.amplitude_pp for c in b) / 2
+    if min(pa, pb, aa, ab) <= 0:
+        return False
+    tol_p = max(tol, tick / min(pa, pb))
+    tol_a = max(tol, (resolution + 2.0 * noise_std) / min(aa, ab))
+    return abs(pa - pb) <= tol_p * max(pa, pb) and abs(aa - ab) <= tol_a * max(aa, ab)
+
+
+class LinePrinter:
+    """Plain progress display: one line per phase change, relay cycle, event or alarm.
+
+    Writes no escape codes (safe for logs and pipes). Use as the runner's `on_update`.
+    """
+
+    def __init__(self, stream: TextIO | None = None) -> None:
+        self.stream = stream if stream is not None else sys.stdout
+        self._phase: Phase | None = None
+        self._message = ""
+        self._cycle = 0
+        self._alarm: str | None = None
+
+    def __call__(self, snap: RunSnapshot) -> None:
+        lines: list[str] = []
+        if snap.phase != self._phase or (snap.message and snap.message != self._message):
+            msg = f": {snap.message}" if snap.message else ""
+            lines.append(f"[{snap.phase.value}]{msg}")
+            self._phase, self._message = snap.phase, snap.message
+        if snap.cycle > self._cycle and snap.estimates:
+            e = snap.estimates[-1]
+            lines.append(f"  cycle {e.index}: period {e.period:.4g} s, peak-to-peak "
+                         f"{e.amplitude:.4g}, Ku ~ {e.ku:.4g}, Tu ~ {e.tu:.4g} s")
+            self._cycle = snap.cycle
+        if snap.alarm and snap.alarm != self._alarm:
+            lines.append(f"!! {snap.alarm}")
+            self._alarm = snap.alarm
+        for line in lines:
+            print(line, file=self.stream, flush=True)
+
+
+class TuneRun:
+    """One `tune` run. `run()` returns a TuneOutcome; it never leaves the motor powered."""
+
+    def __init__(self, cfg: Config, options: RunOptions, *,
+                 on_update: Callable[[RunSnapshot], None] | None = None,
+                 say: Callable[[str], None] | None = None, csv: bool = False) -> None:
+        self.cfg = cfg
+        self.options = options
+        self.on_update = on_update
+        self.say_fn = say
+        self.csv = csv
+        self.sign = cfg.connection.sign
+        self.rest: pre.RestReport | None = None
+        self.direction: pre.DirectionReport | None = None
+        self.breakaway: pre.BreakawayReport | None = None
+        self.hysteresis: float | None = cfg.relay.hysteresis
+        self.start_amplitude = cfg.start_amplitude
+        self.centre = 0.0  # PV units (raw)
+        self.experiment: RelayExperiment | None = None
+        self.relay_data = Arrays()  # sign-normalised PV, applied output
+        self.estimates: list[CycleEstimate] = []
+        self.precheck_results: dict[str, Any] = {}
+        self.run: PoweredRun | None = None
+        self._rest_t = np.zeros(0)
+        self._rest_y = np.zeros(0)
+
+    # ------------------------------------------------------------------ entry point
+    def execute(self) -> TuneOutcome:
+        cfg = self.cfg
+        run = PoweredRun(cfg, self.options, on_update=self.on_update, say=self.say_fn)
+        self.run = run
+        with run:
+            run.loop_mode = choose_loop(cfg.connection.loop, run.info.has_device_relay,
+                                        run.info.has_host_loop, self.sign)
+            run.arm({"loop_mode": run.loop_mode})
+            run.event("loop_mode", run.loop_mode)
+            self._prechecks(run)
+            self._relay(run)
+        # the stop path has run; the motor is stopped (or the operator was told to cut power)
+        result = None
+        out = run.outcome
+        if out.error is not None and not isinstance(out.error, UserError):
+            run.end_session()
+            raise out.error
+        if self.experiment is not None and self.experiment.cycles:
+            result = self._analyse(run)
+        session_path = result_path = None
+        if self.options.out_dir is not None and run.writer is not None:
+            session_path = run.writer.path
+            run.end_session(cycles=len(self.experiment.cycles) if self.experiment else 0)
+            if self.csv:
+                export_csv(read_session(session_path), session_path.with_suffix(".csv"))
+            if result is not None:
+                result_path = write_result(Path(self.options.out_dir) / "result.json", result)
+        if out.error is not None and isinstance(out.error, UserError) and out.stop is not None \
+                and out.stop.confirmed:
+            raise out.error
+        return TuneOutcome(out.exit_code, out.reason, out.message, result, session_path,
+                           result_path, None if out.stop is None else out.stop.confirmed)
+
+    # ------------------------------------------------------------------ helpers
+    def _y(self, pv: float) -> float:
+        """PV as the core sees it (sign-normalised)."""
+        return self.sign * pv
+
+    def _hold(self, run: PoweredRun, output: float, duration: float,
+              until: Callable[[Any], bool] | None = None) -> list[Any]:
+        """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples."""
+        run.set_output(output)
+        got: list[Any] = []
+        t0: float | None = None
+        while True:
+            rec = run.next_sample()
+            got.append(rec)
+            if t0 is None:
+                t0 = rec.t
+            if until is not None and until(rec):
+                break
+            if rec.t - t0 >= duration:
+                break
+        return got
+
+    # ------------------------------------------------------------------ prechecks
+    def _prechecks(self, run: PoweredRun) -> None:
+        cfg = self.cfg
+        bias = cfg.relay.bias
+        # 1. rest
+        run.set_phase(Phase.PRECHECK_REST, f"holding the output at {bias:g} for "
+                      f"{cfg.prechecks.rest_time:g} s")
+        run.sp_value = run.pv_start or 0.0
+        recs = self._hold(run, bias, cfg.prechecks.rest_time)
+        # the first samples may still show the previous output; use the applied ones
+        recs = [r for r in recs if r.output == bias] or recs
+        t = np.array([r.t for r in recs])
+        pv = np.array([r.pv for r in recs])
+        out = np.array([r.output for r in recs])
+        if t.size < 3:
+            raise RunEnded("precheck:rest", "too few samples at rest", EXIT_FAILED)
+        rest = pre.assess_rest(t, pv, out, pv_window=cfg.safety.pv_window)
+        self._rest_t, self._rest_y = t, self.sign * pv
+        self.rest = rest
+        self.precheck_results["rest"] = rest.as_dict()
+        run.event("precheck", rest.as_dict(), check="rest", ok=rest.ok)
+        if not rest.ok:
+            raise RunEnded("precheck:rest", rest.message, EXIT_FAILED)
+        try:
+            check_against_noise(cfg, rest.noise_std, rest.resolution)
+        except ConfigError as exc:
+            raise RunEnded("precheck:rest", str(exc), EXIT_USAGE) from None
+        if self.hysteresis is None:
+            self.hysteresis = rest.suggested_hysteresis
+        self.centre = rest.mean
+        run.say(f"rest: noise {rest.noise_std:.3g}, drift {rest.drift:.3g}/s, resolution "
+                f"{rest.resolution:.3g}; hysteresis {self.hysteresis:.3g}")
+        # 2. direction
+        size = cfg.pulse_size
+        run.set_phase(Phase.PRECHECK_DIRECTION, f"output pulse of {size:g}")
+        base = self._y(rest.mean)
+        threshold = max(5.0 * rest.noise_std,
+                        DIRECTION_MIN_FRACTION * cfg.relay.target_amplitude)
+        window: list[float] = []
+
+        def moved(rec: Any) -> bool:
+            window.append(self._y(rec.pv))
+            recent = sorted(window[-3:])
+            return abs(recent[len(recent) // 2] - base) > threshold
+
+        t_pulse = run.last_sample.t
+        recs = self._hold(run, bias + size, cfg.prechecks.pulse_timeout, until=moved)
+        run.set_output(bias)
+        # baseline: the rest samples; then the pulse (the first one answers at the next tick)
+        t = np.concatenate([self._rest_t, [r.t for r in recs]])
+        y = np.concatenate([self._rest_y, [self._y(r.pv) for r in recs]])
+        d = pre.assess_direction(t, y, t_pulse, +1, rest.noise_std, expected_sign=+1,
+                                 min_change=threshold)
+        self.direction = d
+        self.precheck_results["direction"] = d.as_dict()
+        run.event("precheck", d.as_dict(), check="direction", ok=d.ok)
+        if not d.ok:
+            raise RunEnded("precheck:direction", d.message, EXIT_FAILED)
+        run.say(f"direction: PV moved {self.sign * d.change:+.3g} for an output pulse of "
+                f"{size:+g}: as expected")
+        # 3. breakaway
+        if cfg.prechecks.breakaway:
+            self._breakaway(run, threshold)
+
+    def _breakaway(self, run: PoweredRun, threshold: float) -> None:
+        cfg = self.cfg
+        bias = cfg.relay.bias
+        assert self.rest is not None
+        room = cfg.safety.output_limit - abs(bias)
+        max_step = min(room, cfg.safety.output_limit * 0.5)
+        run.set_phase(Phase.PRECHECK_BREAKAWAY, f"output ramp at {cfg.prechecks.breakaway_rate:g}"
+                      f"/s up to {max_step:g}")
+        # let the PV settle back after the pulse
+        self._hold(run, bias, cfg.prechecks.rest_time)
+        base = self._y(run.last_sample.pv)
+        t0 = run.last_sample.t
+        duration = pre.breakaway_ramp_duration(cfg.prechecks.breakaway_rate, max_step)
+        data = Arrays()
+        while True:
+            rec = run.next_sample()
+            data.add(rec.t, self._y(rec.pv), rec.output)
+            if abs(self._y(rec.pv) - base) > threshold or rec.t - t0 > duration:
+                break
+            run.set_output(pre.breakaway_ramp(rec.t - t0, cfg.prechecks.breakaway_rate,
+                                              max_step, bias=bias))
+        run.set_output(bias)
+        t, y, u = data.np()
+        rep = pre.assess_breakaway(t, y, u, self.rest.noise_std, min_change=threshold)
+        self.breakaway = rep
+        self.precheck_results["breakaway"] = rep.as_dict()
+        run.event("precheck", rep.as_dict(), check="breakaway", ok=rep.deadband is not None)
+        if rep.deadband is None:
+            raise RunEnded("precheck:breakaway", rep.message, EXIT_FAILED)
+        # start the relay above the deadband (twice it: common practice, no source)
+        self.start_amplitude = min(max(self.start_amplitude, 2.0 * rep.deadband), room)
+        run.say(f"breakaway: deadband about {rep.deadband:.3g}; relay starts at "
+                f"{self.start_amplitude:.3g}")
+
+    # ------------------------------------------------------------------ relay
+    def _plan(self) -> RelayPlan:
+        r = self.cfg.relay
+        return RelayPlan(
+            target_amplitude=r.target_amplitude,
+            start_amplitude=self.start_amplitude,
+            amplitude_step_factor=max(r.amplitude_step_factor, 1.0 + 1e-6),
+            pv_window=self.cfg.safety.pv_window,
+            adapt_amplitude=r.adapt_amplitude,
+            balance_bias=r.balance_bias,
+            bias_tolerance=r.bias_tolerance,
+            max_cycles=r.max_cycles,
+            max_time=r.max_time,
+            converge_tol=r.converge_tol,
+            stall_time=r.stall_time,
+        )
+
+    def _relay(self, run: PoweredRun) -> None:
+        from protocol.messages import StartRelay
+
+        cfg = self.cfg
+        assert self.hysteresis is not None
+        settings = RelaySettings(centre=self._y(self.centre), bias=cfg.relay.bias,
+                                 amplitude=self.start_amplitude, hysteresis=self.hysteresis)
+        exp = RelayExperiment(self._plan(), settings, cfg.safety.output_limit,
+                              converged=self._converged,
+                              pv_start=self._y(run.pv_start or self.centre))
+        self.experiment = exp
+        run.sp_value = self.centre
+        run.snapshot_extra["max_cycles"] = cfg.relay.max_cycles
+        run.set_phase(Phase.RELAY, f"{run.loop_mode} loop, amplitude {exp.settings.amplitude:.3g}"
+                      f", hysteresis {self.hysteresis:.3g}, centre {self.centre:.4g}")
+        run.event("relay_settings", exp.settings.as_dict())
+        device = run.loop_mode == "device"
+
+        def start_relay(s: RelaySettings) -> None:
+            run.request(StartRelay(run.axis, s.centre, s.bias, s.amp_high, s.amp_low,
+                                   s.hysteresis))
+
+        if device:
+            start_relay(exp.settings)
+        else:
+            # the first output is decided on the first sample
+            pass
+        while True:
+            rec = run.next_sample()
+            y = self._y(rec.pv)
+            if device:
+                if rec.mode != 2:  # not yet in relay mode (the request is in flight)
+                    continue
+                step = exp.observe(rec.t, y, rec.output)
+            else:
+                step = exp.update(rec.t, y)
+            self.relay_data.add(rec.t, y, rec.output)
+            run.sample_extra(state=step.state)
+            if step.done:
+                self._events(run, step.events)
+                reason = step.end_reason or "completed"
+                code = EXIT_OK if reason == "converged" else EXIT_FAILED
+                raise RunEnded(reason, self._end_message(reason), code, rec.t)
+            if device:
+                if step.new_settings is not None:
+                    start_relay(step.new_settings)
+            else:
+                run.set_output(step.output)
+            self._events(run, step.events)
+
+    def _converged(self, cycles: Any) -> bool:
+        assert self.run is not None
+        rest = self.rest
+        return steady_cycles(list(cycles), self.cfg.relay.converge_tol,
+                             min_cycles=self.cfg.relay.min_cycles, tick=self.run.info.tick,
+                             noise_std=rest.noise_std if rest else 0.0,
+                             resolution=rest.resolution if rest else 0.0)
+
+    def _end_message(self, reason: str) -> str:
+        exp = self.experiment
+        n = len(exp.cycles) if exp else 0
+        return {
+            "converged": f"the oscillation converged after {n} cycles",
+            "max_cycles": f"no convergence within {n} cycles (relay.max_cycles)",
+            "max_time": "no convergence within relay.max_time",
+            "no_oscillation": "the PV does not oscillate even at the largest allowed amplitude",
+        }.get(reason, reason)
+
+    def _events(self, run: PoweredRun, events: list[Any]) -> None:
+        exp = self.experiment
+        assert exp is not None
+        for ev in events:
+            if ev.kind == "cycle":
+                c = ev.detail
+                a = 0.5 * c["amplitude_pp"]
+                d = c["amplitude_d"]
+                # plain describing function, live figure only (the analysis refines it)
+                ku = 4.0 * d / (math.pi * math.sqrt(max(a * a - self.hysteresis ** 2, 1e-300)))\
+                    if a > 0 else math.nan
+                self.estimates.append(CycleEstimate(c["index"], c["period"], c["amplitude_pp"],
+                                                    ku, c["period"]))
+                run.snapshot_extra.update(cycle=len(exp.cycles), estimates=tuple(self.estimates))
+            elif ev.kind == "converged":
+                run.snapshot_extra["converged"] = True
+            if run.writer is not None:
+                run.writer.event(ev.t, ev.kind, ev.detail)
+            run.publish(force=True)
+
+    # ------------------------------------------------------------------ analysis
+    def _analyse(self, run: PoweredRun) -> dict[str, Any]:
+        exp = self.experiment
+        assert exp is not None
+        cfg = self.cfg
+        s = exp.settings
+        info = run.info
+        result: dict[str, Any] = {
+            "end_reason": run.outcome.reason,
+            "message": run.outcome.message,
+            "loop_mode": run.loop_mode,
+            "sign": self.sign,
+            "relay": {"amplitude": s.amplitude, "hysteresis": s.hysteresis, "bias": s.bias,
+                      "centre": self.sign * s.centre, "asymmetry": s.asymmetry},
+            "cycles": [c.as_dict() for c in exp.cycles],
+            "prechecks": self.precheck_results,
+            "device": {"name": info.device_name, "firmware": info.firmware, "tick": info.tick},
+            "notes": [],
+        }
+        t, y, u = self.relay_data.np()
+        noise = self.rest.noise_std if self.rest else 0.0
+        result["cycles_used"] = 0
+        run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles")
+        try:
+            from autotune import analysis
+        except ImportError:
+            result["notes"].append("analysis module not available: only the relay figures "
+                                   "are reported")
+            self._classic_only(result, exp)
+            return result
+        try:
+            an = analysis.analyse_relay(t, y, u, s, noise_std=noise, ts=info.tick,
+                                        output_limit=cfg.safety.output_limit,
+                                        converge_tol=cfg.relay.converge_tol)
+        except Exception as exc:  # noqa: BLE001 (report, do not crash after a stopped run)
+            result["notes"].append(f"analysis failed: {exc}")
+            self._classic_only(result, exp)
+            return result
+        fields_ = analysis.result_fields(an) if hasattr(analysis, "result_fields") else {
+            "ultimate_gain": an.ku, "ultimate_period": an.tu,
+            "ultimate_gain_classic": an.ku_classic, "ultimate_period_classic": an.tu_classic,
+            "uncertainty": an.uncertainty,
+            "model": {"kind": an.model.kind, "params": an.model.params},
+            "cycles_used": an.cycles_used,
+        }
+        result.update(fields_)
+        result["end_reason"] = run.outcome.reason
+        for w in getattr(an, "warnings", []) or []:
+            result["notes"].append(str(w))
+        run.set_phase(Phase.PROPOSALS, "designing gains")
+        try:
+            from autotune import design
+        except ImportError:
+            result["proposals"] = []
+            result["notes"].append("design module not available: no gain proposals")
+            return result
+        try:
+            spec_kw: dict[str, Any] = {
+                "ms_target": cfg.design.ms_target,
+                "max_overshoot": cfg.design.max_overshoot,
+                "max_settling_time": cfg.design.max_settling_time,
+                "step_size": cfg.design.step_size or cfg.relay.target_amplitude,
+                "output_limit": cfg.safety.output_limit,
+                "ts": info.tick,
+            }
+            import dataclasses
+
+            names = {f.name for f in dataclasses.fields(design.DesignSpec)}
+            spec = design.DesignSpec(**{k: v for k, v in spec_kw.items() if k in names})
+            model_tf = an.model.tf if an.model is not None else None
+            props = design.propose(an.ku, an.tu, model_tf, spec)
+            result["proposals"] = [self._proposal_dict(p) for p in props]
+        except Exception as exc:  # noqa: BLE001
+            result["proposals"] = []
+            result["notes"].append(f"design failed: {exc}")
+        if self.sign == -1:
+            result["notes"].append("sign = -1: gains are for the sign-normalised loop; the "
+                                   "controller must act on -error (or negate the gains)")
+        return result
+
+    @staticmethod
+    def _proposal_dict(p: Any) -> dict[str, Any]:
+        if hasattr(p, "as_dict"):
+            return p.as_dict()
+        g = p.gains
+        return {"name": p.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
+                "predicted": dict(p.predicted), "violations": list(getattr(p, "violations", [])),
+                "default": bool(getattr(p, "default", False))}
+
+    def _classic_only(self, result: dict[str, Any], exp: RelayExperiment) -> None:
+        """Plain describing-function figures from the last settled cycles (no model)."""
+        cyc = exp.settled_cycles[-3:] or exp.cycles[-3:]
+        a = float(np.mean([c.amplitude for c in cyc]))
+        d = float(np.mean([c.amplitude_d for c in cyc]))
+        p = float(np.mean([c.period for c in cyc]))
+        eps = exp.settings.hysteresis
+        ku = 4.0 * d / (math.pi * math.sqrt(max(a * a - eps * eps, 1e-300)))
+        result.update(ultimate_gain_classic=ku, ultimate_period_classic=p, cycles_used=len(cyc),
+                      proposals=[])
+
+
+def run_tune(cfg: Config, options: RunOptions, *,
+             on_update: Callable[[RunSnapshot], None] | None = None,
+             say: Callable[[str], None] | None = None, csv: bool = False) -> TuneOutcome:
+    """Run `tune` end to end; see TuneRun."""
+    return TuneRun(cfg, options, on_update=on_update, say=say, csv=csv).execute()

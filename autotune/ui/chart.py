@@ -1,0 +1,211 @@
+"""A line chart drawn in braille dots (2 x 4 dots a character cell), as a rich renderable.
+
+Own code, no plotting library: a chart here is a few hundred samples on a few dozen character
+cells, which a small rasteriser handles in well under a millisecond, and keeping it ours means no
+extra dependency and exact control over widths (the chart always fills exactly the width rich
+offers, down to the 80-column terminal).
+
+Each series is drawn as connected line segments; where two series share a cell, the one listed
+later wins the colour (list the reference first, the measurement last). NaN breaks a line.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from rich.console import Console, ConsoleOptions, RenderResult
+from rich.segment import Segment
+from rich.style import Style
+from rich.text import Text
+
+from autotune.ui import theme
+
+BRAILLE_BASE = 0x2800
+# Bit of the dot at (column 0..1, row 0..3) inside one braille cell (Unicode braille patterns).
+_DOT_BITS = ((0x01, 0x02, 0x04, 0x40), (0x08, 0x10, 0x20, 0x80))
+
+
+@dataclass(frozen=True)
+class Series:
+    """One trace: `x` and `y` of equal length (x usually device time in s), a style and a name."""
+
+    x: Sequence[float]
+    y: Sequence[float]
+    style: str
+    name: str
+
+
+def nice_range(values: Sequence[float], pad: float = 0.08) -> tuple[float, float]:
+    """A y-range holding every finite value with `pad` of the span above and below.
+
+    A flat or empty series gets a range of +/-1 (or +/-10% of its value) around it.
+    """
+    finite = [v for v in values if math.isfinite(v)]
+    if not finite:
+        return (-1.0, 1.0)
+    lo, hi = min(finite), max(finite)
+    span = hi - lo
+    if span <= 1e-12 * max(1.0, abs(lo), abs(hi)):
+        half = max(abs(lo) * 0.1, 1.0) if lo != 0 else 1.0
+        return (lo - half, hi + half)
+    return (lo - pad * span, hi + pad * span)
+
+
+def _line(x0: int, y0: int, x1: int, y1: int) -> list[tuple[int, int]]:
+    """Pixels of a line from (x0, y0) to (x1, y1), both ends included (Bresenham)."""
+    points = []
+    dx, dy = abs(x1 - x0), -abs(y1 - y0)
+    sx = 1 if x0 < x1 else -1
+    sy = 1 if y0 < y1 else -1
+    err = dx + dy
+    while True:
+        points.append((x0, y0))
+        if x0 == x1 and y0 == y1:
+            return points
+        e2 = 2 * err
+        if e2 >= dy:
+            err += dy
+            x0 += sx
+        if e2 <= dx:
+            err += dx
+            y0 += sy
+
+
+def rasterise(
+    series: Sequence[Series],
+    width: int,
+    height: int,
+    x_range: tuple[float, float],
+    y_range: tuple[float, float],
+) -> list[list[tuple[str, str | None]]]:
+    """Draw `series` into `height` rows of `width` braille cells: each cell is (char, style|None).
+
+    Row 0 is the top (largest y). Points outside the ranges are clipped to the border.
+    """
+    cols, rows = 2 * width, 4 * height
+    bits = [[0] * width for _ in range(height)]
+    owner: list[list[str | None]] = [[None] * width for _ in range(height)]
+    x0, x1 = x_range
+    y0, y1 = y_range
+    xs = (cols - 1) / (x1 - x0) if x1 > x0 else 0.0
+    ys = (rows - 1) / (y1 - y0) if y1 > y0 else 0.0
+
+    def pixel(x: float, y: float) -> tuple[int, int]:
+        px = round((x - x0) * xs)
+        py = round((y1 - y) * ys)
+        return min(max(px, 0), cols - 1), min(max(py, 0), rows - 1)
+
+    for s in series:
+        prev: tuple[int, int] | None = None
+        for x, y in zip(s.x, s.y, strict=False):
+            if not (math.isfinite(x) and math.isfinite(y)):
+                prev = None
+                continue
+            p = pixel(x, y)
+            pts = [p] if prev is None else _line(prev[0], prev[1], p[0], p[1])
+            for px, py in pts:
+                cx, cy = px // 2, py // 4
+                bits[cy][cx] |= _DOT_BITS[px % 2][py % 4]
+                owner[cy][cx] = s.style
+            prev = p
+    return [
+        [(chr(BRAILLE_BASE + b) if b else " ", o if b else None) for b, o in zip(br, ow, strict=True)]
+        for br, ow in zip(bits, owner, strict=True)
+    ]
+
+
+def format_value(v: float, width: int = 7) -> str:
+    """A number in at most `width` characters, four significant digits where they fit."""
+    if v == 0 or abs(v) < 1e-12:
+        return "0"
+    for sig in (4, 3, 2, 1):
+        s = f"{v:.{sig}g}"
+        if len(s) <= width:
+            return s
+    return f"{v:.0e}"
+
+
+class BrailleChart:
+    """A braille line chart that fills the width rich offers.
+
+    `height` is in text rows (4 dots each). The left gutter carries the y-range labels
+    (`unit` appended to the top one); `x_label` names the time axis below.
+    """
+
+    GUTTER = 8
+
+    def __init__(
+        self,
+        series: Sequence[Series],
+        height: int = 8,
+        unit: str = "",
+        x_range: tuple[float, float] | None = None,
+        y_range: tuple[float, float] | None = None,
+        x_label: str = "s",
+        show_x_axis: bool = True,
+        legend: bool = True,
+    ) -> None:
+        self.series = list(series)
+        self.height = max(2, height)
+        self.unit = unit
+        self.x_range = x_range
+        self.y_range = y_range
+        self.x_label = x_label
+        self.show_x_axis = show_x_axis
+        self.legend = legend
+
+    def ranges(self) -> tuple[tuple[float, float], tuple[float, float]]:
+        """The x and y ranges the chart will use."""
+        if self.x_range is not None:
+            xr = self.x_range
+        else:
+            xs = [x for s in self.series for x in s.x if math.isfinite(x)]
+            xr = (min(xs), max(xs)) if xs else (0.0, 1.0)
+            if xr[1] <= xr[0]:
+                xr = (xr[0], xr[0] + 1.0)
+        yr = self.y_range or nice_range([y for s in self.series for y in s.y])
+        return xr, yr
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        width = max(10, options.max_width)
+        plot_w = width - self.GUTTER - 1
+        xr, yr = self.ranges()
+        grid = rasterise(self.series, plot_w, self.height, xr, yr)
+        axis = Style.parse(theme.AXIS)
+        labels = {0: format_value(yr[1]), self.height - 1: format_value(yr[0])}
+        if self.height >= 5:
+            labels[(self.height - 1) // 2] = format_value((yr[0] + yr[1]) / 2)
+        for r, row in enumerate(grid):
+            label = labels.get(r, "")
+            yield Segment(f"{label:>{self.GUTTER - 1}} ", axis)
+            yield Segment("┤" if label else "│", axis)
+            run_style: str | None = None
+            run = ""
+            for ch, st in row:
+                if st != run_style and run:
+                    yield Segment(run, Style.parse(run_style) if run_style else None)
+                    run = ""
+                run_style = st
+                run += ch
+            if run:
+                yield Segment(run, Style.parse(run_style) if run_style else None)
+            yield Segment.line()
+        if self.show_x_axis:
+            yield Segment(" " * (self.GUTTER - 1) + " └" + "─" * plot_w, axis)
+            yield Segment.line()
+            left = format_value(xr[0]).strip()
+            right = f"{format_value(xr[1]).strip()} {self.x_label}"
+            gap = max(1, plot_w - len(left) - len(right))
+            yield Segment(" " * (self.GUTTER + 1) + left + " " * gap + right, axis)
+            yield Segment.line()
+        if self.legend:
+            legend = Text(" " * (self.GUTTER + 1))
+            for s in self.series:
+                legend.append("━━ ", style=s.style)
+                legend.append(s.name + "   ", style=theme.MUTED)
+            if self.unit:
+                legend.append(f"({self.unit})", style=theme.AXIS)
+            legend.truncate(width)
+            yield legend

@@ -1,0 +1,131 @@
+"""What each screen other than the live run is drawn from: plain, immutable values.
+
+The live run is drawn from `autotune.progress.RunSnapshot`; the start, proposals, step-result and
+finish screens from the views here. They hold only what is shown, so a renderer is a pure function
+of one of them. Units: seconds, PV units, output units; gains in parallel form (output units per PV
+unit, ki per second, kd in seconds).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+CAUTIONS: tuple[str, ...] = (
+    "The robot is on blocks: wheels and joints turn freely, it goes nowhere.",
+    "The area is clear of people, tools and loose cables.",
+    "Hands away from wheels, belts, gears and joints while powered.",
+    "A physical power cut-off is within your reach, and you know which it is.",
+    "The software stop keys are no substitute for that cut-off.",
+    "Follow your local safety codes and licensed electrical practice.",
+)
+
+
+@dataclass(frozen=True)
+class StartView:
+    """The start screen: what will move, under which limits, and the cautions."""
+
+    device: str  # device name and firmware
+    port: str
+    axis: int
+    loop_mode: str  # "device" or "host"
+    limits: tuple[tuple[str, str], ...]  # (label, value with unit), in display order
+    plan: tuple[tuple[str, str], ...] = ()  # (label, value) of the relay plan, e.g. target amplitude
+    simulated: bool = False
+    out_dir: str = ""
+    cautions: tuple[str, ...] = CAUTIONS
+
+
+class GainsLike(Protocol):
+    kp: float
+    ki: float
+    kd: float
+
+
+class ProposalLike(Protocol):
+    """What the proposals screen reads from a design proposal (autotune.design.Proposal)."""
+
+    name: str
+    gains: GainsLike
+    predicted: Mapping[str, float]
+    violations: Sequence[str]
+    default: bool
+
+
+@dataclass(frozen=True)
+class ProposalRow:
+    """One proposal as shown: gains (parallel form) and predicted figures on the fitted model."""
+
+    name: str
+    kp: float
+    ki: float
+    kd: float
+    predicted: Mapping[str, float] = field(default_factory=dict)
+    violations: tuple[str, ...] = ()
+    default: bool = False
+
+    @classmethod
+    def of(cls, proposal: ProposalLike) -> ProposalRow:
+        """The row of a design proposal."""
+        g = proposal.gains
+        return cls(
+            name=proposal.name,
+            kp=float(g.kp),
+            ki=float(g.ki),
+            kd=float(g.kd),
+            predicted=dict(proposal.predicted),
+            violations=tuple(proposal.violations),
+            default=bool(proposal.default),
+        )
+
+
+@dataclass(frozen=True)
+class ProposalsView:
+    """The proposals screen: every design, the one under the cursor, and the two knobs."""
+
+    rows: tuple[ProposalRow, ...]
+    selected: int = 0
+    ms_target: float = 1.4
+    detune: float = 1.0  # factor applied to the chosen gains (1 = as designed)
+    ku: float | None = None  # output units per PV unit
+    tu: float | None = None  # s
+    model: str = ""  # fitted model in words
+    spec: str = ""  # the user's spec in words, e.g. "overshoot <= 10 %"
+    message: str = ""
+    can_step: bool = True
+
+
+@dataclass(frozen=True)
+class StepView:
+    """The step-result screen: the recorded response, the prediction, figures and verdict.
+
+    `rows` are `autotune.verdict.FigureRow`s and `verdict` an `autotune.verdict.Verdict` (or
+    None when the step was stopped before figures could be taken).
+    """
+
+    name: str  # proposal name
+    kp: float
+    ki: float
+    kd: float
+    t: tuple[float, ...]  # s, device time from the step instant
+    pv: tuple[float, ...]
+    sp: tuple[float, ...]
+    out: tuple[float, ...]
+    pred_t: tuple[float, ...] = ()
+    pred_y: tuple[float, ...] = ()
+    rows: tuple[Any, ...] = ()
+    verdict: Any = None
+    detune: float = 0.7  # factor the detune key applies
+    message: str = ""
+
+
+@dataclass(frozen=True)
+class FinishView:
+    """The finish screen: what happened and where the files are."""
+
+    ok: bool
+    message: str
+    files: tuple[tuple[str, str], ...] = ()  # (what, path)
+    gains: tuple[tuple[str, str], ...] = ()  # (label, value) of the accepted gains
+    code: str = ""  # a short code-ready block of per-tick values

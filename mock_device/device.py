@@ -1,0 +1,530 @@
+"""Device state machine of the mock controller board (one axis). No I/O, no clock.
+
+The I/O loop (mock_device.server) feeds it received frames with ``handle_frame`` between ticks
+and calls ``tick`` once per device period; both return the frames to send as ``Outgoing``
+(message, seq). Replies (including Stopped, which is sent from ``tick``) echo the request's
+seq; the unsolicited Sample and Fault frames use the device's own incrementing counter.
+
+Tick k at device time t_k = k * tick_us (microseconds):
+  1. pv_k = sensor(plant.y) (after any sensor faults)
+  2. mode logic: idle -> 0; host -> last SetOutput; relay -> relay on pv_k; pid -> PID on pv_k;
+     plus the SetOffset offset in every non-idle mode
+  3. safety: clamp to +/- output_limit; while not idle, PV outside [pv_low, pv_high] or
+     |dPV/dt| > pv_rate_limit (rate from a median-of-3 filtered PV, so a one-tick spike alone
+     does not trip it) -> output 0, fault latched, Fault sent, mode idle; watchdog: no frame
+     for watchdog period while not idle -> same with WATCHDOG. A latched fault keeps the
+     output at 0 until ClearFault.
+  4. the applied drive (after actuator saturation) is held by the plant for [t_k, t_k+1)
+  5. streaming and k % decimation == 0 -> Sample(t_k, pv_k, applied u_k, setpoint, flags);
+     Stop requests received before this tick are answered with Stopped now (output is zero).
+"""
+
+from __future__ import annotations
+
+import math
+import secrets
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import numpy as np
+
+from mock_device.config import MockConfig
+from mock_device.faults import DeviceFaults, FaultSpec
+from mock_device.plant import Actuator, LtiPlant, Sensor
+from protocol import messages as m
+from protocol.errors import BadLength, DecodeError, UnknownType
+from protocol.framing import RawFrame
+
+FIRMWARE = "mock-1.0"
+AXIS_COUNT = 1
+
+
+class Outgoing(NamedTuple):
+    """One frame to send: the message and its sequence number."""
+
+    msg: m.Message
+    seq: int
+
+
+@dataclass
+class AxisLimits:
+    """Loaded device-side limits: output units, PV units, PV units/s, seconds."""
+
+    output_limit: float
+    pv_low: float
+    pv_high: float
+    pv_rate_limit: float
+    watchdog_ms: int
+    watchdog: float  # effective watchdog period, s
+
+
+@dataclass
+class PidState:
+    """Device-side PID (parallel form, derivative on measurement, filtered, anti-windup)."""
+
+    kp: float
+    ki: float
+    kd: float
+    b: float
+    n: float
+    tt: float
+    setpoint: float
+    bias: float
+    integral: float = 0.0
+    deriv: float = 0.0
+    pv_prev: float | None = None
+
+
+def _default_boot_id() -> int:
+    return secrets.randbits(32) or 1
+
+
+class Device:
+    """Simulated controller board with one axis.
+
+    Args:
+        config: plant file contents.
+        faults: device- and link-level fault spec (the config's [faults] merged with --faults).
+        seed: sensor noise seed (None: the config's [device] seed).
+        boot_id: callable giving a fresh boot id (random by default).
+        log: called with one-line messages meant for the device's stderr.
+    """
+
+    def __init__(
+        self,
+        config: MockConfig,
+        *,
+        faults: FaultSpec | None = None,
+        seed: int | None = None,
+        boot_id: Callable[[], int] = _default_boot_id,
+        log: Callable[[str], None] = lambda _line: None,
+    ) -> None:
+        self.config = config
+        dev = config.device
+        self.period = dev.period
+        self.tick_us = max(1, round(dev.period * 1e6))
+        self._new_boot_id = boot_id
+        self._log = log
+        self.fault_spec = faults if faults is not None else config.faults
+        self.faults = DeviceFaults(self.fault_spec)
+        rng = np.random.default_rng(dev.seed if seed is None else seed)
+        self.plant = LtiPlant(
+            config.plant.num, config.plant.den, config.plant.delay, max_step=dev.period / 10
+        )
+        self.actuator = Actuator(config.actuator.limit, config.actuator.deadband)
+        self.sensor = Sensor(
+            config.sensor.noise, config.sensor.resolution, config.sensor.offset, rng
+        )
+        self.load = config.plant.load
+        self.capabilities = m.CAP_HOST_LOOP | m.CAP_STORE_GAINS
+        if dev.relay:
+            self.capabilities |= m.CAP_DEVICE_RELAY
+        if dev.pid:
+            self.capabilities |= m.CAP_DEVICE_PID
+        self.total_ticks = 0  # ticks since the process started (not reset by a device reset)
+        self._hello_tick: int | None = None  # total_ticks at the first Hello
+        self.disconnect_requested = False
+        self.resets = 0
+        self._power_up()
+
+    # ------------------------------------------------------------ state
+    def _power_up(self) -> None:
+        """Volatile state after power-up or reset (the plant's physics carries on)."""
+        self.boot_id = self._new_boot_id() & 0xFFFFFFFF
+        self.k = 0  # device tick counter; device time = k * tick_us
+        self._seq = 0
+        self.mode = m.Mode.IDLE
+        self.limits: AxisLimits | None = None
+        self.host_output = 0.0
+        self.offset = 0.0
+        self.relay_centre = 0.0
+        self.relay_bias = 0.0
+        self.relay_high_amp = 0.0
+        self.relay_low_amp = 0.0
+        self.relay_hyst = 0.0
+        self.relay_high = False
+        self.pid: PidState | None = None
+        self.fault: m.FaultCode | None = None
+        self.fault_value = 0.0
+        self.fault_us = 0
+        self.streaming = False
+        self.decimation = 1
+        self.applied = 0.0  # drive applied over the current tick interval, output units
+        self.clamped = False
+        self.last_rx_k = 0
+        self._pending_stops: list[int] = []
+        self._pv_hist: list[float] = []  # last three raw PV values (for the rate check)
+        self._pvf_prev: float | None = None
+        self.pv = self.sensor.offset  # last PV read
+        self.stored_gains: tuple[float, float, float] | None = None
+        self.last_received: int | None = None
+
+    @property
+    def device_us(self) -> int:
+        """Device time of the current (next) tick, microseconds mod 2**32."""
+        return (self.k * self.tick_us) & 0xFFFFFFFF
+
+    @property
+    def t(self) -> float:
+        """Device time of the next tick, s."""
+        return self.k * self.tick_us * 1e-6
+
+    def _since_hello(self) -> float | None:
+        if self._hello_tick is None:
+            return None
+        return (self.total_ticks - self._hello_tick) * self.period
+
+    def _next_seq(self) -> int:
+        seq = self._seq
+        self._seq = (self._seq + 1) & 0xFFFF
+        return seq
+
+    def _unsolicited(self, msg: m.Message) -> Outgoing:
+        return Outgoing(msg, self._next_seq())
+
+    def _fault_msg(self) -> m.Fault:
+        assert self.fault is not None
+        return m.Fault(int(self.fault), 0, float(self.fault_value), self.fault_us)
+
+    @property
+    def watchdog_armed(self) -> bool:
+        return self.limits is not None and self.mode != m.Mode.IDLE
+
+    def flags(self) -> int:
+        """Sample.flags for the current state."""
+        return m.make_flags(
+            self.mode,
+            streaming=self.streaming,
+            fault=self.fault is not None,
+            clamped=self.clamped,
+            watchdog_armed=self.watchdog_armed,
+            limits_set=self.limits is not None,
+            relay_high=self.mode == m.Mode.RELAY and self.relay_high,
+        )
+
+    # ------------------------------------------------------------ frames
+    def handle_frame(self, raw: RawFrame) -> list[Outgoing]:
+        """Handle one good frame from the host (decoding errors are answered with Nak)."""
+        self.last_rx_k = self.k
+        self.last_received = raw.type
+        if not 0x01 <= raw.type <= 0x3F:
+            return [Outgoing(m.Nak(raw.type, m.NakCode.UNKNOWN_TYPE, float(raw.type)), raw.seq)]
+        try:
+            msg = m.decode(raw)
+        except UnknownType:
+            return [Outgoing(m.Nak(raw.type, m.NakCode.UNKNOWN_TYPE, float(raw.type)), raw.seq)]
+        except BadLength as exc:
+            return [Outgoing(m.Nak(raw.type, m.NakCode.BAD_LENGTH, float(exc.expected)), raw.seq)]
+        except DecodeError:
+            return [Outgoing(m.Nak(raw.type, m.NakCode.BAD_LENGTH, 0.0), raw.seq)]
+        return self.handle(msg, raw.seq)
+
+    def handle(self, msg: m.Message, seq: int) -> list[Outgoing]:
+        """Handle one decoded request; returns the replies (seq echoed) and any extra frames."""
+        self.last_rx_k = self.k
+        t = msg.TYPE
+
+        def ack() -> list[Outgoing]:
+            return [Outgoing(m.Ack(t), seq)]
+
+        def nak(code: m.NakCode, detail: float = 0.0) -> list[Outgoing]:
+            return [Outgoing(m.Nak(t, int(code), float(detail)), seq)]
+
+        if isinstance(msg, m.Hello):
+            if msg.protocol_version != m.PROTOCOL_VERSION:
+                self._log(
+                    f"refused a host speaking protocol version {msg.protocol_version}; "
+                    f"this device speaks version {m.PROTOCOL_VERSION}"
+                )
+                return nak(m.NakCode.BAD_VERSION, m.PROTOCOL_VERSION)
+            if self._hello_tick is None:
+                self._hello_tick = self.total_ticks
+            reply = m.HelloReply(
+                m.PROTOCOL_VERSION,
+                self.config.device.name,
+                FIRMWARE,
+                self.boot_id,
+                AXIS_COUNT,
+                self.tick_us,
+                self.capabilities,
+                float(self.config.device.max_output),
+            )
+            out = [Outgoing(reply, seq)]
+            if self.fault is not None:  # a latched fault is reported again on reconnect
+                out.append(self._unsolicited(self._fault_msg()))
+            return out
+        if isinstance(msg, m.Ping):
+            return [Outgoing(m.Pong(msg.nonce, msg.host_us, self.device_us, self.boot_id), seq)]
+        if isinstance(msg, m.Stop):
+            if self.fault_spec.ignore_stop:
+                return []
+            self._go_idle()
+            self._pending_stops.append(seq)
+            return []
+        if isinstance(msg, m.ClearFault):
+            if self.fault is not None:
+                self._log(f"fault {self.fault.name} cleared by the host")
+            self.fault = None
+            return ack()
+        if isinstance(msg, m.StoreGains):
+            if msg.axis >= AXIS_COUNT:
+                return nak(m.NakCode.BAD_AXIS, AXIS_COUNT)
+            if not msg.is_finite():
+                return nak(m.NakCode.OUT_OF_RANGE, math.nan)
+            self.stored_gains = (msg.kp, msg.ki, msg.kd)
+            return ack()
+
+        axis = getattr(msg, "axis", None)
+        if axis is None:  # pragma: no cover - every remaining request has an axis
+            return nak(m.NakCode.UNKNOWN_TYPE, t)
+        if axis >= AXIS_COUNT:
+            return nak(m.NakCode.BAD_AXIS, AXIS_COUNT)
+        if not msg.is_finite():
+            return nak(m.NakCode.OUT_OF_RANGE, math.nan)
+
+        if isinstance(msg, m.SetLimits):
+            return self._set_limits(msg, ack, nak)
+        if isinstance(msg, m.GetLimits):
+            lim = self.limits
+            if lim is None:
+                return nak(m.NakCode.LIMITS_NOT_SET)
+            reply = m.Limits(
+                0, lim.output_limit, lim.pv_low, lim.pv_high, lim.pv_rate_limit, lim.watchdog_ms
+            )
+            return [Outgoing(reply, seq)]
+        if isinstance(msg, m.Stream):
+            if msg.enable not in (0, 1):
+                return nak(m.NakCode.OUT_OF_RANGE, msg.enable)
+            if msg.enable and msg.decimation < 1:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.decimation)
+            self.streaming = bool(msg.enable)
+            if msg.enable:
+                self.decimation = msg.decimation
+            return ack()
+        if isinstance(msg, m.SetOutput):
+            if msg.output == 0.0 and (self.limits is None or self.fault is not None):
+                self.host_output = 0.0  # a zero command is always harmless
+                return ack()
+            refusal = self._motion_refusal()
+            if refusal is not None:
+                return nak(*refusal)
+            assert self.limits is not None
+            if abs(msg.output) > self.limits.output_limit:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.output)
+            self.host_output = float(msg.output)
+            if self.mode != m.Mode.HOST:
+                self._enter(m.Mode.HOST)
+            return ack()
+        if isinstance(msg, m.StartRelay):
+            if not self.capabilities & m.CAP_DEVICE_RELAY:
+                return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
+            refusal = self._motion_refusal()
+            if refusal is not None:
+                return nak(*refusal)
+            assert self.limits is not None
+            if msg.amp_high < 0.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.amp_high)
+            if msg.amp_low < 0.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.amp_low)
+            if msg.hysteresis < 0.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.hysteresis)
+            lim = self.limits.output_limit
+            for value in (msg.bias + msg.amp_high, msg.bias - msg.amp_low):
+                if abs(value) > lim:
+                    return nak(m.NakCode.OUT_OF_RANGE, value)
+            self.relay_centre = msg.centre
+            self.relay_bias = msg.bias
+            self.relay_high_amp = msg.amp_high
+            self.relay_low_amp = msg.amp_low
+            self.relay_hyst = msg.hysteresis
+            self.relay_high = self.pv < msg.centre
+            self._enter(m.Mode.RELAY)
+            return ack()
+        if isinstance(msg, m.SetPid):
+            if not self.capabilities & m.CAP_DEVICE_PID:
+                return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
+            refusal = self._motion_refusal()
+            if refusal is not None:
+                return nak(*refusal)
+            assert self.limits is not None
+            if not 0.0 <= msg.setpoint_weight <= 1.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.setpoint_weight)
+            if msg.deriv_filter_n <= 0.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.deriv_filter_n)
+            if msg.tracking_time < 0.0:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.tracking_time)
+            if abs(msg.bias) > self.limits.output_limit:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.bias)
+            self.pid = PidState(
+                msg.kp, msg.ki, msg.kd, msg.setpoint_weight, msg.deriv_filter_n,
+                msg.tracking_time, msg.setpoint, msg.bias,
+            )
+            self._enter(m.Mode.PID)
+            return ack()
+        if isinstance(msg, m.SetSetpoint):
+            if self.mode == m.Mode.PID and self.pid is not None:
+                self.pid.setpoint = msg.setpoint
+                return ack()
+            if self.mode == m.Mode.RELAY:
+                self.relay_centre = msg.setpoint
+                return ack()
+            return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
+        if isinstance(msg, m.SetOffset):
+            if self.limits is None:
+                return nak(m.NakCode.LIMITS_NOT_SET)
+            if abs(msg.offset) > self.limits.output_limit:
+                return nak(m.NakCode.OUT_OF_RANGE, msg.offset)
+            self.offset = msg.offset
+            return ack()
+        return nak(m.NakCode.UNKNOWN_TYPE, t)  # pragma: no cover - registry and code in step
+
+    def _set_limits(
+        self,
+        msg: m.SetLimits,
+        ack: Callable[[], list[Outgoing]],
+        nak: Callable[[m.NakCode, float], list[Outgoing]],
+    ) -> list[Outgoing]:
+        max_out = self.config.device.max_output
+        if not 0.0 < msg.output_limit <= max_out:
+            return nak(m.NakCode.OUT_OF_RANGE, msg.output_limit)
+        if not msg.pv_low < msg.pv_high:
+            return nak(m.NakCode.OUT_OF_RANGE, msg.pv_high)
+        if msg.pv_rate_limit < 0.0:
+            return nak(m.NakCode.OUT_OF_RANGE, msg.pv_rate_limit)
+        if msg.watchdog_ms == 0:
+            watchdog = self.config.device.watchdog
+        elif 10 <= msg.watchdog_ms <= 60000:
+            watchdog = msg.watchdog_ms / 1000.0
+        else:
+            return nak(m.NakCode.OUT_OF_RANGE, msg.watchdog_ms)
+        self.limits = AxisLimits(
+            msg.output_limit, msg.pv_low, msg.pv_high, msg.pv_rate_limit, msg.watchdog_ms,
+            watchdog,
+        )
+        return ack()
+
+    def _motion_refusal(self) -> tuple[m.NakCode, float] | None:
+        if self.limits is None:
+            return (m.NakCode.LIMITS_NOT_SET, 0.0)
+        if self.fault is not None:
+            return (m.NakCode.FAULT_LATCHED, float(self.fault))
+        return None
+
+    def _enter(self, mode: m.Mode) -> None:
+        self.mode = mode
+        self.last_rx_k = self.k
+
+    def _go_idle(self) -> None:
+        self.mode = m.Mode.IDLE
+        self.host_output = 0.0
+        self.pid = None
+
+    def _latch(self, code: m.FaultCode, value: float) -> Outgoing:
+        self.fault = code
+        self.fault_value = value
+        self.fault_us = self.device_us
+        self._go_idle()
+        self._log(f"fault {code.name} latched (value {value:g}) at t={self.t:.3f} s")
+        return self._unsolicited(self._fault_msg())
+
+    # ------------------------------------------------------------ tick
+    def _relay_output(self, pv: float) -> float:
+        e = self.relay_centre - pv
+        if e > self.relay_hyst:
+            self.relay_high = True
+        elif e < -self.relay_hyst:
+            self.relay_high = False
+        if self.relay_high:
+            return self.relay_bias + self.relay_high_amp
+        return self.relay_bias - self.relay_low_amp
+
+    def _pid_output(self, pv: float, limit: float) -> float:
+        p = self.pid
+        assert p is not None
+        h = self.period
+        if p.pv_prev is None:
+            p.pv_prev = pv
+        e = p.setpoint - pv
+        # derivative on measurement through a first-order filter, backward difference
+        if p.kd != 0.0:
+            tf = abs(p.kd / (p.kp * p.n)) if p.kp != 0.0 else 0.0
+            p.deriv = (tf * p.deriv - p.kd * (pv - p.pv_prev)) / (tf + h)
+        else:
+            p.deriv = 0.0
+        p.pv_prev = pv
+        v = p.bias + p.kp * (p.b * p.setpoint - pv) + p.integral + p.deriv
+        u = min(limit, max(-limit, v + self.offset)) - self.offset
+        if p.tt > 0.0:
+            # back-calculation: the integral is pulled towards the saturated output
+            p.integral += p.ki * h * e + (h / p.tt) * (u - v)
+        elif u == v or (v > u and p.ki * e < 0.0) or (v < u and p.ki * e > 0.0):
+            # clamping: integrate unless saturated and the error drives further into it
+            p.integral += p.ki * h * e
+        return v
+
+    def tick(self) -> list[Outgoing]:
+        """Run one device tick (see the module docstring); returns the frames to send."""
+        out: list[Outgoing] = []
+        since = self._since_hello()
+        if self.faults.reset_due(since):
+            self._log("reset fault: the device restarts (new boot id, state lost)")
+            self.resets += 1
+            self._power_up()
+        if self.faults.disconnect_due(since):
+            self.disconnect_requested = True
+
+        pv = self.faults.pv(self.sensor.read(self.plant.y), since)
+        self.pv = pv
+        # median-of-3 filtered PV for the rate check
+        self._pv_hist.append(pv)
+        if len(self._pv_hist) > 3:
+            del self._pv_hist[0]
+        pvf = float(np.median(self._pv_hist))
+        rate = 0.0 if self._pvf_prev is None else (pvf - self._pvf_prev) / self.period
+        self._pvf_prev = pvf
+
+        lim = self.limits
+        u = 0.0
+        if self.fault is None and self.mode != m.Mode.IDLE and lim is not None:
+            if self.mode == m.Mode.HOST:
+                u = self.host_output
+            elif self.mode == m.Mode.RELAY:
+                u = self._relay_output(pv)
+            elif self.mode == m.Mode.PID:
+                u = self._pid_output(pv, lim.output_limit)
+            u += self.offset
+            silence_ticks = self.k - self.last_rx_k
+            if silence_ticks * self.period >= lim.watchdog - 1e-9:
+                out.append(self._latch(m.FaultCode.WATCHDOG, silence_ticks * self.period))
+                u = 0.0
+            elif not lim.pv_low <= pv <= lim.pv_high:
+                out.append(self._latch(m.FaultCode.PV_WINDOW, pv))
+                u = 0.0
+            elif lim.pv_rate_limit > 0.0 and abs(rate) > lim.pv_rate_limit:
+                out.append(self._latch(m.FaultCode.PV_RATE, rate))
+                u = 0.0
+        self.clamped = False
+        if lim is not None and abs(u) > lim.output_limit:
+            u = math.copysign(lim.output_limit, u)
+            self.clamped = True
+        applied = self.actuator.saturate(u)
+        self.applied = applied
+        drive = self.faults.actuator_sign() * self.actuator.apply(applied) + self.load
+        self.plant.advance(drive, self.period)
+
+        if self.streaming and self.k % self.decimation == 0:
+            if self.mode == m.Mode.PID and self.pid is not None:
+                sp = self.pid.setpoint
+            elif self.mode == m.Mode.RELAY:
+                sp = self.relay_centre
+            else:
+                sp = 0.0
+            sample = m.Sample(0, self.device_us, float(pv), float(applied), float(sp), self.flags())
+            out.append(self._unsolicited(sample))
+        for seq in self._pending_stops:
+            out.append(Outgoing(m.Stopped(), seq))
+        self._pending_stops.clear()
+        self.k += 1
+        self.total_ticks += 1
+        return out

@@ -1,0 +1,223 @@
+"""Prechecks (pure evaluators over recorded arrays) and the output profiles the runner plays."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from autotune.lti import DelayedTF, fopdt
+from autotune.prechecks import (
+    MSG_NO_RESPONSE,
+    MSG_SIGN_DISAGREE,
+    PrecheckFailed,
+    assess_breakaway,
+    assess_direction,
+    assess_rest,
+    breakaway_ramp,
+    breakaway_ramp_duration,
+    direction_pulse,
+    smallest_step,
+)
+
+DT = 0.01
+
+
+def quantise(x: np.ndarray, q: float) -> np.ndarray:
+    return np.round(x / q) * q if q > 0 else x
+
+
+# ---------------------------------------------------------------------------------- rest
+def test_rest_noise_drift_and_resolution() -> None:
+    rng = np.random.default_rng(7)
+    t = 50.0 + np.arange(2000) * DT
+    noise, drift, q = 0.02, 0.003, 0.005
+    pv = quantise(3.0 + drift * (t - t[0]) + rng.normal(0, noise, t.size), q)
+    r = assess_rest(t, pv, np.full(t.size, 1.5))
+    # quantisation adds q^2/12 of variance (uniform rounding error; standard result)
+    assert r.noise_std == pytest.approx(math.hypot(noise, q / math.sqrt(12)), rel=0.05)
+    assert r.drift == pytest.approx(drift, rel=0.1)
+    assert r.resolution == pytest.approx(q, rel=1e-6)
+    assert r.mean == pytest.approx(3.0 + drift * (t[-1] - t[0]) / 2, abs=0.005)
+    # default hysteresis = max(3 x noise, 2 x resolution) (common practice, no source)
+    assert r.suggested_hysteresis == pytest.approx(3 * r.noise_std)
+    assert r.output_mean == 1.5 and r.samples == t.size and r.duration == pytest.approx(19.99)
+    assert r.ok and r.message == ""
+
+
+def test_rest_coarse_resolution_sets_hysteresis() -> None:
+    rng = np.random.default_rng(3)
+    t = np.arange(500) * DT
+    pv = quantise(rng.normal(0, 0.03, t.size), 0.1)  # mostly one level, now and then a step
+    r = assess_rest(t, pv, np.zeros(t.size))
+    assert r.resolution == pytest.approx(0.1)
+    assert 3 * r.noise_std < 0.2
+    assert r.suggested_hysteresis == pytest.approx(0.2)
+
+
+def test_rest_perfect_sensor() -> None:
+    t = np.arange(100) * DT
+    r = assess_rest(t, np.full(100, 2.0), np.zeros(100))
+    assert r.noise_std == 0.0 and r.drift == 0.0 and r.resolution == 0.0
+    assert r.suggested_hysteresis == 0.0
+
+
+def test_rest_fails_when_window_is_narrower_than_noise() -> None:
+    rng = np.random.default_rng(5)
+    t = np.arange(1000) * DT
+    pv = rng.normal(0, 0.5, t.size)
+    r = assess_rest(t, pv, np.zeros(t.size), pv_window=2.0)
+    assert not r.ok and "window" in r.message
+    assert assess_rest(t, pv, np.zeros(t.size), pv_window=10.0).ok
+
+
+def test_rest_needs_data() -> None:
+    with pytest.raises(ValueError):
+        assess_rest([0.0, 0.1], [1.0, 1.0], [0.0, 0.0])
+    with pytest.raises(ValueError):
+        assess_rest([0.0, 0.1, 0.2], [1.0, 1.0], [0.0, 0.0, 0.0])
+    with pytest.raises(ValueError):
+        assess_rest([0.0, 0.1, 0.2], [1.0, math.nan, 1.0], [0.0, 0.0, 0.0])
+
+
+def test_smallest_step_ignores_float_noise() -> None:
+    assert smallest_step([1.0, 1.0, 1.0 + 1e-12, 1.25, 1.0]) == pytest.approx(0.25)
+    assert smallest_step([2.0]) == 0.0
+
+
+# ---------------------------------------------------------------------------------- direction
+def pulse_response(plant: DelayedTF, pulse: float, t_pulse: float = 1.0, width: float = 0.5,
+                   noise: float = 0.0, seed: int = 0, n: int = 300):
+    """Simulated direction check: a pulse of `pulse` output units at t_pulse for `width` s."""
+    t = np.arange(n) * DT
+    u = np.array([direction_pulse(tk - t_pulse, abs(pulse), width, sign=int(np.sign(pulse)))
+                  for tk in t])
+    y = plant.simulate_zoh(u, DT) + np.random.default_rng(seed).normal(0, noise, n) + 4.0
+    return t, y
+
+
+def test_direction_ok() -> None:
+    t, y = pulse_response(fopdt(2.0, 0.5, 0.1), 1.0, noise=0.01)
+    r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
+    assert r.ok and r.moved and r.sign_ok and r.message == ""
+    assert r.change > 0.05 and r.threshold == pytest.approx(0.05)
+    assert r.t_response is not None and 1.1 < r.t_response < 1.5
+
+
+def test_direction_negative_pulse_ok() -> None:
+    t, y = pulse_response(fopdt(2.0, 0.5, 0.1), -1.0, noise=0.01)
+    r = assess_direction(t, y, 1.0, -1, noise_std=0.01)
+    assert r.ok and r.change < 0
+
+
+def test_direction_wrong_way() -> None:
+    t, y = pulse_response(fopdt(-2.0, 0.5, 0.1), 1.0, noise=0.01)
+    r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
+    assert not r.ok and r.moved and not r.sign_ok
+    assert r.message == "actuator and sensor signs disagree; flip `sign` in the config"
+    assert r.message == MSG_SIGN_DISAGREE
+
+
+def test_direction_expected_sign_reversed_loop() -> None:
+    t, y = pulse_response(fopdt(-2.0, 0.5, 0.1), 1.0, noise=0.01)
+    assert assess_direction(t, y, 1.0, +1, noise_std=0.01, expected_sign=-1).ok
+
+
+def test_direction_no_response() -> None:
+    t, y = pulse_response(fopdt(0.01, 0.5, 0.1), 1.0, noise=0.01, seed=2)
+    r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
+    assert not r.ok and not r.moved
+    assert r.message == "no response: check power, wiring, deadband; try a larger pulse"
+    assert r.message == MSG_NO_RESPONSE
+
+
+def test_direction_single_spike_is_not_motion() -> None:
+    t = np.arange(300) * DT
+    y = np.full(300, 1.0)
+    y[150] += 5.0  # one corrupt sample
+    r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
+    assert not r.moved and r.message == MSG_NO_RESPONSE
+
+
+def test_direction_late_response_outside_timeout() -> None:
+    t, y = pulse_response(fopdt(2.0, 0.2, 1.5), 1.0, noise=0.0, n=400)
+    assert assess_direction(t, y, 1.0, +1, noise_std=0.001, timeout=3.0).ok
+    assert not assess_direction(t, y, 1.0, +1, noise_std=0.001, timeout=1.0).moved
+
+
+def test_direction_inverse_response_decided_by_main_motion() -> None:
+    """Non-minimum-phase plant 2(1 - s)/((0.5 s + 1)(0.2 s + 1)): brief dip, then a rise."""
+    plant = DelayedTF((-2.0, 2.0), tuple(np.polymul([0.5, 1.0], [0.2, 1.0])), 0.0)
+    t, y = pulse_response(plant, 1.0, width=1.0, noise=0.0, n=400)
+    after = y[(t > 1.0) & (t < 1.1)] - 4.0
+    assert after.min() < -0.05  # the plant does dip first
+    assert assess_direction(t, y, 1.0, +1, noise_std=0.005).ok
+
+
+def test_direction_argument_checks() -> None:
+    with pytest.raises(ValueError):
+        assess_direction([0.0], [0.0], 0.0, 0, 0.1)
+    r = assess_direction([0.0, 0.1], [0.0, 0.0], 5.0, +1, 0.1)  # no samples after the pulse
+    assert not r.moved and r.message == MSG_NO_RESPONSE
+
+
+def test_precheck_failed_carries_message() -> None:
+    e = PrecheckFailed("direction", MSG_SIGN_DISAGREE)
+    assert str(e) == MSG_SIGN_DISAGREE and e.check == "direction"
+
+
+# ---------------------------------------------------------------------------------- breakaway
+def ramp_run(deadband: float, rate: float, noise: float, seed: int = 0, delay: float = 0.05,
+             bias: float = 0.0, n: int = 1000):
+    """Ramp from t = 0.5 s into a FOPDT behind a deadband (|u| < deadband moves nothing)."""
+    t = np.arange(n) * DT
+    u = np.array([breakaway_ramp(tk - 0.5, rate, 10.0, bias=bias) for tk in t])
+    ue = np.where(np.abs(u) < deadband, 0.0, u)
+    y = fopdt(1.0, 0.3, delay).simulate_zoh(ue, DT)
+    y = y + np.random.default_rng(seed).normal(0, noise, n)
+    return t, y, u
+
+
+def test_breakaway_measures_deadband() -> None:
+    t, y, u = ramp_run(deadband=2.0, rate=1.0, noise=0.002)
+    r = assess_breakaway(t, y, u, noise_std=0.002)
+    assert r.deadband is not None and r.message == ""
+    # the estimate is an upper bound: lag and dead time let the ramp run on (here < 0.3 output)
+    assert 2.0 <= r.deadband <= 2.3
+    assert r.t_move is not None and r.output_at_move == pytest.approx(r.deadband)
+    # a known response lag brings it closer
+    r2 = assess_breakaway(t, y, u, noise_std=0.002, response_lag=0.05)  # the dead time
+    assert r2.deadband is not None and 1.99 <= r2.deadband < r.deadband
+
+
+def test_breakaway_relative_to_bias() -> None:
+    t, y, u = ramp_run(deadband=3.0, rate=1.0, noise=0.0, bias=1.0)
+    r = assess_breakaway(t, y, u, noise_std=0.0, min_change=1e-4)
+    assert r.deadband is not None and 2.0 <= r.deadband <= 2.3  # moved at output 3 = bias + 2
+
+
+def test_breakaway_never_moves() -> None:
+    t, y, u = ramp_run(deadband=20.0, rate=1.0, noise=0.002)
+    r = assess_breakaway(t, y, u, noise_std=0.002)
+    assert r.deadband is None and "did not move" in r.message
+    r = assess_breakaway([], [], [], noise_std=0.1)
+    assert r.deadband is None
+
+
+# ---------------------------------------------------------------------------------- profiles
+def test_direction_pulse_profile() -> None:
+    assert direction_pulse(-0.1, 5.0, 0.2, bias=1.0) == 1.0
+    assert direction_pulse(0.0, 5.0, 0.2, bias=1.0) == 6.0
+    assert direction_pulse(0.19, 5.0, 0.2, bias=1.0, sign=-1) == -4.0
+    assert direction_pulse(0.2, 5.0, 0.2, bias=1.0) == 1.0
+
+
+def test_breakaway_ramp_profile() -> None:
+    assert breakaway_ramp(-1.0, 2.0, 5.0) == 0.0
+    assert breakaway_ramp(1.0, 2.0, 5.0, bias=1.0) == 3.0
+    assert breakaway_ramp(1.0, 2.0, 5.0, sign=-1) == -2.0
+    assert breakaway_ramp(10.0, 2.0, 5.0) == 5.0
+    assert breakaway_ramp_duration(2.0, 5.0) == 2.5
+    with pytest.raises(ValueError):
+        breakaway_ramp_duration(0.0, 5.0)
