@@ -339,7 +339,8 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     at_rest = _rest_at_start(y, u, first_switch, noise, 2 * a)
     fit_from = 0 if at_rest else i0
     model = fit_models(t, y, u, ts=ts, w1=w1, phase1=_phase_below_zero(g1), fit_from=fit_from,
-                       candidates=candidates)
+                       candidates=candidates, points=[(p.w, p.g) for p in fourier],
+                       noise_floor=noise)
     tf = model.tf
     up = tf.ultimate_point()
     mismatch = {p.harmonic: float(abs(complex(tf.freq_response(p.w)) - p.g) / abs(p.g))
@@ -382,10 +383,8 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     m1 = mismatch.get(1, 0.0)
     higher = [v for k, v in mismatch.items() if k > 1]
     shift = abs(math.log(w180 / w1))
-    if higher:
-        model_err = m1 + abs(max(higher) - m1) * shift / math.log(3.0)
-    else:
-        model_err = m1 + 0.25 * shift
+    model_err = (m1 + abs(max(higher) - m1) * shift / math.log(3.0)) if higher else \
+        m1 + 0.25 * shift
     dphi = math.sqrt(noise_rel**2 + model_err**2)
     slope_ph = abs(float(tf.phase(w180 * 1.001) - tf.phase(w180 * 0.999)) / (0.002 * w180))
     slope_mag = abs(math.log(abs(complex(tf.freq_response(w180 * 1.001))) /

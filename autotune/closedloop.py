@@ -1,9 +1,12 @@
 """Sampled closed loop of a `DelayedTF` plant and the project's `DiscretePid` (pure).
 
 The PID runs every ts seconds: at tick k it reads y(k ts), computes u[k] and holds it over
-[k ts, (k+1) ts) (zero-order hold). The plant response at the ticks is exact: it is the
-convolution of the plant input with the plant's exact ZOH pulse response, taken from
-`DelayedTF.simulate_zoh` (so dead time, including a fraction of a tick, is exact).
+[k ts, (k+1) ts) (zero-order hold). The plant response at the ticks is exact (dead time,
+including a fraction of a tick, included). Two equivalent evaluations: while the output stays
+inside its limits the loop is linear and is solved at once as a difference equation built from
+the plant's exact ZOH form (`autotune.model.discrete_coefficients`) and the PID's transfer
+functions; otherwise `DiscretePid` runs tick by tick against the same exact ZOH difference
+equation of the plant.
 Units: seconds, PV units, output units; the loop starts at rest (y = 0, u = bias).
 """
 
@@ -12,9 +15,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import signal
 
 from autotune.lti import DelayedTF
-from autotune.pid import DiscretePid, PidSettings
+from autotune.model import discrete_coefficients
+from autotune.pid import DiscretePid, PidSettings, per_tick
 
 
 @dataclass(frozen=True)
@@ -29,26 +34,45 @@ class ClosedLoopRun:
     load: np.ndarray
 
 
-_PULSE_CACHE: dict[tuple[DelayedTF, float], np.ndarray] = {}
+_COEF_CACHE: dict[tuple[DelayedTF, float], tuple[np.ndarray, np.ndarray, int]] = {}
 
 
-def pulse_response(plant: DelayedTF, ts: float, n: int) -> np.ndarray:
-    """Exact sampled response h[k] = y(k ts), k < n, to a unit input held over [0, ts).
-
-    Memoised per (plant, ts) (a pure function of its arguments; a longer request recomputes).
-    Returns a read-only array.
-    """
+def _coefficients(plant: DelayedTF, ts: float) -> tuple[np.ndarray, np.ndarray, int]:
+    """Memoised `discrete_coefficients` (pure function of its arguments)."""
     key = (plant, float(ts))
-    h = _PULSE_CACHE.get(key)
-    if h is None or h.size < n:
-        pulse = np.zeros(n)
-        pulse[0] = 1.0
-        h = plant.simulate_zoh(pulse, ts)
-        h.setflags(write=False)
-        if len(_PULSE_CACHE) > 64:
-            _PULSE_CACHE.clear()
-        _PULSE_CACHE[key] = h
-    return h[:n]
+    if key not in _COEF_CACHE:
+        if len(_COEF_CACHE) > 64:
+            _COEF_CACHE.clear()
+        _COEF_CACHE[key] = discrete_coefficients(plant, ts)
+    return _COEF_CACHE[key]
+
+
+def _linear_loop(plant: DelayedTF, settings: PidSettings, sp: np.ndarray, load: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """The unsaturated loop as one difference equation (polynomials in z^-1, ascending).
+
+    Plant y = z^-m B/A w; DiscretePid u = (Nr sp - Ny y)/Dc + bias with
+    Dc = (1 - z^-1)(1 - ad z^-1), Nr = kp b Dc + ki_ts z^-1 (1 - ad z^-1),
+    Ny = kp Dc + ki_ts z^-1 (1 - ad z^-1) + bd (1 - z^-1)^2; hence
+    (A Dc + z^-m B Ny) y = z^-m B (Nr sp + Dc (load + bias)).
+    """
+    c = per_tick(settings.gains, settings.ts, settings.deriv_filter_n)
+    b_p, a_p, m = _coefficients(plant, settings.ts)
+    bz = np.concatenate([np.zeros(m), b_p])  # z^-m B
+    one_m = np.array([1.0, -1.0])
+    filt = np.array([1.0, -c["ad"]])
+    dc = np.convolve(one_m, filt)
+    integ = c["ki_ts"] * np.concatenate([[0.0], filt])
+    nr = np.polyadd(c["kp"] * settings.setpoint_weight * dc[::-1], integ[::-1])[::-1]
+    ny = np.polyadd(np.polyadd(c["kp"] * dc[::-1], integ[::-1]),
+                    c["bd"] * np.convolve(one_m, one_m)[::-1])[::-1]
+    den = np.polyadd(np.convolve(a_p, dc)[::-1], np.convolve(bz, ny)[::-1])[::-1]
+    w = load + settings.bias
+    with np.errstate(all="ignore"):
+        y = signal.lfilter(np.convolve(bz, nr), den, sp) + \
+            signal.lfilter(np.convolve(bz, dc), den, w)
+        u = signal.lfilter(nr, dc, sp) - signal.lfilter(ny, dc, y) + settings.bias
+    return y, u
 
 
 def simulate_closed_loop(
@@ -58,7 +82,8 @@ def simulate_closed_loop(
     setpoint_step: float,
     load_step: float = 0.0,
     load_time: float | None = None,
-    max_ticks: int = 20000,
+    max_ticks: int = 1_000_000,
+    method: str = "auto",
 ) -> ClosedLoopRun:
     """Simulate the sampled loop from rest for `t_end` seconds.
 
@@ -66,27 +91,49 @@ def simulate_closed_loop(
     (output units) from `load_time` on (None: from t = 0). The plant input is
     u + load (the controller's limits apply to u only). The plant must be strictly proper or
     have dead time (the PV read at a tick cannot depend on the output computed from it).
+    method: "auto" (linear solution when the output never reaches its limits, else tick by
+    tick), "ticks" (always tick by tick, the reference), "linear" (ignore the limits).
     """
     ts = settings.ts
     n = int(round(t_end / ts)) + 1
     if n > max_ticks:
         raise ValueError(f"{n} ticks requested (t_end/ts), above max_ticks={max_ticks}")
-    h = pulse_response(plant, ts, n)
-    if abs(h[0]) > 1e-12 * max(1.0, float(np.max(np.abs(h)))):
+    b_p, _, m = _coefficients(plant, ts)
+    if m == 0 and abs(b_p[0]) > 1e-12 * max(1.0, float(np.max(np.abs(b_p)))):
         raise ValueError("plant has direct feedthrough and no dead time: sampled loop undefined")
-    h_rev = h[1:][::-1].copy()  # h_rev[n-1-k+i] = h[k-i]
     t = np.arange(n) * ts
     sp = np.full(n, float(setpoint_step))
     load = np.zeros(n)
     load[t >= (0.0 if load_time is None else load_time) - 1e-12 * ts] = load_step
-    y = np.zeros(n)
-    u = np.zeros(n)
-    w = np.zeros(n)  # plant input
+    if method in ("auto", "linear"):
+        y, u = _linear_loop(plant, settings, sp, load)
+        inside = bool(np.all((u >= settings.out_min) & (u <= settings.out_max)))
+        if method == "linear" or inside:
+            return ClosedLoopRun(t, y, u, sp, load)
+    elif method != "ticks":
+        raise ValueError(f"unknown method {method!r}")
+    b_p, a_p, m = _coefficients(plant, ts)
+    bz = (np.concatenate([np.zeros(m), b_p]) / a_p[0]).tolist()  # y = (z^-m B / A) w
+    az = (a_p[1:] / a_p[0]).tolist()
+    # taps that are exactly zero (the whole-tick dead time) are skipped
+    btaps = [(i, c) for i, c in enumerate(bz) if i > 0 and c != 0.0]  # bz[0] = 0 (checked)
+    ataps = list(enumerate(az, start=1))
+    yl = [0.0] * n
+    ul = [0.0] * n
+    wl = [0.0] * n  # plant input
+    spl = sp.tolist()
+    loadl = load.tolist()
     pid = DiscretePid(settings)
     for k in range(n):
-        yk = float(np.dot(h_rev[n - 1 - k : n - 1], w[:k])) if k else 0.0
-        y[k] = yk
-        uk = pid.update(sp[k], yk)
-        u[k] = uk
-        w[k] = uk + load[k]
-    return ClosedLoopRun(t, y, u, sp, load)
+        acc = 0.0
+        for i, c in btaps:
+            if i <= k:
+                acc += c * wl[k - i]
+        for i, c in ataps:
+            if i <= k:
+                acc -= c * yl[k - i]
+        yl[k] = acc
+        uk = pid.update(spl[k], acc)
+        ul[k] = uk
+        wl[k] = uk + loadl[k]
+    return ClosedLoopRun(t, np.array(yl), np.array(ul), sp, load)

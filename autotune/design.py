@@ -58,8 +58,10 @@ class Proposal:
     """One set of gains with its predicted behaviour on the model.
 
     predicted keys: ms, gain_margin, phase_margin_deg, stable, overshoot (%), rise_time,
-    settling_time (s), iae_load (PV units s, unit load step at the plant input), peak_output
-    (output units, for the configured step), time_saturated (s), ts (s, loop period used).
+    settling_time (s), iae_load (PV units s, unit load step at the plant input; inf without
+    integral action), peak_output (output units, for the configured step), time_saturated
+    (s), ts (s, loop period used), t_end (s, length of the predicted step; nan figures: not
+    reached within it, or unstable).
     """
 
     name: str
@@ -100,15 +102,22 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, fl
     stable = robust.is_stable(model, gains, spec.n, ts)
     tu = 2.0 * math.pi / robust.reference_frequency(model, ts)
     ti = math.inf if gains.ki == 0 else abs(gains.kp / gains.ki)
-    t_end = max(15.0 * tu, min(8.0 * ti, 60.0 * tu))
-    t_end = min(t_end, 6000 * ts)
+    # first try a span that covers most loops; a loop not settled in it is simulated again
+    # over the longest span (60 Tu, at most 20000 ticks: the tick-by-tick path that
+    # saturation needs costs about 10 us a tick)
+    t_cap = min(60.0 * tu, 20000 * ts)
+    t_end = min(max(12.0 * tu, 4.0 * ti), t_cap)
     lim = spec.output_limit
     settings = PidSettings(gains, ts, spec.n, spec.setpoint_weight, spec.tracking_time,
                            -lim, lim)
+    u_lim = lim if math.isfinite(lim) else None
     run = simulate_closed_loop(model, settings, t_end, spec.step_size)
     if stable and np.all(np.isfinite(run.y)):
-        m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u,
-                         lim if math.isfinite(lim) else None)
+        m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u, u_lim)
+        if math.isnan(m.settling_time) and t_end < t_cap:
+            t_end = t_cap
+            run = simulate_closed_loop(model, settings, t_end, spec.step_size)
+            m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u, u_lim)
         overshoot, rise, settle = m.overshoot, m.rise_time, m.settling_time
         peak, tsat = m.peak_output, m.time_saturated
     else:
@@ -116,14 +125,16 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, fl
         peak = float(np.nanmax(np.abs(run.u))) if np.any(np.isfinite(run.u)) else math.inf
         tsat = math.nan
     iae = math.nan
-    if stable:
+    if stable and gains.ki == 0.0:
+        iae = math.inf  # no integral action: a load step leaves an offset, the IAE grows without end
+    elif stable:
         load = simulate_closed_loop(model, PidSettings(gains, ts, spec.n, spec.setpoint_weight),
-                                    t_end, 0.0, load_step=1.0)
+                                    t_cap, 0.0, load_step=1.0)  # linear: cheap at any length
         iae = float(np.sum(0.5 * (np.abs(load.y[1:]) + np.abs(load.y[:-1])) * ts))
     return {"ms": mg.ms, "gain_margin": mg.gain_margin, "phase_margin_deg": mg.phase_margin_deg,
             "stable": stable, "overshoot": overshoot, "rise_time": rise, "settling_time": settle,
             "iae_load": iae, "peak_output": peak, "time_saturated": tsat, "ts": ts,
-            "t_end": float(run.t[-1])}
+            "t_end": float(run.t[-1]), "t_end_load": t_cap}
 
 
 def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:
@@ -176,9 +187,9 @@ def choose_default(pi: PidGains, pid: PidGains, spec: DesignSpec) -> str:
     """"robust-pid" or "robust-pi" by the rule in the module docstring."""
     if pid.ki < 1.10 * pi.ki:
         return "robust-pi"
-    if math.isfinite(spec.output_limit) and spec.pv_noise > 0:
-        if pid.kp * (1.0 + spec.n) * spec.pv_noise > 0.02 * spec.output_limit:
-            return "robust-pi"
+    noisy = pid.kp * (1.0 + spec.n) * spec.pv_noise > 0.02 * spec.output_limit
+    if math.isfinite(spec.output_limit) and spec.pv_noise > 0 and noisy:
+        return "robust-pi"
     return "robust-pid"
 
 

@@ -28,9 +28,11 @@ from scipy import linalg, optimize, signal
 
 from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
 
-CANDIDATES = ("fopdt", "sopdt", "integrator_lag", "sopdt_zero")
-_N_NONLINEAR = {"fopdt": 2, "sopdt": 3, "integrator_lag": 2, "sopdt_zero": 3}
-_N_LINEAR = {"fopdt": 2, "sopdt": 2, "integrator_lag": 3, "sopdt_zero": 3}
+CANDIDATES = ("fopdt", "integrator_lag", "sopdt", "lag_n")
+_N_NONLINEAR = {"fopdt": 2, "sopdt": 3, "integrator_lag": 2, "sopdt_zero": 3, "lag_n": 2}
+# lag_n: gain, zero, offset + the order
+_N_LINEAR = {"fopdt": 2, "sopdt": 2, "integrator_lag": 3, "sopdt_zero": 3, "lag_n": 4}
+LAG_ORDERS = range(2, 9)
 
 
 # ---------------------------------------------------------------------------- sampled response
@@ -123,6 +125,51 @@ def modal_response(poles: Sequence[float], residues: Sequence[float], delay: flo
     return y
 
 
+def cascade_response(time_constants: Sequence[float], delay: float, u: np.ndarray, dt: float
+                     ) -> np.ndarray:
+    """Sampled response of exp(-delay s) / prod_i (T_i s + 1) (see `cascade_states`)."""
+    return cascade_states(time_constants, delay, u, dt)[-1]
+
+
+def cascade_states(time_constants: Sequence[float], delay: float, u: np.ndarray, dt: float
+                   ) -> list[np.ndarray]:
+    """Sampled response of exp(-delay s) / prod_i (T_i s + 1) to u held over each tick.
+
+    Returns the sampled output of every stage i (exp(-delay s) / prod_{j<=i} (T_j s + 1)).
+    Exact (matrix-exponential ZOH of the cascade realisation, fractional dead time split as in
+    `sampled_response`); the discrete state matrix is lower triangular, so each stage is one
+    first-order difference equation driven by the earlier stages (stable for repeated lags).
+    """
+    u = np.asarray(u, dtype=float)
+    n = len(time_constants)
+    a = np.zeros((n, n))
+    b = np.zeros((n, 1))
+    for i, tc in enumerate(time_constants):
+        a[i, i] = -1.0 / tc
+        if i:
+            a[i, i - 1] = 1.0 / tc
+    b[0, 0] = 1.0 / time_constants[0]
+    m, frac = divmod(delay, dt)
+    m = int(m)
+    if frac > dt * (1 - 1e-9):
+        m, frac = m + 1, 0.0
+    if m:
+        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
+    u_early = np.concatenate([[0.0], u[:-1]])
+    phi1, gam1 = _zoh(a, b, frac) if frac > 0 else (np.eye(n), np.zeros((n, 1)))
+    phi2, gam2 = _zoh(a, b, dt - frac)
+    phi = np.tril(phi2 @ phi1)
+    g_e = (phi2 @ gam1)[:, 0]
+    g_l = gam2[:, 0]
+    states: list[np.ndarray] = []
+    for i in range(n):
+        drive = g_e[i] * u_early + g_l[i] * u
+        for j in range(i):
+            drive = drive + phi[i, j] * states[j]
+        states.append(signal.lfilter([0.0, 1.0], [1.0, -phi[i, i]], drive))
+    return states
+
+
 def _modes(kind: str, shape: dict[str, float]) -> tuple[list[float], list[float]]:
     """Poles and residues of the unit-gain candidate (distinct poles; near-equal lags split)."""
     if kind == "fopdt":
@@ -171,26 +218,41 @@ class FittedModel:
     candidates: dict[str, CandidateFit] = field(default_factory=dict)
 
 
-def _build(kind: str, theta: np.ndarray) -> tuple[DelayedTF, dict[str, float]]:
-    """Unit-gain model for the nonlinear parameters theta (log time constants, delay)."""
-    if kind == "fopdt":
-        t1, lag = math.exp(theta[0]), max(float(theta[1]), 0.0)
-        return fopdt(1.0, t1, lag), {"time_constant": t1, "delay": lag}
+def _shape(kind: str, theta: np.ndarray) -> dict[str, float]:
+    """Time constants and delay (s) of a candidate from its search vector (log T..., L)."""
+    if kind in ("fopdt", "integrator_lag", "lag_n"):
+        return {"time_constant": math.exp(theta[0]), "delay": max(float(theta[1]), 0.0)}
     if kind in ("sopdt", "sopdt_zero"):
         ta, tb = sorted((math.exp(theta[0]), math.exp(theta[1])), reverse=True)
-        lag = max(float(theta[2]), 0.0)
-        return sopdt(1.0, ta, tb, lag), {"t1": ta, "t2": tb, "delay": lag}
-    if kind == "integrator_lag":
-        t1, lag = math.exp(theta[0]), max(float(theta[1]), 0.0)
-        return integrator_lag(1.0, t1, lag), {"time_constant": t1, "delay": lag}
+        return {"t1": ta, "t2": tb, "delay": max(float(theta[2]), 0.0)}
     raise ValueError(f"unknown model kind {kind!r}")
+
+
+def _build(kind: str, shape: dict[str, float], beta: np.ndarray) -> DelayedTF:
+    """The DelayedTF for a candidate's shape and linear coefficients (gain first)."""
+    gain, lag = float(beta[0]), shape["delay"]
+    if kind == "fopdt":
+        return fopdt(gain, shape["time_constant"], lag)
+    if kind == "integrator_lag":
+        return integrator_lag(gain, shape["time_constant"], lag)
+    if kind == "lag_n":
+        den = np.array([1.0])
+        for _ in range(int(shape["order"])):
+            den = np.polymul(den, [shape["time_constant"], 1.0])
+        return DelayedTF((float(beta[2]), gain), tuple(den), lag)
+    tf = sopdt(gain, shape["t1"], shape["t2"], lag)
+    if kind == "sopdt_zero":
+        return DelayedTF((float(beta[2]), gain), tf.den, lag)
+    return tf
 
 
 class _Problem:
     """Variable-projection output-error problem for one candidate over a record."""
 
-    def __init__(self, kind: str, u: np.ndarray, y: np.ndarray, dt: float, window: slice):
+    def __init__(self, kind: str, u: np.ndarray, y: np.ndarray, dt: float, window: slice,
+                 order: int = 1):
         self.kind = kind
+        self.order = order
         self.u = u
         self.y = y
         self.dt = dt
@@ -198,35 +260,87 @@ class _Problem:
         self.yw = y[window]
         self.ones = np.ones_like(u)
 
-    def solve(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, DelayedTF, dict]:
-        tf, shape = _build(self.kind, theta)
-        poles, res = _modes(self.kind, shape)
-        r = modal_response(poles, res, tf.delay, self.u, self.dt)[self.window]
+    def solve(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, dict[str, float]]:
+        shape = _shape(self.kind, theta)
+        lag = shape["delay"]
+        if self.kind == "lag_n":
+            tc = shape["time_constant"]
+            st = cascade_states([tc] * self.order, lag, self.u, self.dt)
+            r = st[-1][self.window]
+            # s / (T s + 1)^n = (1/(T s + 1)^(n-1) - 1/(T s + 1)^n) / T: the zero's column
+            zero_col = ((st[-2] - st[-1]) / tc)[self.window]
+            poles, res = [], []
+        else:
+            poles, res = _modes(self.kind, shape)
+            r = modal_response(poles, res, lag, self.u, self.dt)[self.window]
         cols = [r, np.ones_like(r)]
         if self.kind == "integrator_lag":
-            cols.append(modal_response(poles, res, tf.delay, self.ones, self.dt)[self.window])
+            cols.append(modal_response(poles, res, lag, self.ones, self.dt)[self.window])
+        elif self.kind == "lag_n":
+            cols.append(zero_col)
         elif self.kind == "sopdt_zero":  # s / den: residues p_i r_i
-            res_d = [p * r for p, r in zip(poles, res, strict=True)]
-            cols.append(modal_response(poles, res_d, tf.delay, self.u, self.dt)[self.window])
+            res_d = [p * q for p, q in zip(poles, res, strict=True)]
+            cols.append(modal_response(poles, res_d, lag, self.u, self.dt)[self.window])
         x = np.column_stack(cols)
-        beta, *_ = np.linalg.lstsq(x, self.yw, rcond=None)
-        return self.yw - x @ beta, beta, tf, shape
+        # normal equations, column-scaled (small systems: 2 or 3 unknowns)
+        scale = np.sqrt(np.sum(x * x, axis=0))
+        scale[scale == 0] = 1.0
+        xs = x / scale
+        try:
+            beta = np.linalg.solve(xs.T @ xs, xs.T @ self.yw) / scale
+        except np.linalg.LinAlgError:
+            beta = np.linalg.lstsq(x, self.yw, rcond=None)[0]
+        return self.yw - x @ beta, beta, shape
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[0]
 
 
-def _start_grid(kind: str, w1: float, phase1: float) -> list[np.ndarray]:
+def lag_order_from_points(points: Sequence[tuple[float, complex]]) -> int | None:
+    """Order n of K exp(-L s)/(T s + 1)^n that best explains the harmonic points.
+
+    points: (w rad/s, G) with the fundamental first; for each n, T and L are placed so the
+    phase at the fundamental matches (several splits between lag and delay), K matches its
+    magnitude, and the relative miss at the higher harmonics decides. None without them.
+    """
+    if len(points) < 2:
+        return None
+    w1, g1 = points[0]
+    lag_total = max(-(float(np.angle(g1)) - (2 * math.pi if np.angle(g1) > 0 else 0.0)), 0.05)
+    best: tuple[float, int] | None = None
+    for n in LAG_ORDERS:
+        for q in np.linspace(0.0, 0.9, 19):
+            lag_phase = min((1 - q) * lag_total, n * math.pi / 2 * 0.97)
+            tc = math.tan(lag_phase / n) / w1
+            delay = (lag_total - lag_phase) / w1
+            k = abs(g1) * (1 + (w1 * tc) ** 2) ** (n / 2)
+            miss = 0.0
+            for w, g in points[1:]:
+                gm = k * np.exp(-1j * w * delay) / (1 + 1j * w * tc) ** n
+                miss += abs(gm - g) / abs(g)
+            if best is None or miss < best[0]:
+                best = (miss, n)
+    return None if best is None else best[1]
+
+
+def _start_grid(kind: str, w1: float, phase1: float, order: int = 1) -> list[np.ndarray]:
     """Starting points whose phase at w1 (rad/s) equals the measured phase1 (rad, < 0)."""
     lag_total = -phase1 - (math.pi / 2 if kind == "integrator_lag" else 0.0)
     lag_total = max(lag_total, 0.05)
     starts: list[np.ndarray] = []
+    if kind == "lag_n":
+        for q in (0.0, 0.15, 0.4):
+            lag_phase = min((1 - q) * lag_total, order * math.pi / 2 * 0.97)
+            tc = max(math.tan(lag_phase / order) / w1, 1e-6)
+            for f in ((1.0, 0.6, 0.35) if q == 0.0 else (1.0,)):
+                starts.append(np.array([math.log(tc * f), (lag_total - lag_phase) / w1]))
+        return starts
     lag_max = math.pi / 2 * (2 if kind in ("sopdt", "sopdt_zero") else 1) * 0.97
-    for q in (0.05, 0.2, 0.35, 0.5, 0.65, 0.8, 0.95):
+    for q in (0.05, 0.25, 0.5, 0.75, 0.95):
         lag_phase = min((1 - q) * lag_total, lag_max)
         delay = max(lag_total - lag_phase, 0.0) / w1
         if kind in ("sopdt", "sopdt_zero"):
-            for share in (0.5, 0.75, 0.95):
+            for share in (0.5, 0.8, 0.97):
                 pa = min(share * lag_phase, math.pi / 2 * 0.97)
                 pb = min(lag_phase - pa, math.pi / 2 * 0.97)
                 ta = max(math.tan(pa) / w1, 1e-6)
@@ -249,6 +363,8 @@ def fit_models(
     fit_from: int = 0,
     u_ref: float | None = None,
     candidates: Sequence[str] = CANDIDATES,
+    points: Sequence[tuple[float, complex]] = (),
+    noise_floor: float = 0.0,
 ) -> FittedModel:
     """Fit each candidate to the sampled record by least squares; return the best.
 
@@ -257,7 +373,10 @@ def fit_models(
     first-harmonic frequency (rad/s) and plant phase there (rad, in (-2 pi, 0)), used to seed
     the search; fit_from: first sample index of the residual window (the model is simulated
     from sample 0, assuming the plant at rest with input u_ref, default u[0], before it);
-    candidates: model kinds to try.
+    candidates: model kinds to try; points: measured (w, G) harmonic points (fundamental
+    first); noise_floor: PV noise std (PV units): once a candidate's rms residual is within
+    5% of it (or of 1e-9 of the PV range) no richer candidate can do better, and the search
+    stops there (candidates are tried in the order given, simplest first).
     """
     t = np.asarray(t, dtype=float)
     y = np.asarray(y, dtype=float)
@@ -271,29 +390,54 @@ def fit_models(
     if n_win < 8:
         raise ValueError("too few samples to fit a model")
     fits: dict[str, CandidateFit] = {}
+    solved: dict[str, np.ndarray] = {}
     log_lo = math.log(ts * 1e-3)
     log_hi = math.log(max(t[-1] - t[0], ts) * 1e3)
-    for kind in candidates:
-        prob = _Problem(kind, du, y, ts, window)
-        starts = _start_grid(kind, w1, phase1)
+    def optimise(prob: _Problem, starts: list[np.ndarray]) -> np.ndarray:
         costs = [float(np.sum(prob.residual(s) ** 2)) for s in starts]
         best = starts[int(np.argmin(costs))]
-        npar = _N_NONLINEAR[kind]
+        npar = best.size
         lo = np.full(npar, log_lo)
         hi = np.full(npar, log_hi)
         lo[-1], hi[-1] = 0.0, max(t[-1] - t[0], ts)
         x0 = np.clip(best, lo + 1e-9, hi - 1e-9)
         sol = optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
                                      x_scale=np.r_[np.ones(npar - 1), max(1.0 / w1, ts)],
-                                     xtol=1e-9, ftol=1e-10, gtol=1e-10, max_nfev=200)
-        res, beta, tf_unit, shape = prob.solve(sol.x)
-        gain = float(beta[0])
-        if kind == "sopdt_zero":
-            zero = float(beta[2] / gain) if gain else 0.0
-            tf = DelayedTF((gain * zero, gain), tf_unit.den, tf_unit.delay)
-            shape = {**shape, "zero_time": zero}
+                                     xtol=1e-8, ftol=1e-10, gtol=1e-10, max_nfev=80)
+        return np.asarray(sol.x)
+
+    for kind in candidates:
+        if kind == "lag_n":
+            # rank the orders by their best start, then optimise the two most promising
+            ranked = []
+            for n in LAG_ORDERS:
+                prob_n = _Problem(kind, du, y, ts, window, n)
+                starts_n = _start_grid(kind, w1, phase1, n)
+                c = min(float(np.sum(prob_n.residual(st) ** 2)) for st in starts_n)
+                ranked.append((c, n, prob_n, starts_n))
+            ranked.sort(key=lambda r: r[0])
+            trials = []
+            for _, n, prob_n, starts_n in ranked[:2]:
+                x = optimise(prob_n, starts_n)
+                trials.append((float(np.sum(prob_n.residual(x) ** 2)), n, prob_n, x))
+            _, order, prob, x = min(trials, key=lambda r: r[0])
         else:
-            tf = DelayedTF(tuple(gain * c for c in tf_unit.num), tf_unit.den, tf_unit.delay)
+            order = 1
+            prob = _Problem(kind, du, y, ts, window)
+            starts = _start_grid(kind, w1, phase1)
+            if kind == "sopdt_zero" and "sopdt" in solved:
+                starts.append(solved["sopdt"])
+                starts.append(solved["sopdt"] + np.array([0.0, 0.0, -0.5 * solved["sopdt"][2]]))
+            x = optimise(prob, starts)
+        npar = _N_NONLINEAR[kind]
+        solved[kind] = x
+        res, beta, shape = prob.solve(x)
+        if kind == "lag_n":
+            shape = {**shape, "order": float(order)}
+        tf = _build(kind, shape, beta)
+        gain = float(beta[0])
+        if kind in ("sopdt_zero", "lag_n"):
+            shape = {**shape, "zero_time": float(beta[2] / gain) if gain else 0.0}
         params = {("velocity_gain" if kind == "integrator_lag" else "gain"): gain, **shape}
         rss = float(np.sum(res**2))
         npar_total = npar + _N_LINEAR[kind]
@@ -301,5 +445,7 @@ def fit_models(
         input_offset = float(beta[2] / gain) if kind == "integrator_lag" and gain else 0.0
         fits[kind] = CandidateFit(kind, params, tf, math.sqrt(rss / n_win), aic,
                                   float(beta[1]), input_offset)
+        if math.sqrt(rss / n_win) <= max(1.05 * noise_floor, 1e-9 * float(np.ptp(y))):
+            break
     winner = min(fits.values(), key=lambda f: f.aic)
     return FittedModel(winner.kind, dict(winner.params), winner.tf, winner.residual, fits)

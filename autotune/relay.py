@@ -25,6 +25,7 @@ Two ways to drive a `RelayExperiment`:
 from __future__ import annotations
 
 import math
+from collections import deque
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from typing import TYPE_CHECKING, Any
@@ -212,8 +213,8 @@ class RelayEvent:
     """Something the recorder and the UI should know: `kind` and plain-value `detail`.
 
     Kinds: "cycle", "amplitude_raised", "amplitude_lowered", "amplitude_capped", "bias_changed",
-    "settings_applied" (device loop: the board uses the new settings), "converged", "limit",
-    "end".
+    "settings_applied" / "settings_rejected" (device loop: the board uses / refused the new
+    settings), "converged", "limit", "end".
     """
 
     t: float
@@ -334,11 +335,13 @@ class _CycleAccumulator:
         self.pv_sum = 0.0
         self.n = 0
 
-    def add(self, pv: float) -> None:
+    def add(self, pv: float, hi: float | None = None, lo: float | None = None) -> None:
+        """One sample; `hi`/`lo` replace pv for the peaks (spike-robust peaks, see
+        RelayExperiment's confirm_samples)."""
         if not math.isfinite(pv):  # a corrupt sample must not poison the cycle's figures
             return
-        self.pv_max = max(self.pv_max, pv)
-        self.pv_min = min(self.pv_min, pv)
+        self.pv_max = max(self.pv_max, pv if hi is None else hi)
+        self.pv_min = min(self.pv_min, pv if lo is None else lo)
         self.pv_sum += pv
         self.n += 1
 
@@ -354,10 +357,17 @@ class RelayExperiment:
         converged: `converged(settled_cycles) -> bool`, called with the cycles completed since
             the last settings change took effect; default `default_converged` with
             plan.converge_tol.
-        guard: optional `SafetyGuard`; every sample is checked first and a violation ends the
-            experiment with end_reason "limit:<which>" and output 0.
+        guard: optional `SafetyGuard`; every sample is checked first (with the output applied
+            up to it: host loop, the one sent for the previous sample; device loop, the one
+            reported) and a violation ends the experiment at once with end_reason
+            "limit:<which>" and output 0. output_limit must not exceed the guard's.
         pv_start: reference PV for the window prediction (PV units); default: the guard's
             pv_start, else the first sample.
+        confirm_samples: host loop only: a switch needs this many consecutive samples beyond
+            the hysteresis, and a cycle's peaks count only PV levels held for this many samples,
+            so a one-sample spike shorter than confirm_samples neither switches the relay nor
+            inflates the amplitude. 1 (default) switches on the first sample; each extra sample
+            adds one sample period of delay to the switching.
 
     Attributes: `cycles` (all completed cycles), `events` (all events), `done`, `end_reason`,
     `violation`, `settings` (as in force / last sent), `switches` ((t, new_state) list).
@@ -365,7 +375,7 @@ class RelayExperiment:
 
     def __init__(self, plan: RelayPlan, settings: RelaySettings, output_limit: float, *,
                  converged: ConvergedFn | None = None, guard: SafetyGuard | None = None,
-                 pv_start: float | None = None) -> None:
+                 pv_start: float | None = None, confirm_samples: int = 1) -> None:
         if not (math.isfinite(output_limit) and output_limit > 0):
             raise ValueError(f"output limit must be a finite number > 0, got {output_limit!r}")
         if not abs(settings.bias) < output_limit:
@@ -378,11 +388,19 @@ class RelayExperiment:
             ceiling = min(ceiling, plan.max_amplitude)
         if settings.amplitude > ceiling:
             settings = replace(settings, amplitude=ceiling)
+        if not 1 <= int(confirm_samples) <= 10:
+            raise ValueError(f"confirm_samples must be 1..10, got {confirm_samples!r}")
+        self.confirm_samples = int(confirm_samples)
+        self._want_switch = 0  # consecutive samples asking for a switch (confirm_samples > 1)
+        self._recent_pv: deque[float] = deque(maxlen=self.confirm_samples)
         self.plan = plan
         self.relay = Relay(settings, output_limit)
         self.output_limit = float(output_limit)
         self._converged: ConvergedFn = converged or (
             lambda cs: default_converged(cs, plan.converge_tol))
+        if guard is not None and output_limit > guard.limits.output_limit * (1 + 1e-9):
+            raise ValueError(f"relay output limit {output_limit:g} above the safety guard's "
+                             f"{guard.limits.output_limit:g}")
         self.guard = guard
         if pv_start is None and guard is not None:
             pv_start = guard.pv_start
@@ -427,8 +445,20 @@ class RelayExperiment:
         if self.done:
             return self._result(0.0)
         self._begin(t, pv)
+        # the output applied up to this sample is the one sent for the previous sample
+        if self._check_guard(t, pv, self.relay.output):
+            return self._result(0.0)
         prev_state = self.relay.state
         new_state = self.relay.decide(pv)
+        if self.confirm_samples > 1 and prev_state != 0:
+            if new_state != prev_state:
+                self._want_switch += 1
+                if self._want_switch < self.confirm_samples:
+                    new_state = prev_state
+                else:
+                    self._want_switch = 0
+            else:
+                self._want_switch = 0
         self.relay.state = new_state
         if prev_state == 0:
             self._t_last_switch = t
@@ -443,9 +473,14 @@ class RelayExperiment:
             self._t_change = t
         output = self.relay.output_for(self.relay.state)
         self.relay.output = output
-        if self._acc is not None:
+        if self.confirm_samples > 1:
+            if math.isfinite(pv):
+                self._recent_pv.append(pv)
+            if self._acc is not None and self._recent_pv:
+                self._acc.add(pv, min(self._recent_pv), max(self._recent_pv))
+        elif self._acc is not None:
             self._acc.add(pv)
-        self._check_end(t, pv, output)
+        self._check_time(t)
         return self._result(0.0 if self.done else output)
 
     def observe(self, t: float, pv: float, out: float) -> RelayStep:
@@ -454,6 +489,8 @@ class RelayExperiment:
         if self.done:
             return self._result(0.0)
         self._begin(t, pv)
+        if self._check_guard(t, pv, out):
+            return self._result(0.0)
         if self._pending is not None and self._matches_new_levels(out):
             self.relay.settings = self._pending
             self._pending = None
@@ -474,7 +511,7 @@ class RelayExperiment:
             self._pending = self._new_settings
         if self._acc is not None:
             self._acc.add(pv)
-        self._check_end(t, pv, out)
+        self._check_time(t)
         return self._result(0.0 if self.done else out)
 
     def confirm_settings(self, t: float) -> None:
@@ -485,6 +522,14 @@ class RelayExperiment:
             self._pending = None
             self._t_change = t
             self._emit(t, "settings_applied", self.relay.settings.as_dict())
+
+    def reject_settings(self, t: float, why: str = "") -> None:
+        """Device loop: the board refused the last settings sent (e.g. a negative
+        acknowledgement); keep following the ones in force and stop adapting."""
+        if self._pending is not None and not self.done:
+            self._emit(t, "settings_rejected", {**self._pending.as_dict(), "why": why})
+            self._pending = None
+            self.adjustments = self.plan.max_adjustments
 
     def stop(self, t: float, reason: str, detail: dict[str, Any] | None = None) -> RelayStep:
         """End the experiment from outside (abort key, fault, lost link): output 0 from now on."""
@@ -518,19 +563,23 @@ class RelayExperiment:
         self.relay.output = 0.0
         self._emit(t, "end", {"reason": reason, "cycles": len(self.cycles), **detail})
 
-    def _check_end(self, t: float, pv: float, out: float) -> None:
-        if self.done:
-            return
-        if self.guard is not None:
-            v = self.guard.check(t, pv, out)
-            if v is not None:
-                self.violation = v
-                self._emit(t, "limit", {"which": v.which, "value": v.value, "limit": v.limit,
-                                        "message": v.message})
-                self._finish(t, v.reason, {})
-                return
+    def _check_guard(self, t: float, pv: float, out: float) -> bool:
+        """Run the safety guard on this sample; True (and the experiment over) on a violation."""
+        if self.guard is None:
+            return False
+        v = self.guard.check(t, pv, out)
+        if v is None:
+            return False
+        self.violation = v
+        self._emit(t, "limit", {"which": v.which, "value": v.value, "limit": v.limit,
+                                "message": v.message})
+        self._finish(t, v.reason, {})
+        return True
+
+    def _check_time(self, t: float) -> None:
         assert self._t0 is not None
-        if self.plan.max_time is not None and t - self._t0 >= self.plan.max_time:
+        if (not self.done and self.plan.max_time is not None
+                and t - self._t0 >= self.plan.max_time):
             self._finish(t, "max_time", {})
 
     def _matches_new_levels(self, out: float) -> bool:

@@ -16,6 +16,7 @@ Automatica 34, 1998), for PI and for PID with derivative filter.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -27,9 +28,22 @@ from autotune.pid import PidGains, filter_time
 # ---------------------------------------------------------------- frequency responses
 
 
+_REF_CACHE: dict[tuple[DelayedTF, float | None], float] = {}
+
+
 def reference_frequency(plant: DelayedTF, ts: float | None = None) -> float:
     """A frequency (rad/s) that sets the scale of the loop: the plant's phase crossover at
-    -180 degrees (hold included when sampled), else 1/delay, else 1/(sum of time constants)."""
+    -180 degrees (hold included when sampled), else 1/delay, else 1/(sum of time constants).
+    Memoised (pure function of its arguments)."""
+    key = (plant, ts)
+    if key not in _REF_CACHE:
+        if len(_REF_CACHE) > 256:
+            _REF_CACHE.clear()
+        _REF_CACHE[key] = _reference_frequency(plant, ts)
+    return _REF_CACHE[key]
+
+
+def _reference_frequency(plant: DelayedTF, ts: float | None) -> float:
     w180 = plant.phase_crossover(-np.pi)
     if w180 is None and ts is not None:
         w180 = _sampled_phase_crossover(plant, ts)
@@ -235,19 +249,82 @@ class RobustDesign:
     stable: bool
 
 
-def _ki_max(a: np.ndarray, b: np.ndarray, r: float) -> np.ndarray:
-    """Largest ki >= 0 with |a + ki b| >= r at every frequency, reached from ki = 0 without
-    crossing the disc (per row of a 2-D array); -inf where ki = 0 already violates it."""
+def _winding_test(plant: DelayedTF) -> bool:
+    """Whether the grid Nyquist count applies: no open-loop poles in the right half plane and
+    at most one integrator in the plant (else the Padé closed-loop poles decide)."""
+    den = np.array(plant.den[: len(plant.den) - plant.integrators])
+    rhp = np.any(np.roots(den).real > 0) if den.size > 1 else False
+    return plant.integrators <= 1 and not rhp
+
+
+def nyquist_stable(one_plus_l: np.ndarray, q: int, theta0: float) -> bool:
+    """Nyquist criterion on a grid (argument principle), for a loop without right-half-plane
+    open-loop poles and with q poles at s = 0.
+
+    one_plus_l: 1 + L(j w) on an increasing grid from below the loop's low-frequency
+    asymptote's region to where |L| < 0.5; theta0: arg of 1 + L at w -> 0+ (arg K - q pi/2
+    for L ~ K/s^q). The net phase change D over w in (0, inf) of 1 + L satisfies
+    D = q pi/2 - pi Z, Z the number of closed-loop poles in the right half plane; stable iff
+    Z = 0. Steps between grid points must be below pi (fine grid).
+    """
+    v = one_plus_l
+    delta = (float(np.angle(v[0] * np.exp(-1j * theta0)))
+             + float(np.sum(np.angle(v[1:] / v[:-1]))) - float(np.angle(v[-1])))
+    z = (q * np.pi / 2.0 - delta) / np.pi
+    return bool(abs(z) < 0.25)
+
+
+def _ki_sup(a: np.ndarray, b: np.ndarray, r: float, stable: Callable[[float], bool]) -> float:
+    """Largest ki >= 0 with |a + ki b| >= r at every grid frequency, in a stable component.
+
+    At each frequency the condition excludes the interval of ki between the roots of a
+    quadratic; the admissible set is [0, inf) minus the union of these intervals, a union of
+    components. Within a component the Nyquist curve never meets the disc around -1, so the
+    number of encirclements (stability) is constant: one check per component decides it. The
+    supremum of the highest stable bounded component is returned (-inf if there is none).
+    """
     bb = np.abs(b) ** 2
     ab = (a * np.conj(b)).real
     c0 = np.abs(a) ** 2 - r * r
     disc = ab * ab - bb * c0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sq = np.sqrt(np.where(disc > 0, disc, 0.0))
-        k1 = np.where(disc > 0, (-ab - sq) / bb, np.inf)
-    k1 = np.where(k1 > 0, k1, np.inf)
-    out = np.min(k1, axis=-1)
-    return np.where(np.any(c0 < 0, axis=-1), -np.inf, out)
+    sel = disc > 0
+    sq = np.sqrt(disc[sel])
+    k1 = (-ab[sel] - sq) / bb[sel]
+    k2 = (-ab[sel] + sq) / bb[sel]
+    keep = k2 > 0
+    if not np.any(keep):
+        return -math.inf
+    starts = np.maximum(k1[keep], 0.0)
+    order = np.argsort(starts)
+    st = starts[order]
+    en = np.maximum.accumulate(k2[keep][order])
+    comps: list[tuple[float, float]] = []
+    if st[0] > 0:
+        comps.append((0.0, float(st[0])))
+    gaps = np.nonzero(st[1:] > en[:-1])[0]
+    comps += [(float(en[i]), float(st[i + 1])) for i in gaps]
+    for lo, hi in reversed(comps):
+        if stable(0.5 * (lo + hi)):
+            return hi
+    return -math.inf
+
+
+def _stability_test(plant: DelayedTF, w: np.ndarray, g: np.ndarray, b: np.ndarray,
+                    ts: float | None, n: float) -> Callable[[np.ndarray, float, float, float], bool]:
+    """stable(1 + L on the grid, kp, ki, kd): the grid Nyquist count where it applies (ki > 0,
+    |L| < 0.5 at the top of the grid, see `nyquist_stable`), else the Padé closed-loop poles."""
+    winding = _winding_test(plant)
+    q0 = plant.integrators
+    g0 = plant.velocity_gain if q0 == 1 else (plant.static_gain if q0 == 0 else 0.0)
+
+    def stable(opl: np.ndarray, kp: float, ki: float, kd: float) -> bool:
+        if winding and ki > 0 and abs(opl[-1] - 1.0) < 0.5 and g0 != 0.0:
+            q = q0 + 1
+            theta0 = float(np.angle(ki * g0)) - q * np.pi / 2.0
+            return nyquist_stable(opl, q, theta0)
+        return is_stable(plant, PidGains(kp, ki, kd), n, ts)
+
+    return stable
 
 
 def _kp_upper(plant: DelayedTF, w: np.ndarray, g: np.ndarray, r: float) -> float:
@@ -289,9 +366,13 @@ def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None)
     b = g * ib
     kp_hi = _kp_upper(plant, w, g, r)
 
+    stable = _stability_test(plant, w, g, b, ts, 10.0)
+
     def f(kp: np.ndarray) -> np.ndarray:
-        kp = np.atleast_1d(kp)[:, None]
-        return _ki_max(1.0 + kp * g, np.broadcast_to(b, (kp.shape[0], b.size)), r)
+        kp = np.atleast_1d(kp)
+        return np.array([_ki_sup(1.0 + k * g, b, r,
+                                 lambda ki, k=k: stable(1.0 + k * g + ki * b, k, ki, 0.0))
+                         for k in kp])
 
     kps = np.linspace(0.0, kp_hi, 81)[1:]
     kis = f(kps)
@@ -313,7 +394,7 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
     rests on the filter).
     """
     r = 1.0 / ms_target
-    w = frequency_grid(plant, ts, points=4000, span=(1e-3, 200.0))
+    w = frequency_grid(plant, ts, points=2500, span=(1e-3, 200.0))
     g = plant.freq_response(w) * hold_response(w, ts)
     ib, _ = controller_bases(w, ts, 0.0)
     b = g * ib
@@ -321,7 +402,9 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
     ku_like = _kp_upper(plant, w, g, 0.0)  # ~ Ku
     wr = reference_frequency(plant, ts)
 
-    wc, gc, bc = w[::5], g[::5], b[::5]
+    wc, gc, bc = w[::4], g[::4], b[::4]
+    stable_f = _stability_test(plant, w, g, b, ts, n)
+    stable_c = _stability_test(plant, wc, gc, bc, ts, n)
 
     def f(kp: np.ndarray, kd: np.ndarray, coarse: bool = False) -> np.ndarray:
         ww, gg, bb = (wc, gc, bc) if coarse else (w, g, b)
@@ -330,18 +413,24 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
         tf = np.where(kp > 0, kd / np.maximum(kp, 1e-300) / n, 0.0)
         _, db = controller_bases(ww[None, :], ts, tf)
         lpd = (kp + kd * db) * gg
-        ki = _ki_max(1.0 + lpd, np.broadcast_to(bb, (kp.shape[0], bb.size)), r)
         # the disc condition only certifies designs whose loop has rolled off inside the grid
         # (else crossings beyond it go unseen): |L| < 0.5 at the top frequency, kp <= 4 Ku
-        ki = np.where((np.abs(lpd[:, -1]) < 0.5) & (kp[:, 0] <= 4.0 * ku_like), ki, -np.inf)
+        rolled = (np.abs(lpd[:, -1]) < 0.5) & (kp[:, 0] > 0) & (kp[:, 0] <= 4.0 * ku_like)
+        ki = np.full(kp.shape[0], -np.inf)
+        stable = stable_c if coarse else stable_f
+        for i in np.nonzero(rolled & (kd[:, 0] >= 0))[0]:
+            p_, d_ = float(kp[i, 0]), float(kd[i, 0])
+            a_ = 1.0 + lpd[i]
+            ki[i] = _ki_sup(a_, bb, r, lambda k, p_=p_, d_=d_, a_=a_: stable(
+                a_ + k * bb, p_, k, d_))
         # Td/Ti = kd ki / kp^2 <= td_ti_max
         cap = np.where(kd[:, 0] > 0, td_ti_max * kp[:, 0] ** 2 / np.maximum(kd[:, 0], 1e-300),
                        np.inf)
         ok = (kp[:, 0] > 0) & (kd[:, 0] >= 0)
         return np.where(ok, np.minimum(ki, cap), -np.inf)
 
-    kp_grid = np.linspace(0.05, 1.6, 24) * ku_like
-    kd_grid = np.linspace(0.0, 1.2, 24) * ku_like / wr
+    kp_grid = np.linspace(0.05, 1.6, 20) * ku_like
+    kd_grid = np.linspace(0.0, 1.2, 20) * ku_like / wr
     kpm, kdm = np.meshgrid(kp_grid, kd_grid, indexing="ij")
     vals = f(kpm.ravel(), kdm.ravel(), coarse=True)
     j = int(np.argmax(vals))

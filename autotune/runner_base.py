@@ -212,7 +212,11 @@ class PoweredRun:
         self._keys: Any = None
         self._old_signals: dict[int, Any] = {}
         self._last_publish = 0.0
+        self._last_keepalive = 0.0
         self._sample_extra: dict[str, Any] = {}
+        self.stale_faults: list[str] = []  # faults latched before this run, cleared at arm()
+        self.sample_hook: Callable[[Any], dict[str, Any]] | None = None
+        """Called with each sample record before it is written: extra keys for that sample."""
 
     # ------------------------------------------------------------------ output to the operator
     def _default_say(self, line: str) -> None:
@@ -230,8 +234,8 @@ class PoweredRun:
     # ------------------------------------------------------------------ connection
     def __enter__(self) -> PoweredRun:
         try:
+            self.confirm()  # cautions first; nothing is opened before the operator agrees
             self.connect()
-            self.confirm()
         except BaseException:
             self._teardown()
             raise
@@ -295,7 +299,7 @@ class PoweredRun:
         """Stream on, measure the PV start value at zero output, load the limits and verify
         them by read-back, open the session file, start the key watcher and the guard."""
         from protocol.errors import LinkError, NakError
-        from protocol.messages import GetLimits, Limits, SetLimits, Stream
+        from protocol.messages import ClearFault, GetLimits, Limits, SetLimits, Stream
 
         s = self.cfg.safety
         link = self.link
@@ -313,6 +317,22 @@ class PoweredRun:
             if any(abs(r.output) > 0.0 for r in first):
                 raise UserError("the device reports a non-zero output before the run started; "
                                 "stop it and check the board", exit_code=EXIT_FAILED)
+            # a fault latched before this run (e.g. the watchdog after an earlier host died):
+            # the output is zero; clear it so that this run starts clean, and say so
+            stale = [f.name for f in link.poll_faults()]
+            if stale or any(r.fault_latched for r in first):
+                link.request(ClearFault())
+                self.stale_faults = stale or ["latched"]
+                names = ", ".join(stale) or "unknown"
+                self.say(f"the device had a fault latched from before ({names}); cleared it")
+                first = [r for r in first if not r.fault_latched]
+                while len(first) < 5:
+                    rec = link.next_sample(timeout=max(0.5, self.wall(1.0)))
+                    if rec is None:
+                        raise UserError(f"{self.options.port}: the device sends no samples",
+                                        exit_code=EXIT_LINK)
+                    if rec.axis == self.axis and not rec.fault_latched:
+                        first.append(rec)
             self.pv_start = sum(r.pv for r in first) / len(first)
             self.t_start = first[-1].t
             lim = SetLimits(self.axis, s.output_limit, self.pv_start - s.pv_window,
@@ -377,6 +397,7 @@ class PoweredRun:
             },
             "limits": self.limits_readback,
             "pv_start": self.pv_start,
+            "stale_faults_cleared": self.stale_faults,
             "axis": self.axis,
             "sign": self.cfg.connection.sign,
             "speed": self.speed,
@@ -455,25 +476,36 @@ class PoweredRun:
         """Extra keys recorded with every following sample (e.g. relay state)."""
         self._sample_extra.update(values)
 
+    def clear_sample_extra(self) -> None:
+        """Stop recording the extra keys set by sample_extra / sample_hook."""
+        self._sample_extra.clear()
+        self.sample_hook = None
+
     def _record(self, rec: Any, phase: str) -> None:
         sp = rec.setpoint if rec.mode == 2 or rec.mode == 3 else self.sp_value
         if self.writer is not None:
+            extra = dict(self._sample_extra)
+            if self.sample_hook is not None:
+                extra.update(self.sample_hook(rec))
             self.writer.sample(rec.t, rec.pv, rec.output, sp, phase=phase, flags=rec.flags,
-                               **self._sample_extra)
+                               **extra)
         self.recent.add(rec.t, rec.pv, sp, rec.output)
 
-    def next_sample(self, timeout: float | None = None) -> Any:
+    def next_sample(self, timeout: float | None = None, publish: bool = True) -> Any:
         """The next sample of this axis, recorded and checked.
+
+        publish=False leaves the (throttled) snapshot to the caller, who may first want to
+        answer the sample (host loop: the output must reach the device before its next tick).
 
         Raises RunEnded on a stop request, a device fault, a host limit violation, a lost
         link, a device reset, or when no sample arrives for `timeout` wall seconds (default:
-        four sample gaps, speed-scaled, at least 0.25 s).
+        four sample gaps, speed-scaled, at least 0.5 s).
         """
         from protocol.errors import DeviceReset, LinkLost
 
         self.check_stop()
         wait = timeout if timeout is not None else max(
-            0.25, self.wall(4 * self.cfg.safety.max_sample_gap))
+            0.5, self.wall(4 * self.cfg.safety.max_sample_gap))
         while True:
             try:
                 rec = self.link.next_sample(timeout=wait)
@@ -490,6 +522,7 @@ class PoweredRun:
                 continue
             break
         self.last_sample = rec
+        self._keepalive()
         self._record(rec, self.phase.value)
         # the host's own check first: when the device latched on the same sample, the host
         # limit names the cause (the device's Fault confirms it)
@@ -514,8 +547,22 @@ class PoweredRun:
                            f"{NakError(msg.acked_type, msg.code, msg.detail)}", EXIT_FAILED,
                            rec.t)
         self.check_stop()
-        self.publish()
+        if publish:
+            self.publish()
         return rec
+
+    def _keepalive(self) -> None:
+        """Feed the device watchdog from the sample loop as well as from the heartbeat thread
+        (a busy host may starve that thread): a fire-and-forget Ping at most every heartbeat
+        interval."""
+        from protocol.messages import Ping
+
+        now = time.monotonic()
+        if now - self._last_keepalive < self.link.heartbeat_interval:
+            return
+        self._last_keepalive = now
+        with contextlib.suppress(Exception):
+            self.link.send(Ping(0xFFFFFFFF, int(now * 1e6) & 0xFFFFFFFF))
 
     # ------------------------------------------------------------------ commands
     def set_output(self, u: float) -> None:
@@ -529,6 +576,7 @@ class PoweredRun:
         except LinkError as exc:
             raise RunEnded("fault:link_lost", f"the link is lost: {exc}", EXIT_LINK) from None
         self.last_output = float(u)
+        self._last_keepalive = time.monotonic()  # any frame feeds the watchdog
         self.powered = self.powered or u != 0.0
 
     def request(self, msg: Any) -> Any:
@@ -619,11 +667,29 @@ class PoweredRun:
                 link.send(Stop())
             stopped = link.stop(timeout=1.0)
             t_zero = self._await_zero_sample(stopped_first=stopped)
+            if stopped and t_zero is None:
+                # no samples: the board may have restarted (streaming off) or stopped
+                # streaming; ask for samples again to see the output
+                self._restream()
+                t_zero = self._await_zero_sample(stopped_first=True)
             if stopped and t_zero is not None:
                 return StopOutcome(True, attempts, "", t_zero)
         if link.lost:
             return StopOutcome(False, attempts, f"the link is lost ({link.lost_reason})")
         return StopOutcome(False, attempts, "the device did not report zero output")
+
+    def _restream(self) -> None:
+        """Stream on again (after a handshake when the board restarted); never raises."""
+        from protocol.messages import Stream
+
+        link = self.link
+        with contextlib.suppress(Exception):
+            if link.device_reset:
+                link.handshake()
+                if self.writer is not None:
+                    self.writer.event(None, "device_restarted", "handshake again to confirm "
+                                      "zero output")
+            link.request(Stream(self.axis, 1, 1), timeout=0.25, retries=1)
 
     def _await_zero_sample(self, stopped_first: bool) -> float | None:
         deadline = time.monotonic() + (0.5 if stopped_first else 0.1)
@@ -683,6 +749,7 @@ class PoweredRun:
         out.stop = stop
         if not stop.confirmed:
             lost = self.link is not None and self.link.lost
+            out.message = f"{out.message}; zero output NOT confirmed"
             self.alarm = CUT_POWER if not lost else (
                 "THE LINK IS LOST: ZERO OUTPUT IS NOT CONFIRMED. THE DEVICE WATCHDOG SHOULD "
                 f"STOP THE MOTOR WITHIN {self.cfg.safety.watchdog:g} S; IF IT STILL MOVES, "

@@ -38,6 +38,8 @@ from autotune.recorder import export_csv, read_session, write_result
 from autotune.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.runner_base import PoweredRun, RunEnded, RunOptions
 
+ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
+"""End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
 DIRECTION_MIN_FRACTION = 0.1  # the pulse must move the PV by a tenth of the target amplitude
 #                               at least (common practice, no source)
 
@@ -156,8 +158,10 @@ class TuneRun:
 
     def __init__(self, cfg: Config, options: RunOptions, *,
                  on_update: Callable[[RunSnapshot], None] | None = None,
-                 say: Callable[[str], None] | None = None, csv: bool = False) -> None:
+                 say: Callable[[str], None] | None = None, csv: bool = False,
+                 analyse: bool = True) -> None:
         self.cfg = cfg
+        self.analyse = analyse
         self.options = options
         self.on_update = on_update
         self.say_fn = say
@@ -175,6 +179,7 @@ class TuneRun:
         self.precheck_results: dict[str, Any] = {}
         self.run: PoweredRun | None = None
         self._rest_t = np.zeros(0)
+        self._t_pulse = 0.0
         self._rest_y = np.zeros(0)
 
     # ------------------------------------------------------------------ entry point
@@ -182,19 +187,25 @@ class TuneRun:
         cfg = self.cfg
         run = PoweredRun(cfg, self.options, on_update=self.on_update, say=self.say_fn)
         self.run = run
-        with run:
-            run.loop_mode = choose_loop(cfg.connection.loop, run.info.has_device_relay,
-                                        run.info.has_host_loop, self.sign)
-            run.arm({"loop_mode": run.loop_mode})
-            run.event("loop_mode", run.loop_mode)
-            self._prechecks(run)
-            self._relay(run)
+        try:
+            with run:
+                run.loop_mode = choose_loop(cfg.connection.loop, run.info.has_device_relay,
+                                            run.info.has_host_loop, self.sign)
+                run.arm({"loop_mode": run.loop_mode})
+                run.event("loop_mode", run.loop_mode)
+                self._prechecks(run)
+                self._relay(run)
+        except BaseException as exc:
+            # not a planned ending (a UserError or a bug): the stop path has run; record it
+            run.end_session()
+            stop = run.outcome.stop
+            if isinstance(exc, UserError) and stop is not None and not stop.confirmed:
+                raise UserError(f"{exc}; {run.alarm}", exit_code=run.outcome.exit_code) \
+                    from exc
+            raise
         # the stop path has run; the motor is stopped (or the operator was told to cut power)
         result = None
         out = run.outcome
-        if out.error is not None and not isinstance(out.error, UserError):
-            run.end_session()
-            raise out.error
         if self.experiment is not None and self.experiment.cycles:
             result = self._analyse(run)
         session_path = result_path = None
@@ -205,9 +216,6 @@ class TuneRun:
                 export_csv(read_session(session_path), session_path.with_suffix(".csv"))
             if result is not None:
                 result_path = write_result(Path(self.options.out_dir) / "result.json", result)
-        if out.error is not None and isinstance(out.error, UserError) and out.stop is not None \
-                and out.stop.confirmed:
-            raise out.error
         return TuneOutcome(out.exit_code, out.reason, out.message, result, session_path,
                            result_path, None if out.stop is None else out.stop.confirmed)
 
@@ -218,14 +226,33 @@ class TuneRun:
 
     def _hold(self, run: PoweredRun, output: float, duration: float,
               until: Callable[[Any], bool] | None = None) -> list[Any]:
-        """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples."""
+        """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples.
+
+        The clock starts at the first sample showing the output applied: samples queued before
+        the command (a slow request before it) do not count, and a command lost on a noisy
+        line is sent again with each sample until the device shows it (at most `duration`).
+        """
+        import time as _time
+
+        from autotune.runner_base import float32
+
+        sent_at = _time.monotonic()
         run.set_output(output)
+        want = float32(output)
         got: list[Any] = []
         t0: float | None = None
+        t_wait: float | None = None
         while True:
             rec = run.next_sample()
             got.append(rec)
             if t0 is None:
+                if rec.received_at < sent_at:
+                    continue  # queued before the command
+                if t_wait is None:
+                    t_wait = rec.t
+                if rec.output != want and rec.t - t_wait < duration:
+                    run.set_output(output)
+                    continue
                 t0 = rec.t
             if until is not None and until(rec):
                 break
@@ -271,19 +298,28 @@ class TuneRun:
         base = self._y(rest.mean)
         threshold = max(5.0 * rest.noise_std,
                         DIRECTION_MIN_FRACTION * cfg.relay.target_amplitude)
+        # the drift seen at rest (a load on an integrating loop) is taken out, so that the
+        # pulse's own effect decides the direction
+        drift = self.sign * rest.drift
+        t_mid = float(np.mean(self._rest_t))
+
+        def detrend(t: Any, y: Any) -> Any:
+            return y - drift * (t - t_mid)
+
         window: list[float] = []
 
         def moved(rec: Any) -> bool:
-            window.append(self._y(rec.pv))
+            window.append(detrend(rec.t, self._y(rec.pv)))
             recent = sorted(window[-3:])
             return abs(recent[len(recent) // 2] - base) > threshold
 
         t_pulse = run.last_sample.t
+        self._t_pulse = t_pulse
         recs = self._hold(run, bias + size, cfg.prechecks.pulse_timeout, until=moved)
         run.set_output(bias)
         # baseline: the rest samples; then the pulse (the first one answers at the next tick)
         t = np.concatenate([self._rest_t, [r.t for r in recs]])
-        y = np.concatenate([self._rest_y, [self._y(r.pv) for r in recs]])
+        y = detrend(t, np.concatenate([self._rest_y, [self._y(r.pv) for r in recs]]))
         d = pre.assess_direction(t, y, t_pulse, +1, rest.noise_std, expected_sign=+1,
                                  min_change=threshold)
         self.direction = d
@@ -307,20 +343,31 @@ class TuneRun:
                       f"/s up to {max_step:g}")
         # let the PV settle back after the pulse
         self._hold(run, bias, cfg.prechecks.rest_time)
-        base = self._y(run.last_sample.pv)
         t0 = run.last_sample.t
         duration = pre.breakaway_ramp_duration(cfg.prechecks.breakaway_rate, max_step)
         data = Arrays()
+        # quantisation steps are not motion; the ramp runs on while the response travels
+        # through the plant's lag and dead time (as long as the direction pulse took to show)
+        min_change = max(threshold, 2.0 * self.rest.resolution)
+        lag = 0.0
+        if self.direction is not None and self.direction.t_response is not None:
+            lag = max(0.0, self.direction.t_response - self._t_pulse)
+        noise = self.rest.noise_std
         while True:
             rec = run.next_sample()
             data.add(rec.t, self._y(rec.pv), rec.output)
-            if abs(self._y(rec.pv) - base) > threshold or rec.t - t0 > duration:
+            if rec.t - t0 > duration:
                 break
+            if len(data.t) >= 3:
+                t, y, u = data.np()
+                if pre.assess_breakaway(t, y, u, noise, min_change=min_change).deadband \
+                        is not None:
+                    break
             run.set_output(pre.breakaway_ramp(rec.t - t0, cfg.prechecks.breakaway_rate,
                                               max_step, bias=bias))
         run.set_output(bias)
         t, y, u = data.np()
-        rep = pre.assess_breakaway(t, y, u, self.rest.noise_std, min_change=threshold)
+        rep = pre.assess_breakaway(t, y, u, noise, min_change=min_change, response_lag=lag)
         self.breakaway = rep
         self.precheck_results["breakaway"] = rep.as_dict()
         run.event("precheck", rep.as_dict(), check="breakaway", ok=rep.deadband is not None)
@@ -371,12 +418,14 @@ class TuneRun:
                                    s.hysteresis))
 
         if device:
+            from protocol.messages import FLAG_RELAY_HIGH
+
+            # the board reports its relay state with every sample
+            run.sample_hook = lambda rec: ({"state": 1 if rec.flags & FLAG_RELAY_HIGH else -1}
+                                           if rec.mode == 2 else {})
             start_relay(exp.settings)
-        else:
-            # the first output is decided on the first sample
-            pass
         while True:
-            rec = run.next_sample()
+            rec = run.next_sample(publish=False)
             y = self._y(rec.pv)
             if device:
                 if rec.mode != 2:  # not yet in relay mode (the request is in flight)
@@ -385,18 +434,36 @@ class TuneRun:
             else:
                 step = exp.update(rec.t, y)
             self.relay_data.add(rec.t, y, rec.output)
-            run.sample_extra(state=step.state)
+            if not device:
+                # recorded with the next sample: the state whose output that sample shows
+                run.sample_extra(state=step.state)
             if step.done:
                 self._events(run, step.events)
                 reason = step.end_reason or "completed"
+                message = self._end_message(reason)
+                if reason == "no_oscillation" and self._pv_frozen(rec.t):
+                    reason = "fault:no_response"
+                    message = ("no response: the PV did not move while the relay drove the "
+                               "output; check the sensor, its wiring and the motor power")
                 code = EXIT_OK if reason == "converged" else EXIT_FAILED
-                raise RunEnded(reason, self._end_message(reason), code, rec.t)
+                raise RunEnded(reason, message, code, rec.t)
             if device:
                 if step.new_settings is not None:
                     start_relay(step.new_settings)
             else:
                 run.set_output(step.output)
             self._events(run, step.events)
+            run.publish()
+
+    def _pv_frozen(self, t_end: float) -> bool:
+        """True when the PV stayed within its noise band over the last relay.stall_time s."""
+        t, y, _ = self.relay_data.np()
+        sel = t >= t_end - self.cfg.relay.stall_time
+        if sel.sum() < 3:
+            return False
+        rest = self.rest
+        band = max(3.0 * rest.noise_std, rest.resolution) if rest else 0.0
+        return float(np.ptp(y[sel])) <= band
 
     def _converged(self, cycles: Any) -> bool:
         assert self.run is not None
@@ -458,6 +525,17 @@ class TuneRun:
         t, y, u = self.relay_data.np()
         noise = self.rest.noise_std if self.rest else 0.0
         result["cycles_used"] = 0
+        if not self.analyse:
+            result["notes"].append("analysis skipped: only the relay figures are reported")
+            self._classic_only(result, exp)
+            return result
+        if run.outcome.reason not in ANALYSED_ENDINGS:
+            result["notes"].append(
+                f"the relay did not run to its end ({run.outcome.reason}): only the plain "
+                "relay figures are reported; `autotune analyze` on the session file analyses "
+                "the cycles recorded")
+            self._classic_only(result, exp)
+            return result
         run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles")
         try:
             from autotune import analysis
@@ -539,6 +617,8 @@ class TuneRun:
 
 def run_tune(cfg: Config, options: RunOptions, *,
              on_update: Callable[[RunSnapshot], None] | None = None,
-             say: Callable[[str], None] | None = None, csv: bool = False) -> TuneOutcome:
-    """Run `tune` end to end; see TuneRun."""
-    return TuneRun(cfg, options, on_update=on_update, say=say, csv=csv).execute()
+             say: Callable[[str], None] | None = None, csv: bool = False,
+             analyse: bool = True) -> TuneOutcome:
+    """Run `tune` end to end; see TuneRun (analyse=False skips the model fit and design)."""
+    return TuneRun(cfg, options, on_update=on_update, say=say, csv=csv,
+                   analyse=analyse).execute()

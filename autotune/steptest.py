@@ -51,7 +51,8 @@ class StepPlan:
     """What the confirmation step does.
 
     size: setpoint step, PV units (signed). hold_time: s at the start value before the step.
-    timeout: s after each setpoint/offset change to wait for settling before moving on.
+    timeout: s after each setpoint/offset change to wait for settling before moving on (at the
+    timeout, a PV inside the band for at least `min_hold` counts as settled).
     settle_band: half-width of the settling band as a fraction of |size|.
     settle_hold: s the PV must stay inside the band to count as settled (0 -> automatic: as long
     as the transient took to enter the band for good, at least `min_hold`).
@@ -198,6 +199,8 @@ class StepExperiment:
         self.noise_std = 0.0  # PV units, from the HOLD phase
         self.resolution = 0.0  # PV units, quantisation step seen in the HOLD phase (0: none)
         self.detect_band = plan.band  # PV units, band used to decide "settled"
+        self.failure: str | None = None  # why the sequence ended early, if it did
+        self._cmd_t: float | None = None  # first sample after a command not yet in effect
 
     # ------------------------------------------------------------------ helpers
     def _effective(self, sp: float, offset: float) -> bool:
@@ -212,6 +215,7 @@ class StepExperiment:
         self._off_cmd = offset
         self._phase_start = None
         self._in_band_since = None
+        self._cmd_t = None
 
     def _close(self, t: float, settled: bool) -> None:
         assert self._phase_start is not None
@@ -259,6 +263,16 @@ class StepExperiment:
             self._phase_start = t
             events.append(StepEvent(t, self.phase.value,
                                     {"setpoint": self._sp_cmd, "offset": self._off_cmd}))
+        if self._phase_start is None:
+            if self._cmd_t is None:
+                self._cmd_t = t
+            elif t - self._cmd_t >= self.plan.timeout:
+                # The device never showed the new setpoint/offset: end the sequence here.
+                self.failure = (f"the {self.phase.value} setpoint/offset was not applied within "
+                                f"{self.plan.timeout:g} s")
+                events.append(StepEvent(t, "not_applied", {"phase": self.phase.value}))
+                self.phase = StepPhase.DONE
+                return StepCommand(self._sp_cmd, self._off_cmd, self.phase, tuple(events), True)
 
         if self.phase is StepPhase.HOLD:
             assert self._phase_start is not None
@@ -283,6 +297,11 @@ class StepExperiment:
                 and elapsed >= min_record
             )
             timed_out = elapsed >= self.plan.timeout
+            if timed_out and not settled:
+                # At the timeout a PV inside the band for at least min_hold counts as settled.
+                settled = (self._in_band_since is not None
+                           and t - self._in_band_since >= self.plan.min_hold
+                           and elapsed >= min_record)
             if settled or timed_out:
                 kind = "settled" if settled else "timeout"
                 if self.phase is StepPhase.LOAD and settled:
@@ -295,6 +314,10 @@ class StepExperiment:
                     events.append(StepEvent(t, "done", {}))
                     return StepCommand(sp, off, nxt, tuple(events), True)
         return StepCommand(self._sp_cmd, self._off_cmd, self.phase, tuple(events), False)
+
+    def elapsed(self, t: float) -> float:
+        """Seconds since the current phase took effect (0 before it did)."""
+        return 0.0 if self._phase_start is None else max(0.0, t - self._phase_start)
 
     def segment(self, phase: StepPhase) -> Segment | None:
         """The recorded segment of `phase`, if it happened."""
@@ -456,6 +479,37 @@ class StepSettings:
                            self.tracking_time, -self.output_limit, self.output_limit, self.bias)
 
 
+def settings_from_config(
+    cfg: Any,
+    loop: str,
+    *,
+    size: float | None = None,
+    load_offset: float = 0.0,
+    spec: Any = None,
+    deriv_filter_n: float = 10.0,
+    setpoint_weight: float = 1.0,
+    tracking_time: float | None = None,
+) -> tuple[StepSettings, str | None]:
+    """StepSettings from an autotune.config.Config (what `autotune step` and `tune` use).
+
+    size: PV units (None: step.size, else design.step_size, else relay.target_amplitude), kept to
+    at most DEFAULT_WINDOW_FRACTION of safety.pv_window; hold step.settle_time and timeout
+    step.duration (s); output limit safety.output_limit and bias relay.bias (output units).
+    Returns the settings and a message when the step had to be reduced.
+    """
+    for v in (size, cfg.step.size, cfg.design.step_size, cfg.relay.target_amplitude):
+        if v is not None:
+            size = float(v)
+            break
+    assert size is not None
+    fitted, note = fit_step_to_window(size, cfg.safety.pv_window)
+    plan = StepPlan(size=fitted, hold_time=cfg.step.settle_time, timeout=cfg.step.duration,
+                    load_offset=load_offset)
+    return StepSettings(plan=plan, loop=loop, output_limit=cfg.safety.output_limit,
+                        deriv_filter_n=deriv_filter_n, setpoint_weight=setpoint_weight,
+                        tracking_time=tracking_time, bias=cfg.relay.bias, spec=spec), note
+
+
 @dataclass(frozen=True)
 class StepProgress:
     """What `run_step` reports to its on_update callback (device time s, PV and output units)."""
@@ -493,6 +547,7 @@ class StepOutcome:
     end_reason: str = "completed"
     message: str = ""
     noise_std: float = 0.0  # PV units, over the hold
+    late_outputs: int = 0  # host loop: samples whose applied output was not the one sent last
     band: float = 0.0  # settling band half-width used, PV units
     t: list[float] = field(default_factory=list)
     pv: list[float] = field(default_factory=list)
@@ -522,6 +577,7 @@ class StepOutcome:
             "settled": self.settled,
             "settle_band": self.band,
             "noise_std": self.noise_std,
+            "late_outputs": self.late_outputs if self.loop == "host" else None,
             "end_reason": self.end_reason,
             "segments": [s.to_dict() for s in self.segments],
             "comparison": [r.to_dict() for r in self.rows],
@@ -529,6 +585,31 @@ class StepOutcome:
             "load": None if self.load is None else self.load.to_dict(),
         })
         return out
+
+
+    def gains_record(self, session: str | None = None, device: dict[str, Any] | None = None,
+                     tool_version: str | None = None) -> Any:
+        """autotune.gainsfile.GainsRecord of these gains as run, with the measured figures."""
+        from autotune.gainsfile import GainsRecord
+
+        dev = device or {}
+        sf = self.step_field()
+        measured: dict[str, Any] = {k: sf.get(k) for k in (
+            "overshoot", "rise_time", "settling_time", "steady_state_error", "iae",
+            "peak_output", "time_saturated", "settle_band")}
+        if self.load is not None:
+            measured["load"] = self.load.to_dict()
+        lim = self.pid.out_max
+        return GainsRecord.from_settings(
+            self.pid, loop_mode=self.loop, axis=int(dev.get("axis", 0)),
+            output_limit=lim if math.isfinite(lim) else None,
+            origin={"session": session, "proposal": self.candidate.name,
+                    "device": dev.get("name"), "firmware": dev.get("firmware"),
+                    "tool_version": tool_version},
+            measured=measured,
+            predicted={k: v for k, v in self.candidate.predicted.items()
+                       if isinstance(v, int | float) and not isinstance(v, bool)},
+        )
 
 
 class StepEnded(Exception):  # noqa: N818 (wraps the runner's RunEnded with the partial outcome)
@@ -586,8 +667,9 @@ def run_step(
     `candidate`: a StepCandidate or anything with `.name`, `.gains` (PidGains) and `.predicted`
     (e.g. autotune.design.Proposal). The loop is closed at the PV start value (`run.pv_start`),
     held, stepped by `settings.plan.size`, optionally disturbed by an output offset, and brought
-    back; the loop stays closed at the start value when this returns (call again with other
-    gains, or leave the `with` block: the stop path zeroes the output).
+    back. When this returns, a device-loop PID keeps holding the start value; a host loop leaves
+    the output at `settings.bias` (nobody closes the loop any more). Call again with other gains
+    or leave the `with` block promptly: the stop path zeroes the output.
 
     Device loop: SetPid (starts the device PID at the start value), SetSetpoint at each change.
     Host loop: autotune.pid.DiscretePid computes the output for every sample, sent with
@@ -610,8 +692,7 @@ def run_step(
         raise ValueError(f"loop must be 'device' or 'host', got {loop!r}")
     ts = settings.ts if settings.ts is not None else float(run.info.tick)
     pid_settings = settings.pid_settings(candidate.gains, ts)
-    start = float(run.pv_start if run.last_sample is None or run.pv_start is not None
-                  else run.last_sample.pv)
+    start = float(run.pv_start if run.pv_start is not None else run.last_sample.pv)
     exp = StepExperiment(settings.plan, start)
     outcome = StepOutcome(candidate, pid_settings, loop, settings.plan, start)
     g = candidate.gains
@@ -625,6 +706,7 @@ def run_step(
     sp_cmd, off_cmd = start, 0.0
     off_applied = 0.0
     host_pid: DiscretePid | None = None
+    sent: float | None = None  # host loop: output + offset expected at the next sample
     run.sample_extra(step=StepPhase.HOLD.value, offset=0.0)
     run.sp_value = start
     last_report = -math.inf
@@ -648,12 +730,15 @@ def run_step(
             outcome.sp.append(sp_applied)
             u = None
             if host_pid is not None:
+                if sent is not None and abs(rec.output - sent) > 1e-5 * max(1.0, abs(sent)):
+                    outcome.late_outputs += 1  # the device applied an older output this tick
                 u = host_pid.update(sp_cmd, rec.pv)
             cmd = exp.update(rec.t, rec.pv, sp_applied, off_applied)
             for ev in cmd.events:
                 run.event(f"step:{ev.kind}", ev.detail, step_phase=cmd.phase.value)
             if host_pid is not None and u is not None:
                 run.set_output(u)
+                sent = u + off_applied
             if cmd.setpoint != sp_cmd:
                 sp_cmd = cmd.setpoint
                 if loop == "device":
@@ -663,19 +748,26 @@ def run_step(
                 off_cmd = cmd.offset
                 run.request(SetOffset(axis, off_cmd))
                 off_applied = off_cmd
+                if u is not None:
+                    sent = u + off_applied
             run.sample_extra(step=cmd.phase.value, offset=off_cmd)
             if on_update is not None and (cmd.events or rec.t - last_report >= 0.1):
                 last_report = rec.t
                 on_update(StepProgress(cmd.phase, rec.t, rec.pv, sp_applied, rec.output,
-                                       0.0, cmd.events))
+                                       exp.elapsed(rec.t), cmd.events))
             if cmd.done:
                 break
+        if host_pid is not None:
+            # Nobody computes the loop once this returns: hold the operating-point output.
+            run.set_output(settings.bias)
     except RunEnded as exc:
         outcome.end_reason = exc.reason
         outcome.message = exc.message
         finish_outcome(outcome, exp)
         _judge(outcome, settings.spec)
         raise StepEnded(exc, outcome) from None
+    if exp.failure is not None:
+        outcome.end_reason, outcome.message = "not_applied", exp.failure
     finish_outcome(outcome, exp)
     _judge(outcome, settings.spec)
     run.event("step_done", {"settled": outcome.settled,

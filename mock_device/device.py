@@ -260,6 +260,7 @@ class Device:
             if self.fault_spec.ignore_stop:
                 return []
             self._go_idle()
+            self.offset = 0.0  # Stop also clears the offset
             self._pending_stops.append(seq)
             return []
         if isinstance(msg, m.ClearFault):
@@ -480,7 +481,9 @@ class Device:
         self._pv_hist.append(pv)
         if len(self._pv_hist) > 3:
             del self._pv_hist[0]
-        pvf = float(np.median(self._pv_hist))
+        pvf = sorted(self._pv_hist)[len(self._pv_hist) // 2] if len(self._pv_hist) != 2 else (
+            0.5 * (self._pv_hist[0] + self._pv_hist[1])
+        )
         rate = 0.0 if self._pvf_prev is None else (pvf - self._pvf_prev) / self.period
         self._pvf_prev = pvf
 

@@ -9,8 +9,9 @@ Conventions
 - The input is held constant between calls (zero-order hold); the dead time shifts the held
   input exactly: every input change is queued and reaches the plant ``delay`` seconds later.
 - Integration is exact for piecewise-constant input (matrix exponential of the augmented
-  system), done in sub-steps no longer than ``max_step`` so that the state is also available
-  between device ticks; an integrating plant (den ending in 0) is handled the same way.
+  system), in equal sub-steps no longer than ``max_step`` between input changes (the composed
+  map of each segment length is cached); an integrating plant (den ending in 0) is handled the
+  same way, since the augmented exponential needs no inverse of A.
 """
 
 from __future__ import annotations
@@ -141,18 +142,30 @@ class LtiPlant:
         self._x = xa.copy()
 
     # ------------------------------------------------------------ simulation
-    def _discrete(self, h: float) -> tuple[np.ndarray, np.ndarray]:
-        key = round(h, 13)
+    def _discrete(self, span: float) -> tuple[np.ndarray, np.ndarray]:
+        """(Ad, Bd) over ``span`` s as the composition of equal sub-steps <= max_step, cached.
+
+        Each sub-step is the exact ZOH discretisation exp([[A, B], [0, 0]] h); composing them
+        gives the same map as stepping one by one (to rounding), at the cost of one product.
+        """
+        key = round(span, 13)
         hit = self._cache.get(key)
         if hit is not None:
             return hit
         n = self.order
+        steps = max(1, math.ceil(span / self.max_step - 1e-9))
+        h = span / steps
         m = np.zeros((n + 1, n + 1))
         m[:n, :n] = self._a * h
         m[:n, n] = self._b_vec * h
         e = expm(m)
-        ad = e[:n, :n].copy()
-        bd = e[:n, n].copy()
+        ad_h = e[:n, :n]
+        bd_h = e[:n, n]
+        ad = np.eye(n)
+        bd = np.zeros(n)
+        for _ in range(steps):
+            ad = ad_h @ ad
+            bd = ad_h @ bd + bd_h
         if len(self._cache) > 256:
             self._cache.clear()
         self._cache[key] = (ad, bd)
@@ -162,14 +175,8 @@ class LtiPlant:
         """Integrate the state over ``span`` seconds with constant input ``u``."""
         if self.order == 0 or span <= _EPS_T:
             return
-        steps = max(1, math.ceil(span / self.max_step - 1e-9))
-        h = span / steps
-        ad, bd = self._discrete(h)
-        x = self._x
-        bu = bd * u
-        for _ in range(steps):
-            x = ad @ x + bu
-        self._x = x
+        ad, bd = self._discrete(span)
+        self._x = ad @ self._x + bd * u
 
     def advance(self, u: float, dt: float) -> None:
         """Hold input ``u`` (output units) for ``dt`` seconds; the plant sees it ``delay`` later."""

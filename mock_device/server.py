@@ -195,7 +195,7 @@ class Server:
         speed: simulated seconds per wall second (> 0).
         baud: UART pacing in bit/s (None: no pacing).
         link_faults: byte-level faults (None: none).
-        clock: monotonic wall clock, s (for tests).
+        clock: monotonic wall clock, s; sleep: waits that many wall seconds (both for tests).
     """
 
     def __init__(
@@ -207,6 +207,7 @@ class Server:
         baud: int | None = None,
         link_faults: LinkFaults | None = None,
         clock: Callable[[], float] = time.monotonic,
+        sleep: Callable[[float], None] = time.sleep,
         log: TextIO = sys.stderr,
     ) -> None:
         if not speed > 0:
@@ -217,6 +218,7 @@ class Server:
         self.baud = baud
         self.faults = link_faults
         self.clock = clock
+        self.sleep = sleep
         self.log = log
         self.decoder = FrameDecoder()
         self.running = True
@@ -298,6 +300,7 @@ class Server:
                     print("mock_device: disconnect fault: closing the port", file=self.log)
                     return 0
                 now = self._sim_now()
+                self._flush(now)  # also while catching up, so replies are never held back
             self._flush(now)
             wake = self.ticks * period
             if self._queue:
@@ -314,7 +317,7 @@ class Server:
                 if ready:
                     self._receive(self._sim_now())
             else:
-                time.sleep(timeout)
+                self.sleep(timeout)
                 self._receive(self._sim_now())
         return 0
 

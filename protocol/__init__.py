@@ -23,6 +23,7 @@ from protocol.errors import (
     VersionMismatch,
 )
 from protocol.framing import MAX_FRAME, FrameDecoder, RawFrame, encode_frame
+from protocol.link import DeviceInfo, FaultRecord, Link, LinkStats, SampleRecord
 from protocol.messages import PROTOCOL_VERSION, REGISTRY, Message, decode, encode
 
 __version__ = "0.1.0"
@@ -34,10 +35,14 @@ __all__ = [
     "BadLength",
     "CobsError",
     "DecodeError",
+    "DeviceInfo",
     "DeviceReset",
+    "FaultRecord",
     "FrameDecoder",
+    "Link",
     "LinkError",
     "LinkLost",
+    "LinkStats",
     "LinkTimeout",
     "Message",
     "NakError",
@@ -47,6 +52,7 @@ __all__ = [
     "PortPermission",
     "ProtocolError",
     "RawFrame",
+    "SampleRecord",
     "UnknownType",
     "VersionMismatch",
     "cobs_decode",

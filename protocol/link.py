@@ -2,9 +2,14 @@
 
 A transport (reader thread, locked writes) plus the codec (FrameDecoder, messages): requests are
 matched to replies by sequence number, with a timeout and retries; samples and faults arrive on
-queues; an optional heartbeat thread pings the device (feeding its watchdog), records round-trip
-times and notices a device reset (boot id change). A lost port surfaces as LinkLost from every
-call within about one read timeout (0.05 s), never as a hang.
+queues (or a sample handler runs in the reader thread); an optional heartbeat thread pings the
+device on a fixed schedule (feeding its watchdog), records round-trip times and notices a device
+reset (boot id change). A lost port surfaces as LinkLost from every call within about one read
+timeout (0.05 s), never as a hang; a device that falls silent while the heartbeat runs surfaces
+as LinkLost after ``silence_timeout``.
+
+Times: ``received_at`` and round-trip times are host ``time.monotonic()`` seconds; sample and
+fault times ``t`` are device seconds, unwrapped from the device's u32 microsecond clock.
 """
 
 from __future__ import annotations
@@ -643,7 +648,8 @@ class Link:
         try:
             for attempt in range(retries + 1):
                 if attempt:
-                    self._counts["retries"] += 1
+                    with self._pending_lock:
+                        self._counts["retries"] += 1
                 sent_at = self._write(frame)
                 deadline = sent_at + timeout
                 while not waiter.event.is_set():
@@ -660,7 +666,8 @@ class Link:
         self._raise_if_dead(check_reset)
         reply = waiter.reply
         if reply is None:
-            self._counts["timeouts"] += 1
+            with self._pending_lock:
+                self._counts["timeouts"] += 1
             raise LinkTimeout(
                 f"no reply to {type_name(msg.TYPE)} from {self.url} "
                 f"({retries + 1} attempt{'s' if retries else ''} of {timeout:g} s)"
@@ -698,7 +705,11 @@ class Link:
                     self._set_lost(f"{self.url}: port lost ({exc})")
                 return
             if data:
-                self._on_bytes(data, time.monotonic())
+                try:
+                    self._on_bytes(data, time.monotonic())
+                except Exception as exc:  # noqa: BLE001 - a bug here must not leave callers hanging
+                    self._set_lost(f"{self.url}: internal error in the link's reader ({exc!r})")
+                    return
 
     def _on_bytes(self, data: bytes, now: float) -> None:
         """Decode received bytes and dispatch frames (reader thread; public for tests)."""
@@ -800,7 +811,7 @@ class Link:
                 stale = [q for q, t in self._hb_pings.items() if now - t > self.reply_timeout]
                 for q in stale:
                     del self._hb_pings[q]
-            self._counts["timeouts"] += len(stale)
+                self._counts["timeouts"] += len(stale)
             nonce = (nonce + 1) & (_WRAP - 1)
             seq = self._next_seq()
             frame = encode(Ping(nonce, int(now * 1e6) & (_WRAP - 1)), seq)

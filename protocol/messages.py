@@ -234,7 +234,7 @@ class SetLimits(Message):
     pv_low: float = 0.0  #: PV below this latches PV_WINDOW, PV units
     pv_high: float = 0.0  #: PV above this latches PV_WINDOW, PV units; pv_low < pv_high
     pv_rate_limit: float = 0.0  #: |dPV/dt| above this latches PV_RATE, PV units/s; 0 = off
-    watchdog_ms: int = 500  #: host silence that latches WATCHDOG, ms; 10..60000
+    watchdog_ms: int = 500  #: host silence that latches WATCHDOG, ms; 10..60000, 0 = default
 
 
 @register

@@ -99,3 +99,99 @@ def run_relay(num, den, delay: float, *, ts: float, amplitude: float = 1.0,
         out[k] = uk
         plant.advance(uk - bias + (load if k >= rest else 0.0), ts)
     return RelayRecord(t, pv, out, settings, ts, noise, resolution)
+
+
+# ---------------------------------------------------------------------------- test batch
+# The test batch of Åström and Hägglund, "Revisiting the Ziegler-Nichols step response method
+# for PID control", J. Process Control 14 (2004): a subset of each family, parameters from
+# memory (dead time normalised to 1 s where the family has one).
+def _poly(*roots: float) -> list[float]:
+    return [float(c) for c in np.real(np.poly(roots))]
+
+
+def _lags(*tcs: float) -> list[float]:
+    den = np.array([1.0])
+    for tc in tcs:
+        den = np.polymul(den, [tc, 1.0])
+    return [float(c) for c in den]
+
+
+BATCH: dict[str, tuple[list[float], list[float], float]] = {
+    # first order plus dead time e^{-s}/(1 + sT)
+    "fopdt T=0.1": ([1.0], _lags(0.1), 1.0),
+    "fopdt T=0.5": ([1.0], _lags(0.5), 1.0),
+    "fopdt T=1": ([1.0], _lags(1.0), 1.0),
+    "fopdt T=5": ([1.0], _lags(5.0), 1.0),
+    "fopdt T=20": ([1.0], _lags(20.0), 1.0),
+    # second order plus dead time e^{-s}/(1 + sT)^2
+    "sopdt T=0.1": ([1.0], _lags(0.1, 0.1), 1.0),
+    "sopdt T=1": ([1.0], _lags(1.0, 1.0), 1.0),
+    "sopdt T=10": ([1.0], _lags(10.0, 10.0), 1.0),
+    # 1/(s + 1)^n
+    "lag^3": ([1.0], _lags(1, 1, 1), 0.0),
+    "lag^4": ([1.0], _lags(1, 1, 1, 1), 0.0),
+    "lag^8": ([1.0], _lags(*([1.0] * 8)), 0.0),
+    # four-pole lags 1/((s+1)(as+1)(a^2 s+1)(a^3 s+1))
+    "4pole a=0.2": ([1.0], _lags(1, 0.2, 0.04, 0.008), 0.0),
+    "4pole a=0.5": ([1.0], _lags(1, 0.5, 0.25, 0.125), 0.0),
+    # integrator plus lag plus dead time e^{-s}/(s(1 + sT))
+    "int T=0.1": ([1.0], _lags(0.1) + [0.0], 1.0),
+    "int T=1": ([1.0], _lags(1.0) + [0.0], 1.0),
+    "int T=5": ([1.0], _lags(5.0) + [0.0], 1.0),
+    # non-minimum phase (1 - a s)/(s + 1)^3
+    "nmp a=0.2": ([-0.2, 1.0], _lags(1, 1, 1), 0.0),
+    "nmp a=0.5": ([-0.5, 1.0], _lags(1, 1, 1), 0.0),
+    "nmp a=1": ([-1.0, 1.0], _lags(1, 1, 1), 0.0),
+    "nmp a=2": ([-2.0, 1.0], _lags(1, 1, 1), 0.0),
+}
+
+
+def true_ultimate(num, den, delay: float) -> tuple[float, float]:
+    """Ku, Tu of num/den e^{-delay s} from python-control's exact frequency response.
+
+    The rational part is evaluated by python-control (control.tf(...)(jw)); the dead time is
+    applied exactly as e^{-j w delay}; the phase is unwrapped on a dense grid and the first
+    -180 degree crossing refined by bisection (scipy brentq).
+    """
+    import control
+    from scipy import optimize
+
+    sys_ = control.tf(num, den)
+
+    def g(w: float) -> complex:
+        return complex(sys_(1j * w)) * np.exp(-1j * w * delay)
+
+    grid = np.logspace(-3, 3, 20000)
+    resp = np.array([g(w) for w in grid])
+    ph = np.unwrap(np.angle(resp))
+    # principal branch at low frequency: integrators give -90 deg each
+    n_int = len(den) - 1 - max(i for i, c in enumerate(den) if c != 0.0)
+    ph -= 2 * np.pi * np.round((ph[0] + n_int * np.pi / 2) / (2 * np.pi))
+    i = int(np.nonzero(ph < -np.pi)[0][0])
+
+    def f(w: float) -> float:
+        return float(ph[i - 1] + np.angle(g(w) / resp[i - 1]) + np.pi)
+
+    w180 = optimize.brentq(f, grid[i - 1], grid[i], xtol=1e-14)
+    return 1.0 / abs(g(w180)), 2 * np.pi / w180
+
+
+def batch_run(name: str, noise_frac: float, *, cycles: int = 12, seed: int = 1,
+              ticks_per_period: int = 100) -> tuple[RelayRecord, float, float]:
+    """Relay experiment on a batch plant with d = 1, tick = Tu/ticks_per_period.
+
+    noise_frac: sensor noise std as a fraction of the expected oscillation amplitude
+    4 d / (pi Ku); then quantisation of the same size and hysteresis = max(3 noise,
+    2 resolution) (the issue's precheck default, common practice, no source). Returns the
+    record and the true Ku, Tu.
+    """
+    num, den, delay = BATCH[name]
+    ku, tu = true_ultimate(num, den, delay)
+    ts = tu / ticks_per_period
+    a = 4.0 / (np.pi * ku)
+    noise = noise_frac * a
+    resolution = noise
+    hyst = max(3 * noise, 2 * resolution)
+    rec = run_relay(num, den, delay, ts=ts, amplitude=1.0, hysteresis=hyst, noise=noise,
+                    resolution=resolution, n_cycles=cycles, period_guess=1.3 * tu, seed=seed)
+    return rec, ku, tu

@@ -6,7 +6,7 @@ import contextlib
 import math
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from protocol.cobs import cobs_decode, cobs_encode
@@ -26,11 +26,13 @@ def test_crc_of_empty_is_init() -> None:
     assert crc16_ccitt_false(b"") == 0xFFFF
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.binary(max_size=300))
 def test_crc_table_and_bitwise_agree(data: bytes) -> None:
     assert crc16_ccitt_false(data) == crc16_ccitt_false_bitwise(data)
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.binary(max_size=100), st.binary(max_size=100))
 def test_crc_is_incremental(a: bytes, b: bytes) -> None:
     assert crc16_ccitt_false(b, crc16_ccitt_false(a)) == crc16_ccitt_false(a + b)
@@ -66,6 +68,7 @@ def test_cobs_examples(raw: bytes, encoded: bytes) -> None:
     assert cobs_decode(encoded) == raw
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.binary(max_size=1200))
 def test_cobs_round_trip_and_overhead(data: bytes) -> None:
     enc = cobs_encode(data)
@@ -85,6 +88,7 @@ def test_cobs_rejects_invalid(bad: bytes) -> None:
         cobs_decode(bad)
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.binary(max_size=300))
 def test_cobs_decode_never_raises_anything_else(data: bytes) -> None:
     with contextlib.suppress(CobsError):

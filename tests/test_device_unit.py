@@ -307,6 +307,23 @@ def test_stop_answered_after_output_zero():
     assert samples(out)[0].output == 0.0
     assert out.index(stopped[0]) > out.index(of_type(out, m.Sample)[0])
     assert host.dev.mode == m.Mode.IDLE
+    assert host.dev.streaming and host.dev.limits is not None  # kept over Stop
+
+
+def test_stop_clears_offset_and_is_never_refused():
+    host = Host(make_device())
+    host.req(m.Stop())  # no limits yet: still answered
+    assert of_type(host.tick(), m.Stopped)
+    host.armed()
+    host.one(m.SetOffset(0, 4.0))
+    host.one(m.SetOutput(0, 1.0))
+    host.tick()
+    assert host.dev.applied == 5.0
+    host.req(m.Stop())
+    host.tick()
+    host.one(m.SetOutput(0, 1.0))
+    host.tick()
+    assert host.dev.applied == 1.0
 
 
 def test_ignore_stop_fault():
@@ -725,3 +742,101 @@ def test_fault_spec_merge():
     b = FaultSpec(drop=0.2)
     merged = a.merged(b)
     assert merged.corrupt == 0.1 and merged.drop == 0.2 and merged.seed == 2
+
+
+# ------------------------------------------------------------------ server pacing (fake clock)
+
+
+class _FakeClock:
+    def __init__(self) -> None:
+        self.now = 0.0
+
+    def __call__(self) -> float:
+        return self.now
+
+    def sleep(self, dt: float) -> None:
+        self.now += max(dt, 1e-6)
+
+
+class _FakeTransport:
+    """No peer to wait on (so the server sleeps on the fake clock); records writes."""
+
+    peer = False
+
+    def __init__(self, clock: _FakeClock, inbox: list[tuple[float, bytes]], until: float,
+                 server_box: list) -> None:
+        self.clock = clock
+        self.inbox = inbox
+        self.until = until
+        self.server_box = server_box
+        self.writes: list[tuple[float, bytes]] = []
+
+    def fileno(self) -> int:
+        return -1
+
+    def poll(self) -> None:
+        pass
+
+    def read(self) -> bytes:
+        if self.clock.now >= self.until:
+            self.server_box[0].stop()
+        if self.inbox and self.inbox[0][0] <= self.clock.now:
+            return self.inbox.pop(0)[1]
+        return b""
+
+    def write(self, data: bytes) -> int:
+        self.writes.append((self.clock.now, data))
+        return len(data)
+
+
+def _serve(baud=None, faults: FaultSpec | None = None, speed=1.0, until=0.5):
+    from mock_device.server import Server
+
+    clock = _FakeClock()
+    inbox = [(0.0, m.encode(m.Stream(0, 1, 1), 1))]
+    box: list = []
+    transport = _FakeTransport(clock, inbox, until, box)
+    dev = make_device()
+    server = Server(
+        dev, transport, speed=speed, baud=baud, clock=clock, sleep=clock.sleep,
+        link_faults=LinkFaults(faults) if faults is not None else None,
+    )
+    box.append(server)
+    server.run()
+    frames = []
+    dec = FrameDecoder()
+    for when, data in transport.writes:
+        for raw in dec.feed(data):
+            frames.append((when, m.decode(raw)))
+    return server, frames
+
+
+def test_server_ticks_on_schedule_with_speed():
+    server, frames = _serve(speed=4.0, until=0.25)  # 0.25 wall s = 1.0 device s
+    s = [(w, x) for w, x in frames if isinstance(x, m.Sample)]
+    assert server.ticks == pytest.approx(100, abs=2)
+    for wall, sample in s:
+        # written at (or just after) its tick's wall time: device time / speed
+        assert sample.device_us * 1e-6 / 4.0 == pytest.approx(wall, abs=2e-3)
+
+
+def test_server_baud_pacing_like_a_uart():
+    # 8N1 at 9600 baud: 10 bits a byte, so a frame of n bytes takes n * 10 / 9600 s; a sample
+    # frame (27 bytes) needs 28 ms, more than the 10 ms tick: the line runs back to back.
+    server, frames = _serve(baud=9600, until=3.0)
+    times = [w for w, x in frames if isinstance(x, m.Sample)]
+    size = len(m.encode(m.Sample(0, 0, 0.0, 0.0, 0.0, 0), 0))
+    gaps = np.diff(times)
+    assert np.allclose(gaps[2:], size * 10 / 9600, atol=2e-3)
+    assert server.tx_overflows > 0  # the transmit buffer overflowed, frames were dropped
+    # a paced line never delivers more than the baud rate allows
+    total = sum(len(m.encode(x, 0)) for _, x in frames)
+    assert total * 10 / 9600 <= times[-1] + 0.03
+
+
+def test_server_latency_fault_delays_writes():
+    server, frames = _serve(faults=FaultSpec(latency=0.05), until=0.3)
+    s = [(w, x) for w, x in frames if isinstance(x, m.Sample)]
+    assert s
+    for wall, sample in s:
+        assert wall - sample.device_us * 1e-6 == pytest.approx(0.05, abs=2e-3)

@@ -31,7 +31,9 @@ from protocol.link import Link
 from .test_messages import any_message
 
 # Derandomized: the same examples on every run, so CI is reproducible.
-FUZZ = settings(max_examples=300, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
+FUZZ = settings(
+    max_examples=300, derandomize=True, deadline=None, suppress_health_check=[HealthCheck.too_slow]
+)
 
 frames_st = st.tuples(any_message, st.integers(0, 0xFFFF))
 

@@ -12,7 +12,7 @@ from collections.abc import Iterator
 
 import pytest
 import serial
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from protocol import messages as m
@@ -28,7 +28,7 @@ from protocol.errors import (
     VersionMismatch,
 )
 from protocol.framing import FrameDecoder
-from protocol.link import DeviceClock, Link, classify_open_error, percentile
+from protocol.link import DeviceClock, Link, SampleRecord, classify_open_error, percentile
 
 
 @pytest.fixture
@@ -69,6 +69,7 @@ def test_clock_unwraps_at_2_32() -> None:
     assert c.unwrap(10) == pytest.approx(10e-6)
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.integers(0, 2**32 - 1), st.lists(st.integers(0, 2**31 - 1), max_size=50))
 def test_clock_unwrap_equals_running_sum(start: int, steps: list[int]) -> None:
     c = DeviceClock()
@@ -414,3 +415,49 @@ def test_percentile_nearest_rank() -> None:
     # Nearest-rank definition (common practice, no source): p99 of 1..100 is 99.
     assert percentile([float(i) for i in range(1, 101)], 99) == 99.0
     assert percentile([3.0], 99) == 3.0
+
+
+def test_heartbeat_keeps_its_schedule_when_pongs_do_not_come() -> None:
+    """Pings feed the device watchdog: an unanswered Ping must not delay the next one."""
+    master, slave = os.openpty()
+    lk = Link(os.ttyname(slave), heartbeat_interval=0.02, reply_timeout=0.1, silence_timeout=None)
+    try:
+        lk.start_heartbeat()
+        dec = FrameDecoder()
+        pings = 0
+        t_end = time.monotonic() + 0.6
+        os.set_blocking(master, False)
+        while time.monotonic() < t_end:
+            try:
+                data = os.read(master, 4096)
+            except BlockingIOError:
+                time.sleep(0.01)
+                continue
+            pings += sum(1 for f in dec.feed(data) if f.type == m.Ping.TYPE)
+        lk.stop_heartbeat()
+        # 0.6 s at 20 ms is 30 Pings; a heartbeat waiting out the 0.1 s reply timeout of
+        # each lost Pong would send at most 6 (a wide margin for a loaded machine).
+        assert pings >= 12
+        assert lk.stats().timeouts >= 3  # unanswered Pings are counted
+    finally:
+        lk.close()
+        os.close(master)
+        os.close(slave)
+
+
+def test_sample_handler_runs_in_reader_and_errors_are_contained(link: Link) -> None:
+    seen: list[float] = []
+
+    def handler(rec: SampleRecord) -> None:
+        seen.append(rec.pv)
+        if rec.pv == 2.0:
+            raise ValueError("boom")
+
+    link.set_sample_handler(handler)
+    for i in range(4):
+        inject(link, m.Sample(0, i, float(i), 0.0, 0.0, 0), i)
+    recs = [link.next_sample(timeout=1.0) for _ in range(4)]
+    assert [r.pv for r in recs if r is not None] == [0.0, 1.0, 2.0, 3.0]
+    assert seen == [0.0, 1.0, 2.0, 3.0]
+    assert link.stats().handler_errors == 1 and isinstance(link.handler_error, ValueError)
+    assert not link.lost

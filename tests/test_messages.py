@@ -62,7 +62,7 @@ def test_registry_is_complete_and_ids_in_range() -> None:
 
 
 @pytest.mark.parametrize("cls", ALL, ids=lambda c: c.__name__)
-@settings(max_examples=60)
+@settings(max_examples=60, deadline=None)
 @given(data=st.data())
 def test_every_message_round_trips(cls: type[m.Message], data: st.DataObject) -> None:
     msg = data.draw(message_strategy(cls))
@@ -75,6 +75,7 @@ def test_every_message_round_trips(cls: type[m.Message], data: st.DataObject) ->
     assert m.decode(frames[0]) == msg
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.lists(st.tuples(any_message, st.integers(0, 0xFFFF)), max_size=20), st.data())
 def test_a_stream_of_messages_in_random_chunks(
     msgs: list[tuple[m.Message, int]], data: st.DataObject
@@ -89,6 +90,7 @@ def test_a_stream_of_messages_in_random_chunks(
     assert dec.crc_errors == dec.framing_errors == 0
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(st.floats(allow_nan=False, allow_infinity=False, min_value=-1e30, max_value=1e30))
 def test_float_fields_are_float32(x: float) -> None:
     # IEEE-754 binary32: the decoded value is the nearest float32, struct's rounding.
@@ -144,6 +146,7 @@ def test_expected_replies() -> None:
     assert all(m.expected_reply(t) in m.RESPONSE_TYPES for t in host)
 
 
+@settings(deadline=None)  # no per-example time limit: CI machines are shared
 @given(
     st.sampled_from(list(m.Mode)),
     st.booleans(), st.booleans(), st.booleans(), st.booleans(), st.booleans(), st.booleans(),

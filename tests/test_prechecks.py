@@ -35,7 +35,7 @@ def test_rest_noise_drift_and_resolution() -> None:
     noise, drift, q = 0.02, 0.003, 0.005
     pv = quantise(3.0 + drift * (t - t[0]) + rng.normal(0, noise, t.size), q)
     r = assess_rest(t, pv, np.full(t.size, 1.5))
-    # quantisation adds q^2/12 of variance (uniform rounding error; standard result)
+    # quantisation adds q^2/12 of variance (uniform rounding error; standard result, from memory)
     assert r.noise_std == pytest.approx(math.hypot(noise, q / math.sqrt(12)), rel=0.05)
     assert r.drift == pytest.approx(drift, rel=0.1)
     assert r.resolution == pytest.approx(q, rel=1e-6)

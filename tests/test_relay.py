@@ -206,6 +206,27 @@ def test_ideal_relay_limit_cycle_on_fopdt(gain: float, tau: float, delay: float,
     assert last.amplitude_d == d and last.bias == 0.0
 
 
+def test_limit_cycle_on_the_mock_device_plant_with_fractional_delay() -> None:
+    """Same analytic limit cycle with the mock device's plant model (dead time not a whole
+    number of ticks, hysteresis on)."""
+    from mock_device.plant import LtiPlant
+
+    gain, tau, delay, d, eps, dt = 1.5, 0.8, 0.3137, 2.0, 0.05, 0.002
+    a_ref, p_ref = limit_cycle_fopdt(gain, tau, delay, d, eps)
+    plant = LtiPlant([gain], [tau, 1.0], delay, max_step=dt)
+    plan = RelayPlan(target_amplitude=a_ref, adapt_amplitude=False, balance_bias=False,
+                     max_cycles=8, converge_tol=2e-3)
+    exp = RelayExperiment(plan, RelaySettings(0.0, 0.0, d, eps), 10.0)
+    for k in range(100_000):
+        step = exp.update(k * dt, plant.y)
+        if step.done:
+            break
+        plant.advance(step.output, dt)
+    assert exp.end_reason == "converged"
+    assert exp.cycles[-1].period == pytest.approx(p_ref, rel=0.01)
+    assert exp.cycles[-1].amplitude == pytest.approx(a_ref, rel=0.01)
+
+
 def test_asymmetric_relay_levels_and_no_bias_balancing() -> None:
     dt = 0.002
     plan = RelayPlan(target_amplitude=0.5, adapt_amplitude=False, max_cycles=6)
@@ -463,3 +484,28 @@ def test_device_loop_confirm_settings_by_runner() -> None:
     exp.confirm_settings(0.61)
     assert exp.events[-1].kind == "settings_applied"
     assert exp.relay.settings.amplitude == pytest.approx(2.0)
+
+
+def test_device_loop_rejected_settings_stop_adaptation() -> None:
+    exp = RelayExperiment(RelayPlan(target_amplitude=1.0, stall_time=0.5),
+                          RelaySettings(0.0, 0.0, 1.0, 0.0), 5.0)
+    exp.observe(0.0, 0.5, -1.0)
+    assert exp.observe(0.6, 0.5, -1.0).new_settings is not None
+    exp.reject_settings(0.62, "out of range")
+    assert exp.events[-1].kind == "settings_rejected"
+    assert exp.settings.amplitude == pytest.approx(1.0)
+    step = exp.observe(2.0, 0.5, -1.0)  # still stalled, but no more changes: it gives up
+    assert step.new_settings is None and step.done and exp.end_reason == "no_oscillation"
+
+
+def test_experiment_argument_checks() -> None:
+    plan = RelayPlan(target_amplitude=1.0)
+    with pytest.raises(ValueError, match="bias"):
+        RelayExperiment(plan, RelaySettings(0.0, 5.0, 1.0, 0.0), 5.0)
+    guard = SafetyGuard(SafetyLimits(output_limit=2.0, pv_window=1.0), 0.0, 0.0)
+    with pytest.raises(ValueError, match="guard"):
+        RelayExperiment(plan, RelaySettings(0.0, 0.0, 1.0, 0.0), 5.0, guard=guard)
+    for bad in (dict(target_amplitude=0.0), dict(amplitude_step_factor=1.0),
+                dict(window_margin=1.0), dict(max_cycles=0), dict(pv_window=-1.0)):
+        with pytest.raises(ValueError):
+            RelayPlan(**(dict(target_amplitude=1.0) | bad))

@@ -219,3 +219,59 @@ def test_load_disturbance_peak_and_recovery() -> None:
     outside = np.nonzero(np.abs(ref) > plan.band)[0]
     assert lf.recovery_time is not None
     assert lf.recovery_time == pytest.approx((outside[-1] + 1) * TS, abs=0.1)
+
+
+def test_setpoint_never_applied_ends_the_sequence() -> None:
+    plan = StepPlan(size=1.0, hold_time=0.1, timeout=0.5)
+    exp = StepExperiment(plan, 0.0)
+    done = None
+    for k in range(200):
+        cmd = exp.update(k * TS, 0.0, 0.0)  # the device keeps reporting the old setpoint
+        if cmd.done:
+            done = k * TS
+            break
+    assert done is not None and done == pytest.approx(0.1 + 0.5, abs=2 * TS)
+    assert exp.failure is not None and "not applied" in exp.failure
+    assert exp.segments == []
+
+
+def test_noise_widens_the_settling_band() -> None:
+    rng = np.random.default_rng(1)
+    plan = StepPlan(size=0.5, hold_time=0.2)
+    exp = StepExperiment(plan, 0.0)
+    for k in range(25):
+        exp.update(k * TS, float(np.round(rng.normal(0, 0.02) / 0.05) * 0.05), 0.0)
+    assert exp.phase is StepPhase.STEP
+    assert exp.resolution == pytest.approx(0.05)
+    assert exp.detect_band > plan.band  # 2% of 0.5 = 0.01, below the quantisation step
+
+
+def test_settings_from_config_keeps_the_step_inside_the_window() -> None:
+    from autotune.config import load_config, with_overrides
+    from autotune.steptest import settings_from_config
+
+    cfg = with_overrides(load_config(None), {"safety.pv_window": 5.0, "step.duration": 7.0,
+                                             "step.settle_time": 0.4})
+    st, note = settings_from_config(cfg, "host", size=-4.0)
+    assert st.plan.size == pytest.approx(-3.0) and note is not None  # 60% of the window
+    assert (st.plan.timeout, st.plan.hold_time, st.loop) == (7.0, 0.4, "host")
+    assert st.output_limit == cfg.safety.output_limit
+    st2, note2 = settings_from_config(cfg, "device")
+    assert st2.plan.size == cfg.relay.target_amplitude and note2 is None
+
+
+def test_inside_the_band_at_the_timeout_counts_as_settled() -> None:
+    plan = StepPlan(size=1.0, hold_time=0.1, timeout=0.5, min_hold=0.15, return_to_start=False)
+    exp = StepExperiment(plan, 0.0)
+    sp = 0.0
+    for k in range(100):
+        t = k * TS
+        pv = 0.0 if exp.phase is StepPhase.HOLD else (0.5 if exp.elapsed(t) < 0.3 else 1.0)
+        cmd = exp.update(t, pv, sp)
+        sp = cmd.setpoint
+        if cmd.done:
+            break
+    seg = exp.segments[0]
+    # The automatic hold (as long as the transient, 0.3 s) does not fit before the timeout,
+    # but the PV has been in the band for 0.2 s >= min_hold when it comes.
+    assert seg.settled and seg.t_end - seg.t_start == pytest.approx(0.5, abs=1.5 * TS)

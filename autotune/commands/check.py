@@ -150,7 +150,7 @@ def _check(link: Link, args: argparse.Namespace) -> int:
             if rec.axis != args.axis:
                 continue
             records.append(rec)
-            if rec.t - records[0].t >= args.samples_time:
+            if rec.t - records[0].t >= args.samples_time - 0.5 * info.tick:
                 break
     finally:
         link.stop_heartbeat()

@@ -222,6 +222,7 @@ class Batch:
 
     outcomes: list[Any] = field(default_factory=list)
     run_outcome: Any = None
+    device: dict[str, Any] = field(default_factory=dict)
     session: Path | None = None
     stored: bool | None = None
 
@@ -247,25 +248,19 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
               spec: StepSpec, stdout: TextIO, retries: int) -> Batch:
     """Connect, confirm, arm, run the step (and automatic detuned repeats), stop."""
     from autotune.runner_base import PoweredRun, RunOptions
-    from autotune.steptest import (
-        StepCandidate,
-        StepEnded,
-        StepPlan,
-        StepSettings,
-        fit_step_to_window,
-        run_step,
-    )
+    from autotune.steptest import StepCandidate, StepEnded, run_step, settings_from_config
 
     options = RunOptions(port=str(cfg.connection.port), yes=args.yes, out_dir=out_dir,
                          plant=cfg.connection.plant, speed=cfg.connection.speed,
                          faults=args.faults, seed=args.seed, verb="step", stdout=stdout)
     batch = Batch()
-    size, note = fit_step_to_window(step_size(cfg, args), cfg.safety.pv_window)
+    size = step_size(cfg, args)
     run = PoweredRun(cfg, options, header_extra={"step_request": {
         "proposal": choice.name, "kp": choice.gains.kp, "ki": choice.gains.ki,
         "kd": choice.gains.kd, "size": size, "load_offset": args.load_offset}})
     with run:
         info = run.info
+        batch.device = {"name": info.device_name, "firmware": info.firmware}
         loop = cfg.connection.loop
         if loop == "auto":
             loop = "device" if info.has_device_pid else "host"
@@ -275,25 +270,30 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
         if loop == "host" and not info.has_host_loop:
             raise UserError("the board does not offer host-loop control: use --loop device",
                             exit_code=EXIT_USAGE)
-        if note:
-            run.say(note)
-        plan = StepPlan(size=size, hold_time=cfg.step.settle_time, timeout=cfg.step.duration,
-                        load_offset=args.load_offset)
-        settings = StepSettings(
-            plan=plan, loop=loop, output_limit=cfg.safety.output_limit,
+        settings, note = settings_from_config(
+            cfg, loop, size=size, load_offset=args.load_offset, spec=spec,
             deriv_filter_n=choice.pid_extra.get("deriv_filter_n", args.filter_n),
             setpoint_weight=choice.pid_extra.get("setpoint_weight", args.setpoint_weight),
             tracking_time=choice.pid_extra.get("tracking_time", args.tracking_time),
-            bias=cfg.relay.bias, spec=spec,
         )
+        if note:
+            run.say(note)
+        plan = settings.plan
+        size = plan.size
+        # Every attempt's gains and predictions before any motion (no computing while powered).
+        ts = float(info.tick)
+        tries: list[tuple[str, PidGains, dict[str, Any]]] = []
+        gains = choice.gains
+        for k in range(retries + 1):
+            name = choice.name if k == 0 else f"{choice.name} x{args.detune ** k:.3g}"
+            pred = dict(choice.predicted) if k == 0 else {}
+            tries.append((name, gains, pred or _predict(choice, gains, settings, ts, loop, size,
+                                                        plan.timeout)))
+            gains = detune(gains, args.detune)
         run.arm({"step_plan": {"size": size, "hold_time": plan.hold_time,
                                "timeout": plan.timeout, "load_offset": plan.load_offset,
                                "loop": loop}})
-        gains, name, predicted = choice.gains, choice.name, dict(choice.predicted)
-        ts = float(info.tick)
-        if not predicted:
-            predicted = _predict(choice, gains, settings, ts, loop, size, plan.timeout)
-        for attempt in range(retries + 1):
+        for attempt, (name, gains, predicted) in enumerate(tries):
             run.say(f"step {size:+g} PV units with {name}: kp {gains.kp:.4g}, ki {gains.ki:.4g}"
                     f"/s, kd {gains.kd:.4g} s ({loop} loop); abort: Space, Esc, q, Ctrl-C")
             cand = StepCandidate(name, gains, predicted)
@@ -306,9 +306,6 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
             v = outcome.verdict
             if v is None or v.action is not Action.DETUNE or attempt == retries:
                 break
-            gains = detune(gains, args.detune)
-            name = f"{choice.name} x{args.detune ** (attempt + 1):.3g}"
-            predicted = _predict(choice, gains, settings, ts, loop, size, plan.timeout)
             run.say(f"verdict: {v.reason}; detuning by {args.detune:g} and repeating")
         last = batch.outcomes[-1] if batch.outcomes else None
         if (args.store and args.yes and last is not None and last.verdict is not None
@@ -373,28 +370,29 @@ def accept(outcome: Any, path: Path, session: Path | None, stdout: TextIO,
            device: dict[str, Any]) -> Path:
     """Write the gains file for `outcome` and print the code-ready block."""
     from autotune import __version__
-    from autotune.gainsfile import GainsRecord, code_block, write_gains_file
+    from autotune.gainsfile import code_block, write_gains_file
 
-    measured: dict[str, Any] = {k: v for k, v in outcome.step_field().items()
-                                if k in ("overshoot", "rise_time", "settling_time",
-                                         "steady_state_error", "iae", "peak_output",
-                                         "time_saturated", "settle_band")}
-    if outcome.load is not None:
-        measured["load"] = outcome.load.to_dict()
-    rec = GainsRecord.from_settings(
-        outcome.pid, loop_mode=outcome.loop, axis=device.get("axis", 0),
-        output_limit=outcome.pid.out_max if math.isfinite(outcome.pid.out_max) else None,
-        origin={"session": None if session is None else str(session),
-                "proposal": outcome.candidate.name, "device": device.get("name"),
-                "firmware": device.get("firmware"), "tool_version": __version__},
-        measured=measured,
-        predicted={k: v for k, v in outcome.candidate.predicted.items()
-                   if isinstance(v, int | float) and not isinstance(v, bool)},
-    )
+    rec = outcome.gains_record(None if session is None else str(session), device, __version__)
     p = write_gains_file(path, rec)
     print(f"gains written to {p}", file=stdout)
     print(code_block(rec), file=stdout)
     return p
+
+
+def store_later(cfg: Config, args: argparse.Namespace, gains: PidGains, stdout: TextIO) -> bool:
+    """Connect again (no motion, so no cautions) and store the gains on the board."""
+    from autotune.runner_base import PoweredRun, RunOptions
+
+    options = RunOptions(port=str(cfg.connection.port), yes=True, out_dir=None,
+                         plant=cfg.connection.plant, speed=cfg.connection.speed,
+                         faults=args.faults, seed=args.seed, verb="step", stdout=stdout,
+                         keys=False)
+    run = PoweredRun(cfg, options)
+    try:
+        run.connect()
+        return _store(run, gains)
+    finally:
+        run.__exit__(None, None, None)
 
 
 def _ask(stdout: TextIO, stdin: Any, prompt: str) -> str:
@@ -454,7 +452,7 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
             print(f"autotune step: {ro.message or ro.reason}", file=sys.stderr)
             return code
         verdict = last.verdict
-        device = {"axis": cfg.connection.axis}
+        device = dict(batch.device, axis=cfg.connection.axis)
         gpath = Path(args.gains_file) if args.gains_file else out_root / "gains.toml"
         if args.yes:
             if verdict.passed:
@@ -467,6 +465,8 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
                       f"[d]etune x{args.detune:g}, [o]ther proposal, [r]epeat, [q]uit: ")
         if action in ("a", "accept"):
             gains_file = accept(last, gpath, batch.session, stdout, device)
+            if args.store:
+                store_later(cfg, args, last.candidate.gains, stdout)
             code = EXIT_OK
             break
         if action in ("d", "detune"):

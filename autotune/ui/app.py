@@ -21,6 +21,7 @@ import queue
 import select
 import sys
 import threading
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -36,6 +37,7 @@ from autotune.ui import plain, screens
 from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
 
 ABORT = "<abort>"  # what the key queue carries for an abort key
+FRAME_RATE = 12.0  # most frames a second the screen thread draws
 ENTER_KEYS = ("\r", "\n")
 
 
@@ -100,10 +102,16 @@ class Terminal:
         self.keys: queue.Queue[str] = queue.Queue()
         self.live: Live | None = None
         self.router: KeyRouter | None = None
-        self._lock = threading.Lock()
+        self._cond = threading.Condition()
+        self._pending: Callable[[int, int], RenderableType] | None = None
+        self._seq = 0
+        self._drawn = 0
+        self._closing = False
+        self._drawer: threading.Thread | None = None
         self.on_abort: Callable[[str], None] | None = None  # installed by the current stage
         self.abort_key: str | None = None
         self.reporter = plain.PlainReporter(self.line)
+        self.captured: dict[str, Callable[[int, int], RenderableType]] | None = None
 
     # ---------------------------------------------------------------- life cycle
     def start(self) -> Terminal:
@@ -113,9 +121,18 @@ class Terminal:
             self.live = Live(console=self.console, screen=True, auto_refresh=False,
                              redirect_stdout=False, redirect_stderr=False)
             self.live.start()
+            self._closing = False
+            self._drawer = threading.Thread(target=self._draw_loop, name="screen", daemon=True)
+            self._drawer.start()
         return self
 
     def close(self) -> None:
+        if self._drawer is not None:
+            with self._cond:
+                self._closing = True
+                self._cond.notify_all()
+            self._drawer.join(timeout=5.0)
+            self._drawer = None
         if self.live is not None:
             with contextlib.suppress(Exception):
                 self.live.stop()
@@ -160,13 +177,43 @@ class Terminal:
         w, h = self.console.size
         return max(w, screens.MIN_WIDTH), max(h, screens.MIN_HEIGHT)
 
-    def show(self, build: Callable[[int, int], RenderableType]) -> None:
-        """Draw a screen built for the terminal's size (rich mode only)."""
+    def show(self, build: Callable[[int, int], RenderableType], name: str = "",
+             wait: bool = True) -> None:
+        """Draw a screen built for the terminal's size (rich mode only). With `captured` set,
+        the latest builder of each named screen is kept there (for the screenshot export).
+
+        The drawing happens on the screen thread, so a runner that publishes a snapshot never
+        waits for the terminal; `wait` blocks until this screen (or a newer one) is drawn."""
+        if self.captured is not None and name:
+            self.captured[name] = build
         if self.live is None:
             return
-        w, h = self.size()
-        with self._lock:
-            self.live.update(build(w, h), refresh=True)
+        with self._cond:
+            self._seq += 1
+            self._pending = build
+            self._cond.notify_all()
+            if wait:
+                target = self._seq
+                self._cond.wait_for(lambda: self._drawn >= target or self._closing, timeout=5.0)
+
+    def _draw_loop(self) -> None:
+        """Screen thread: draw the newest pending screen, at most FRAME_RATE times a second."""
+        while True:
+            with self._cond:
+                self._cond.wait_for(lambda: self._pending is not None or self._closing)
+                if self._closing and self._pending is None:
+                    return
+                build, seq = self._pending, self._seq
+                self._pending = None
+            live = self.live
+            if live is not None and build is not None:
+                w, h = self.size()
+                with contextlib.suppress(Exception):  # a broken frame must not end the job
+                    live.update(build(w, h), refresh=True)
+            with self._cond:
+                self._drawn = seq
+                self._cond.notify_all()
+            time.sleep(1.0 / FRAME_RATE)
 
     def line(self, text: str) -> None:
         """One plain line (plain mode), flushed."""
@@ -180,8 +227,12 @@ class Terminal:
     def snapshot(self, snap: RunSnapshot) -> None:
         """Runner callback: draw the live screen, or print what changed."""
         if self.live is not None:
-            self.show(lambda w, h: screens.live_screen(snap, w, h))
+            self.show(lambda w, h: screens.live_screen(snap, w, h), f"live-{snap.phase.value}",
+                      wait=False)
         else:
+            if self.captured is not None:
+                self.captured[f"live-{snap.phase.value}"] = (
+                    lambda w, h: screens.live_screen(snap, w, h))
             self.reporter.update(snap)
 
 
@@ -206,7 +257,10 @@ class JobSettings:
     speed: float = 1.0
     plant: str = "cart-wheel"
     seed: int | None = None
+    device: str = ""  # how the start screen names the device before it is connected
     max_steps: int = 3
+    settle_band: float | None = None  # settled-detection band of the step (fraction of the
+    #                                   step size); None = the step test's default (2%)
 
 
 class _ConfirmGate(io.TextIOBase):
@@ -281,18 +335,15 @@ class BenchJob:
                           speed=st.speed, seed=st.seed, stdin=_ConfirmGate(self),
                           stdout=self.sink, verb=verb, keys=False)
 
-    def start_view(self, run: Any) -> StartView:
+    def start_view(self) -> StartView:
+        """The start screen's view. It comes before the port is opened (nothing is opened
+        before the operator agrees), so the device is named by its port and the loop mode is
+        the one asked for."""
         cfg = self.cfg
         s = cfg.safety
-        info = run.info
-        from autotune.session import choose_loop
-
-        try:
-            self.loop_mode = choose_loop(cfg.connection.loop, info.has_device_relay,
-                                         info.has_host_loop, cfg.connection.sign)
-        except UserError:
-            self.loop_mode = str(cfg.connection.loop)
-        self.info = info
+        loop = str(cfg.connection.loop)
+        if loop == "auto":
+            loop = "device if the board offers it, else host"
         limits = (
             ("output limit", f"±{s.output_limit:g}"),
             ("PV window", f"±{s.pv_window:g} around the start value"),
@@ -309,10 +360,10 @@ class BenchJob:
             ("max time", f"{r.max_time:g} s"),
         )
         return StartView(
-            device=f"{info.device_name} {info.firmware}".strip(),
+            device=self.settings.device or "the board",
             port=self.settings.label or self.settings.port,
             axis=cfg.connection.axis,
-            loop_mode=self.loop_mode,
+            loop_mode=loop,
             limits=limits,
             plan=plan,
             simulated=self.settings.simulated,
@@ -323,11 +374,10 @@ class BenchJob:
     def confirm_start(self) -> bool:
         """Called by the runner after it connected: the start screen and the operator's Y."""
         run = self.tune.run if self.tune is not None else None
-        view = self.start_view(run)
+        view = self.start_view()
         term = self.term
-        if term.live is not None:
-            term.show(lambda w, h: screens.start_screen(view, w, h))
-        else:
+        term.show(lambda w, h: screens.start_screen(view, w, h), "start")
+        if term.live is None:
             term.lines(plain.start_lines(view))
         if self.settings.yes:
             term.line("--yes given: starting without asking.")
@@ -353,6 +403,10 @@ class BenchJob:
         finally:
             self.term.on_abort = None
         o = self.tune_outcome
+        run = self.tune.run
+        if run is not None:
+            self.info = run.info
+            self.loop_mode = run.loop_mode
         if o.session_path is not None:
             self.files.append(("relay session", str(o.session_path)))
         if o.result_path is not None:
@@ -389,6 +443,12 @@ class BenchJob:
         res = self.result or {}
         self.rows = [ProposalRow.of(_DictProposal(p)) for p in res.get("proposals") or []]
         self.model = model_from_dict(res["model"]) if res.get("model") else None
+        m = res.get("model") or {}
+        if self.model is None and all(k in m for k in ("num", "den", "delay")):
+            from autotune.lti import DelayedTF
+
+            with contextlib.suppress(Exception):  # any kind that states its transfer function
+                self.model = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m["delay"]))
         self.selected = next((i for i, r in enumerate(self.rows) if r.default), 0)
 
     def redesign(self) -> str:
@@ -412,8 +472,9 @@ class BenchJob:
     def proposals_view(self, message: str = "") -> ProposalsView:
         res = self.result or {}
         model = res.get("model") or {}
-        params = ", ".join(f"{k} {v:.3g}" for k, v in (model.get("params") or {}).items()
-                           if isinstance(v, (int, float)))
+        params = " ".join(f"{screens.MODEL_PARAM_NAMES.get(k, k)} {v:.3g}"
+                          for k, v in (model.get("params") or {}).items()
+                          if isinstance(v, (int, float)))
         d = self.cfg.design
         spec = []
         if d.max_overshoot is not None:
@@ -423,7 +484,8 @@ class BenchJob:
         return ProposalsView(
             rows=tuple(self.rows), selected=self.selected, ms_target=self.ms_target,
             detune=self.detune, ku=res.get("ultimate_gain"), tu=res.get("ultimate_period"),
-            model=f"{model.get('kind', '')} {params}".strip(), spec=", ".join(spec),
+            model=f"{str(model.get('kind', '')).replace('_', '+')} {params}".strip(),
+            spec=", ".join(spec),
             message=message,
         )
 
@@ -435,15 +497,14 @@ class BenchJob:
             return False
         if self.settings.yes or not term.keys_available:
             view = self.proposals_view()
-            if term.live is not None:
-                term.show(lambda w, h: screens.proposals_screen(view, w, h))
-            else:
+            term.show(lambda w, h: screens.proposals_screen(view, w, h), "proposals")
+            if term.live is None:
                 term.lines(plain.proposals_lines(view))
             return True
         term.drain()
         while True:
             view = self.proposals_view(message)
-            term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h))
+            term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h), "proposals")
             key = term.wait_key()
             message = ""
             if key == ABORT:
@@ -471,6 +532,23 @@ class BenchJob:
                     message = "detune factor stays between 0.20 and 1.00"
             elif key in ENTER_KEYS or key == "s":
                 return True
+
+    def next_unattended(self) -> bool:
+        """Unattended: move to the next untried proposal, those without spec violations first,
+        then by predicted overshoot (lowest first). False when none is left."""
+        tried = {a.view.name for a in self.attempts}
+        order = sorted(
+            (i for i, r in enumerate(self.rows) if r.name not in tried),
+            key=lambda i: (bool(self.rows[i].violations),
+                           self.rows[i].predicted.get("overshoot", math.inf)
+                           if math.isfinite(self.rows[i].predicted.get("overshoot", math.inf))
+                           else math.inf),
+        )
+        if not order:
+            return False
+        self.selected = order[0]
+        self.detune = 1.0
+        return True
 
     # ---------------------------------------------------------------- stage 3: the step
     def candidate(self) -> Any:
@@ -502,8 +580,11 @@ class BenchJob:
         settle = row.predicted.get("settling_time")
         min_record = 1.5 * settle if isinstance(settle, (int, float)) and math.isfinite(
             settle) else 0.0
+        band = {} if self.settings.settle_band is None else {
+            "settle_band": self.settings.settle_band}
         plan = StepPlan(size=self.step_size(), hold_time=cfg.step.settle_time,
-                        timeout=max(cfg.step.duration, min_record), min_record=min_record)
+                        timeout=max(cfg.step.duration, min_record), min_record=min_record,
+                        **band)
         return StepSettings(plan=plan, loop=self.loop_mode, output_limit=cfg.safety.output_limit,
                             spec=StepSpec(cfg.design.max_overshoot, cfg.design.max_settling_time,
                                           0.0))
@@ -551,16 +632,23 @@ class BenchJob:
         if outcome is None:
             return StepView(cand.name, g.kp, g.ki, g.kd, (), (), (), (),
                             message=f"stopped before the step: {message}")
-        t0 = next((s.t_start for s in outcome.segments if str(s.phase.value) == "step"),
-                  outcome.t[0] if outcome.t else 0.0)
-        t = tuple(x - t0 for x in outcome.t)
-        pred_t, pred_y = self.predicted_response(outcome, cand, t[-1] if t else 1.0)
+        seg = next((s for s in outcome.segments if str(s.phase.value) == "step"), None)
+        t0 = seg.t_start if seg is not None else (outcome.t[0] if outcome.t else 0.0)
+        t1 = seg.t_end if seg is not None else (outcome.t[-1] if outcome.t else t0)
+        lead = min(0.5, 0.25 * max(t1 - t0, 0.0))  # a little of the hold before the step
+        keep = [i for i, x in enumerate(outcome.t) if t0 - lead <= x <= t1 + 1e-9]
+        t = tuple(outcome.t[i] - t0 for i in keep)
+
+        def pick(a: list[float]) -> tuple[float, ...]:
+            return tuple(a[i] for i in keep)
+
+        pred_t, pred_y = self.predicted_response(outcome, cand, t1 - t0)
         note = ""
         if reason not in ("completed",):
             note = f"stopped: {message}" + (" (device confirmed zero output)" if confirmed
                                             else "")
-        return StepView(cand.name, g.kp, g.ki, g.kd, t, tuple(outcome.pv), tuple(outcome.sp),
-                        tuple(outcome.out), pred_t, pred_y, tuple(outcome.rows), outcome.verdict,
+        return StepView(cand.name, g.kp, g.ki, g.kd, t, pick(outcome.pv), pick(outcome.sp),
+                        pick(outcome.out), pred_t, pred_y, tuple(outcome.rows), outcome.verdict,
                         detune=0.7, message=note)
 
     def predicted_response(self, outcome: Any, cand: Any, t_end: float
@@ -587,18 +675,15 @@ class BenchJob:
         """The step-result screen: 'accept', 'detune', 'other', 'repeat' or ABORT."""
         term = self.term
         v = attempt.outcome.verdict if attempt.outcome is not None else None
-        if term.live is not None:
-            term.show(lambda w, h: screens.step_screen(attempt.view, w, h))
-        else:
+        term.show(lambda w, h: screens.step_screen(attempt.view, w, h), "step")
+        if term.live is None:
             term.lines(plain.step_lines(attempt.view))
         if self.settings.yes or not term.keys_available:
             if v is not None and v.passed:
                 return "accept"
             if len(self.attempts) >= self.settings.max_steps:
                 return ABORT
-            if v is not None and getattr(v.action, "value", "") == "try_other":
-                return "other"
-            return "detune" if v is not None else "repeat"
+            return "other"  # unattended: the next proposal in line (see next_unattended)
         term.drain()
         while True:
             key = term.wait_key(("a", "d", "o", "r"))
@@ -681,6 +766,11 @@ class BenchJob:
                     continue
                 if action == "repeat":
                     continue
+                if self.settings.yes or not self.term.keys_available:
+                    if not self.next_unattended():
+                        return JobResult(EXIT_FAILED, "no proposal passed the step; no gains "
+                                         "written", list(self.files))
+                    continue
                 break  # other: back to the proposals
 
 
@@ -711,9 +801,9 @@ class _DictProposal:
 
 
 def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,
-            stdin: Any = None) -> int:
+            stdin: Any = None, term: Terminal | None = None) -> int:
     """Run a bench job on the terminal (or in plain lines) and print the finish screen."""
-    term = Terminal(console, stdin)
+    term = term or Terminal(console, stdin)
     job = BenchJob(cfg, settings, term)
     with term:
         try:
@@ -721,6 +811,8 @@ def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,
         except KeyboardInterrupt:
             result = JobResult(EXIT_ABORTED, "interrupted", list(job.files))
     view = finish_view(result)
+    if term.captured is not None:
+        term.captured["finish"] = lambda w, h: screens.finish_screen(view, w)
     if term.rich:
         last = job.attempts[-1].view if job.attempts else None
         if last is not None and result.exit_code == EXIT_OK:

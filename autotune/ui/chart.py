@@ -15,6 +15,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+import numpy as np
 from rich.console import Console, ConsoleOptions, RenderResult
 from rich.segment import Segment
 from rich.style import Style
@@ -51,6 +52,21 @@ def nice_range(values: Sequence[float], pad: float = 0.08) -> tuple[float, float
         half = max(abs(lo) * 0.1, 1.0) if lo != 0 else 1.0
         return (lo - half, hi + half)
     return (lo - pad * span, hi + pad * span)
+
+
+def _runs(x: Sequence[float], y: Sequence[float]) -> list[tuple[np.ndarray, np.ndarray]]:
+    """The finite stretches of (x, y) as arrays (NaN or inf in either breaks the line)."""
+    n = min(len(x), len(y))
+    xa = np.asarray(x[:n], dtype=float)
+    ya = np.asarray(y[:n], dtype=float)
+    ok = np.isfinite(xa) & np.isfinite(ya)
+    out = []
+    if not ok.any():
+        return out
+    edges = np.flatnonzero(np.diff(np.r_[0, ok.astype(np.int8), 0]))
+    for a, b in zip(edges[::2], edges[1::2], strict=True):
+        out.append((xa[a:b], ya[a:b]))
+    return out
 
 
 def _line(x0: int, y0: int, x1: int, y1: int) -> list[tuple[int, int]]:
@@ -97,19 +113,31 @@ def rasterise(
         py = round((y1 - y) * ys)
         return min(max(px, 0), cols - 1), min(max(py, 0), rows - 1)
 
+    def plot(px: int, py: int, style: str) -> None:
+        cx, cy = px // 2, py // 4
+        bits[cy][cx] |= _DOT_BITS[px % 2][py % 4]
+        owner[cy][cx] = style
+
     for s in series:
-        prev: tuple[int, int] | None = None
-        for x, y in zip(s.x, s.y, strict=False):
-            if not (math.isfinite(x) and math.isfinite(y)):
-                prev = None
-                continue
-            p = pixel(x, y)
-            pts = [p] if prev is None else _line(prev[0], prev[1], p[0], p[1])
-            for px, py in pts:
-                cx, cy = px // 2, py // 4
-                bits[cy][cx] |= _DOT_BITS[px % 2][py % 4]
-                owner[cy][cx] = s.style
-            prev = p
+        for run in _runs(s.x, s.y):
+            xa = np.clip(np.rint((run[0] - x0) * xs), 0, cols - 1).astype(int)
+            ya = np.clip(np.rint((y1 - run[1]) * ys), 0, rows - 1).astype(int)
+            # one pixel column at a time: its first, lowest, highest and last dot, so a few
+            # thousand samples cost no more than the width of the chart
+            starts = np.flatnonzero(np.r_[True, xa[1:] != xa[:-1]])
+            ends = np.r_[starts[1:], xa.size]
+            lo = np.minimum.reduceat(ya, starts)
+            hi = np.maximum.reduceat(ya, starts)
+            prev: tuple[int, int] | None = None
+            for k, (a, b) in enumerate(zip(starts, ends, strict=True)):
+                px = int(xa[a])
+                first, last = int(ya[a]), int(ya[b - 1])
+                if prev is not None:
+                    for qx, qy in _line(prev[0], prev[1], px, first):
+                        plot(qx, qy, s.style)
+                for qy in range(int(lo[k]), int(hi[k]) + 1):
+                    plot(px, qy, s.style)
+                prev = (px, last)
     return [
         [(chr(BRAILLE_BASE + b) if b else " ", o if b else None) for b, o in zip(br, ow, strict=True)]
         for br, ow in zip(bits, owner, strict=True)

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-from rich.box import HEAVY, ROUNDED
+from rich.box import HEAVY, ROUNDED, SIMPLE_HEAD
 from rich.console import Group, RenderableType
 from rich.panel import Panel
 from rich.table import Table
@@ -42,7 +42,7 @@ MIN_HEIGHT = 24  # smallest supported terminal, rows
 # Keys of each screen besides the abort keys: (key cap, what it does).
 START_KEYS = (("Y", "all true: start"),)
 PROPOSAL_KEYS = (
-    ("↑↓ 1-9", "choose"),
+    ("1-9 Tab", "choose"),
     ("m M", "Ms"),
     ("d D", "detune"),
     ("Enter", "step"),
@@ -118,13 +118,16 @@ def start_screen(view: StartView, width: int = MIN_WIDTH, height: int = MIN_HEIG
     where = Text()
     where.append("device ", style=theme.MUTED)
     where.append(view.device, style="bold")
-    where.append(f" on {view.port}" + (" (simulated board)" if view.simulated else ""))
+    where.append(f" on {view.port}")
+    if view.simulated:
+        where.append(" (simulated: no motor moves)", style=theme.MUTED)
     where.append("   axis ", style=theme.MUTED)
     where.append(str(view.axis), style="bold")
     where.append("   loop ", style=theme.MUTED)
     where.append(f"{view.loop_mode}", style="bold")
-    where.append(" (relay and PID run on the " +
-                 ("board)" if view.loop_mode == "device" else "host)"), style=theme.MUTED)
+    if view.loop_mode in ("device", "host"):
+        where.append(" (relay and PID run on the " +
+                     ("board)" if view.loop_mode == "device" else "host)"), style=theme.MUTED)
     cols = 2 if width < 120 else 3
     parts: list[RenderableType] = [header("before power"), key_bar(START_KEYS), where]
     if view.out_dir:
@@ -156,25 +159,24 @@ def _figure(row_pred: dict[str, float], key: str, digits: int) -> str:
 def proposals_table(view: ProposalsView, width: int = MIN_WIDTH) -> Table:
     """Every design: its gains and predicted figures; default marked, violations flagged."""
     figures = WIDE_FIGURES if width >= 120 else NARROW_FIGURES
-    table = Table(box=ROUNDED, padding=(0, 1), header_style=theme.MUTED, expand=False,
-                  border_style="grey35")
-    table.add_column("#", justify="right", no_wrap=True)
-    table.add_column("design", no_wrap=True)
+    table = Table(box=SIMPLE_HEAD, padding=(0, 1), header_style=theme.MUTED, expand=False,
+                  border_style="grey35", show_edge=False, pad_edge=False)
+    table.add_column("#", justify="right", no_wrap=True, min_width=2)
+    table.add_column("design", no_wrap=True, min_width=12)
     for name in ("kp", "ki /s", "kd s"):
-        table.add_column(name, justify="right", no_wrap=True)
+        table.add_column(name, justify="right", no_wrap=True, min_width=6)
     for _, title, _ in figures:
-        table.add_column(title, justify="right", no_wrap=True)
-    table.add_column("flags", no_wrap=True, overflow="ellipsis", max_width=max(8, width - 62))
+        table.add_column(title, justify="right", no_wrap=True, min_width=4)
+    used = 2 + 12 + 3 * 6 + sum(5 for _ in figures) + 2 * (len(figures) + 5)
+    table.add_column("flags", no_wrap=True, overflow="ellipsis",
+                     max_width=max(6, width - used - 2))
     for i, row in enumerate(view.rows):
-        mark = Text()
-        if row.default:
-            mark.append("◆ ", style=f"bold {theme.OK}")
+        mark = Text(no_wrap=True)
+        mark.append("◆ " if row.default else "  ", style=f"bold {theme.OK}")
         mark.append(row.name)
-        flags = Text()
+        flags = Text(no_wrap=True, overflow="ellipsis")
         if row.violations:
-            flags.append("✗ " + ", ".join(row.violations), style=f"bold {theme.BAD}")
-        elif row.default:
-            flags.append("default", style=theme.OK)
+            flags.append("✗ " + "; ".join(row.violations), style=f"bold {theme.BAD}")
         else:
             flags.append("✓", style=theme.OK)
         cells = [str(i + 1) if i < 9 else "", mark, fmt(row.kp), fmt(row.ki), fmt(row.kd)]
@@ -183,10 +185,14 @@ def proposals_table(view: ProposalsView, width: int = MIN_WIDTH) -> Table:
     return table
 
 
+MODEL_PARAM_NAMES = {"gain": "K", "time_constant": "T", "velocity_gain": "Kv", "delay": "L",
+                     "t1": "T1", "t2": "T2", "zero_time": "Tz"}
+
+
 def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT) -> Group:
     """Choose the gains to try: the table, the chosen one in detail, the Ms and detune knobs."""
     width = max(width, MIN_WIDTH)
-    ident = Text()
+    ident = Text(no_wrap=True, overflow="ellipsis")
     ident.append("identified ", style=theme.MUTED)
     ident.append(f"Ku {fmt(view.ku)}  Tu {fmt(view.tu)} s", style="bold")
     if view.model:

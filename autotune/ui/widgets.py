@@ -96,7 +96,10 @@ def phase_road(snap: RunSnapshot) -> Text:
 
 def progress_line(snap: RunSnapshot) -> Table:
     """A bar of progress within the phase, its percentage and the one-line message."""
-    frac = min(max(snap.progress, 0.0), 1.0)
+    frac = snap.progress
+    if not frac and snap.phase is Phase.RELAY and snap.max_cycles:
+        frac = snap.cycle / snap.max_cycles  # at most this share of the cycles is done
+    frac = min(max(frac, 0.0), 1.0)
     grid = Table.grid(expand=True, padding=(0, 1))
     grid.add_column(width=22, no_wrap=True)
     grid.add_column(width=4, justify="right", no_wrap=True)

@@ -6,7 +6,6 @@ requirement itself is one ("LinkLost within one second") or as guards against ha
 
 from __future__ import annotations
 
-import os
 import signal
 import subprocess
 import sys
@@ -63,7 +62,7 @@ def test_streaming_100hz_two_seconds_zero_loss(mock_device, open_link):
     first = link.next_sample(5.0)
     assert first is not None
     recs = [first]
-    while recs[-1].t - first.t < 2.0:
+    while round((recs[-1].t - first.t) / TICK) < 200:
         recs += collect(link, 1)
     assert len(recs) == 201
     for a, b in zip(recs, recs[1:], strict=False):
@@ -80,7 +79,7 @@ def test_out_of_range_output_refused_output_unchanged(mock_device, open_link):
     link = open_link(dev.port, speed=5)
     link.handshake()
     link.start_heartbeat()
-    link.request(m.SetLimits(0, 30.0, -100.0, 100.0, 0.0, 500))
+    link.request(m.SetLimits(0, 30.0, -100.0, 100.0, 0.0, 5000))
     link.request(m.SetOutput(0, 10.0))
     with pytest.raises(NakError) as info:
         link.request(m.SetOutput(0, 55.0))
@@ -91,8 +90,9 @@ def test_out_of_range_output_refused_output_unchanged(mock_device, open_link):
     assert all(r.output == 10.0 for r in recs)
     assert all(r.mode == m.Mode.HOST for r in recs)
     assert link.stop() is True
+    link.drain_samples()  # everything sent before Stopped
     after = collect(link, 3)
-    assert after[-1].output == 0.0
+    assert all(r.output == 0.0 and r.mode == m.Mode.IDLE for r in after)
 
 
 def test_motion_before_limits_refused(mock_device, open_link):
@@ -105,7 +105,7 @@ def test_motion_before_limits_refused(mock_device, open_link):
 
 
 def test_watchdog_zero_output_and_fault_reported_on_reconnect(mock_device, open_link):
-    speed = 2.0
+    speed = 1.0  # the host must get its last two frames out well within the watchdog period
     watchdog = 0.3  # s, device time
     dev = mock_device("cart-wheel", speed=speed)
     link = open_link(dev.port, speed=speed)
@@ -176,7 +176,7 @@ def test_device_relay_oscillates(mock_device, open_link):
     link = open_link(dev.port, speed=10)
     link.handshake()
     link.start_heartbeat()
-    link.request(m.SetLimits(0, 40.0, -90.0, 90.0, 0.0, 500))
+    link.request(m.SetLimits(0, 40.0, -90.0, 90.0, 0.0, 5000))
     link.request(m.StartRelay(0, 0.0, 0.0, 20.0, 20.0, 0.1))
     link.request(m.Stream(0, 1, 1))
     recs = collect(link, 400)
@@ -223,8 +223,8 @@ def test_faults_reach_the_wire(mock_device, open_link):
 
 
 def test_disconnect_fault_closes_port(mock_device, open_link):
-    dev = mock_device("cart-wheel", speed=10, faults="disconnect_after=0.5")
-    link = open_link(dev.port, speed=10)
+    dev = mock_device("cart-wheel", speed=2, faults="disconnect_after=1.0")
+    link = open_link(dev.port, speed=2)
     link.handshake()
     link.request(m.Stream(0, 1, 1))
     recs = []
@@ -233,7 +233,7 @@ def test_disconnect_fault_closes_port(mock_device, open_link):
             rec = link.next_sample(1.0)
             assert rec is not None, "no LinkLost within one second of the last sample"
             recs.append(rec)
-    assert recs and recs[-1].t - recs[0].t < 0.6
+    assert recs and recs[-1].t - recs[0].t < 1.0
     assert dev.proc.wait(5.0) == 0
 
 
@@ -241,7 +241,7 @@ def test_sigterm_exits_cleanly(mock_device):
     dev = mock_device("cart-wheel", speed=1)
     dev.proc.send_signal(signal.SIGTERM)
     assert dev.proc.wait(5.0) == 0
-    assert not os.path.exists(dev.port) or dev.port.startswith("/dev/pts/")
+    assert "Traceback" not in dev.proc.stderr.read()
 
 
 @pytest.mark.parametrize(

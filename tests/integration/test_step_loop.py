@@ -52,8 +52,11 @@ def plant_file(tmp_path: Path) -> str:
 
 def _run(plant: str, out: Path, candidates: list[StepCandidate], plan: StepPlan, loop: str,
          window: float = 10.0, speed: float = SPEED) -> tuple[list, PoweredRun]:
+    # Device watchdog 2 s of device time: a busy test machine does not trip it at --speed 5
+    # (the watchdog has its own tests).
     cfg = with_overrides(load_config(None), {"safety.output_limit": 60.0,
-                                             "safety.pv_window": window})
+                                             "safety.pv_window": window,
+                                             "safety.watchdog": 2.0})
     opts = RunOptions(port="sim", yes=True, out_dir=out, plant=plant, speed=speed, keys=False,
                       verb="step", stdout=open("/dev/null", "w"))  # noqa: SIM115
     outcomes = []
@@ -100,7 +103,7 @@ def test_host_loop_step_matches_python_control(plant_file: str, tmp_path: Path) 
     size = 1.5
     plan = StepPlan(size=size, hold_time=0.2, timeout=4.0)
     (o,), _ = _run(plant_file, tmp_path, [StepCandidate("manual", PidGains(2.0, 10.0, 0.0))],
-                   plan, "host", speed=2.0)
+                   plan, "host", speed=1.0)
     err = _compare_with_reference(o, size, extra_ticks=1)
     assert err <= 0.03 * size, f"max deviation {err:.4g} from python-control's sampled loop"
 
@@ -123,7 +126,7 @@ def test_step_leaving_the_pv_window_stops_within_one_tick(plant_file: str, tmp_p
     plan = StepPlan(size=0.6, hold_time=0.2, timeout=4.0)
     (o,), run = _run(plant_file, tmp_path, [StepCandidate("hot", g)], plan, "device",
                      window=window)
-    assert run.outcome.reason in ("limit:pv_window", "fault:PV_WINDOW"), run.outcome
+    assert run.outcome.reason.lower() in ("limit:pv_window", "fault:pv_window"), run.outcome
     assert o.end_reason == run.outcome.reason
     assert run.outcome.stop.confirmed
     s = read_session(tmp_path / "session.jsonl")
@@ -133,15 +136,17 @@ def test_step_leaving_the_pv_window_stops_within_one_tick(plant_file: str, tmp_p
     i = int(outside[0])
     # The device (limits loaded before any motion) zeroes the output in the offending tick;
     # at the latest the next sample shows zero output.
-    assert s.out[i] == 0.0 or s.out[i + 1] == 0.0
-    assert s.t[i + 1] - s.t[i] == pytest.approx(TICK, abs=1e-6)
-    assert np.all(s.out[i + 1:] == 0.0)
+    zero = np.nonzero((s.t >= s.t[i]) & (s.out == 0.0))[0]
+    assert zero.size and s.t[zero[0]] - s.t[i] <= TICK + 1e-9
+    assert np.all(s.out[zero[0]:] == 0.0)
+    assert run.outcome.stop.t_zero is not None and run.outcome.stop.t_zero - s.t[i] <= TICK + 1e-9
 
 
 def test_load_disturbance_recovers(plant_file: str, tmp_path: Path) -> None:
-    plan = StepPlan(size=1.0, hold_time=0.2, timeout=4.0, load_offset=5.0)
+    plan = StepPlan(size=1.0, hold_time=0.2, timeout=3.0, load_offset=5.0, settle_hold=0.3,
+                    return_to_start=False)
     (o,), run = _run(plant_file, tmp_path, [StepCandidate("m", PidGains(1.0, 4.0, 0.0))],
-                     plan, "host", speed=2.0)
+                     plan, "host", speed=1.0)
     assert run.outcome.reason == "completed"
     assert o.load is not None
     # A positive offset at the plant input pushes the PV above the setpoint; the integral

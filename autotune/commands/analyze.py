@@ -1,0 +1,148 @@
+"""`autotune analyze SESSION [--json FILE]`: the relay analysis offline, from a session file."""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from autotune.errors import EXIT_OK, UserError
+
+HELP = "analyse a recorded relay session: ultimate gain and period, model, gain proposals"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("session", metavar="SESSION", help="session.jsonl written by `tune`")
+    parser.add_argument("--json", metavar="FILE", default=None,
+                        help="where to write result.json (default: result.json next to SESSION)")
+
+
+@dataclasses.dataclass(frozen=True)
+class _Settings:
+    centre: float
+    bias: float
+    amplitude: float
+    hysteresis: float
+    asymmetry: float = 0.0
+
+
+def _get(d: Any, *keys: str) -> Any:
+    for k in keys:
+        if not isinstance(d, dict) or k not in d:
+            return None
+        d = d[k]
+    return d
+
+
+def _finite(x: Any) -> float | None:
+    return float(x) if isinstance(x, (int, float)) and math.isfinite(float(x)) else None
+
+
+def session_inputs(session: Any) -> dict[str, Any]:
+    """The analysis inputs from a recorder.Session: relay-phase arrays, settings, tick, noise.
+
+    Relay samples: those recorded in phase "relay" (all samples when no phase was recorded).
+    Settings: the last `relay_settings` event, else the header config's [relay]. PV is
+    multiplied by the header's `sign` (the relay runs on the sign-normalised loop).
+    """
+    header = session.header
+    sign = _finite(header.get("sign")) or _finite(_get(header, "config", "connection", "sign"))
+    sign = -1.0 if sign is not None and sign < 0 else 1.0
+    mask = session.phase_mask("relay")
+    if not mask.any():
+        mask = np.ones(session.t.shape, dtype=bool)
+    ok = mask & np.isfinite(session.t) & np.isfinite(session.pv) & np.isfinite(session.out)
+    t, y, u = session.t[ok], sign * session.pv[ok], session.out[ok]
+    sp = session.sp[ok]
+    events = [e for e in session.events if e.get("kind") == "relay_settings"]
+    detail = events[-1].get("detail") if events else None
+    cfg_relay = _get(header, "config", "relay") or {}
+    src = detail if isinstance(detail, dict) else cfg_relay
+    centre = _finite(src.get("centre"))
+    if centre is None:
+        finite_sp = sp[np.isfinite(sp)]
+        centre = float(sign * np.median(finite_sp)) if finite_sp.size else float(np.median(y))
+    hyst = _finite(src.get("hysteresis"))
+    settings = _Settings(centre=centre, bias=_finite(src.get("bias")) or 0.0,
+                         amplitude=_finite(src.get("amplitude")) or 0.0,
+                         hysteresis=hyst if hyst is not None else 0.0,
+                         asymmetry=_finite(src.get("asymmetry")) or 0.0)
+    tick = _finite(_get(header, "device", "tick"))
+    rest = session.phase_mask("precheck:rest")
+    noise = None
+    if rest.sum() >= 10:
+        pv_rest = session.pv[rest]
+        pv_rest = pv_rest[np.isfinite(pv_rest)]
+        if pv_rest.size >= 10:
+            k = np.arange(pv_rest.size)
+            resid = pv_rest - np.polyval(np.polyfit(k, pv_rest, 1), k)
+            noise = float(np.std(resid))
+    limit = _finite(_get(header, "config", "safety", "output_limit"))
+    return {"t": t, "y": y, "u": u, "settings": settings, "ts": tick, "noise_std": noise,
+            "output_limit": limit, "sign": sign}
+
+
+def run(args: argparse.Namespace) -> int:
+    from autotune import analysis
+    from autotune.recorder import read_session, write_result
+
+    session = read_session(args.session)
+    inp = session_inputs(session)
+    if inp["t"].size < 10:
+        raise UserError(f"{args.session}: no relay samples to analyse")
+    try:
+        an = analysis.analyse_relay(inp["t"], inp["y"], inp["u"], inp["settings"],
+                                    noise_std=inp["noise_std"], ts=inp["ts"],
+                                    output_limit=inp["output_limit"])
+    except analysis.AnalysisError as exc:
+        raise UserError(f"{args.session}: {exc}") from None
+    result: dict[str, Any] = {"source": str(args.session), **analysis.result_fields(an)}
+    result["relay"]["centre"] = inp["settings"].centre
+    result["end_reason"] = session.reason or "cut-off"
+    result["notes"] = list(session.warnings)
+    result["proposals"] = _proposals(an, session.header, result["notes"])
+    out = Path(args.json) if args.json else Path(args.session).with_name("result.json")
+    write_result(out, result)
+    unc = an.uncertainty
+    print(f"ultimate gain   {an.ku:.5g} (+/- {100 * unc['ultimate_gain']:.1f}%)   "
+          f"classic {an.ku_classic:.5g}")
+    print(f"ultimate period {an.tu:.5g} s (+/- {100 * unc['ultimate_period']:.1f}%)   "
+          f"classic {an.tu_classic:.5g} s")
+    params = ", ".join(f"{k} {v:.4g}" for k, v in an.model.params.items())
+    print(f"model           {an.model.kind}: {params}")
+    print(f"cycles used     {an.cycles_used}{'' if an.converged else ' (not converged)'}")
+    for w in an.warnings:
+        print(f"warning: {w}")
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
+def _proposals(an: Any, header: dict[str, Any], notes: list[str]) -> list[dict[str, Any]]:
+    """Gain proposals from autotune.design when it is available (empty list otherwise)."""
+    try:
+        from autotune import design
+    except ImportError:
+        notes.append("design module not available: no gain proposals")
+        return []
+    try:
+        names = {f.name for f in dataclasses.fields(design.DesignSpec)}
+        kw = {"ts": an.ts,
+              "output_limit": _finite(_get(header, "config", "safety", "output_limit")),
+              "step_size": _finite(_get(header, "config", "relay", "target_amplitude"))}
+        spec = design.DesignSpec(**{k: v for k, v in kw.items() if k in names and v is not None})
+        props = design.propose(an.ku, an.tu, an.model.tf, spec)
+    except Exception as exc:  # noqa: BLE001 - report, the analysis itself stands
+        notes.append(f"design failed: {exc}")
+        return []
+    out = []
+    for p in props:
+        if hasattr(p, "as_dict"):
+            out.append(p.as_dict())
+        else:
+            out.append({"name": p.name, "kp": p.gains.kp, "ki": p.gains.ki, "kd": p.gains.kd,
+                        "predicted": dict(p.predicted)})
+    return out

@@ -1,0 +1,65 @@
+"""Benchmark: relay analysis over the test batch at three noise levels (prints a table).
+
+Columns: relative error of the classic (plain describing function) and the refined ultimate
+gain and period against the truth (python-control frequency response with the exact dead time,
+see tests/relaysim.true_ultimate), the reported uncertainty, the winning model, the cycles
+needed before the last two agreed (converged_cycles), and the analysis time. Then the analysis
+time of a 10,000-sample session (goal: under 50 ms). Asserts nothing.
+
+Run: .venv/bin/python tests/bench/bench_analysis.py [--quick]
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+
+import numpy as np  # noqa: E402
+
+from autotune.analysis import analyse_relay, cycles_to_converge  # noqa: E402
+from tests.relaysim import BATCH, batch_run  # noqa: E402
+
+NOISE_LEVELS = (0.0, 0.02, 0.05)
+
+
+def main() -> None:
+    quick = "--quick" in sys.argv
+    names = list(BATCH)[::3] if quick else list(BATCH)
+    print(f"{'plant':13s} {'noise':>5s} | {'Ku cls':>7s} {'Ku ref':>7s} {'unc':>6s} | "
+          f"{'Tu cls':>7s} {'Tu ref':>7s} {'unc':>6s} | {'model':14s} {'conv':>4s} {'ms':>5s}")
+    worst: dict[float, list[float]] = {nf: [0.0, 0.0, 0.0, 0.0] for nf in NOISE_LEVELS}
+    for name in names:
+        for nf in NOISE_LEVELS:
+            rec, ku, tu = batch_run(name, nf)
+            t0 = time.perf_counter()
+            an = analyse_relay(rec.t, rec.pv, rec.out, rec.settings, ts=rec.ts,
+                               noise_std=rec.noise if nf else None)
+            ms = 1e3 * (time.perf_counter() - t0)
+            conv = cycles_to_converge(an.cycles)
+            e = (an.ku_classic / ku - 1, an.ku / ku - 1, an.tu_classic / tu - 1, an.tu / tu - 1)
+            worst[nf] = [max(w, abs(x)) for w, x in zip(worst[nf], e, strict=True)]
+            print(f"{name:13s} {100 * nf:4.0f}% | {100 * e[0]:+6.1f}% {100 * e[1]:+6.2f}% "
+                  f"{100 * an.uncertainty['ultimate_gain']:5.1f}% | {100 * e[2]:+6.1f}% "
+                  f"{100 * e[3]:+6.2f}% {100 * an.uncertainty['ultimate_period']:5.1f}% | "
+                  f"{an.model.kind:14s} {conv if conv else '-':>4} {ms:5.0f}")
+    print()
+    for nf, w in worst.items():
+        print(f"worst |error| at noise {100 * nf:.0f}%: Ku classic {100 * w[0]:.1f}%, refined "
+              f"{100 * w[1]:.2f}%; Tu classic {100 * w[2]:.1f}%, refined {100 * w[3]:.2f}%")
+    # a 10,000-sample session
+    rec, ku, tu = batch_run("sopdt T=1", 0.02, cycles=95)
+    n = rec.t.size
+    times = []
+    for _ in range(3):
+        t0 = time.perf_counter()
+        analyse_relay(rec.t, rec.pv, rec.out, rec.settings, ts=rec.ts, noise_std=rec.noise)
+        times.append(time.perf_counter() - t0)
+    print(f"\nanalysis of a {n}-sample session: {1e3 * min(times):.0f} ms (best of 3; goal 50 ms)")
+    print(f"numpy {np.__version__}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,51 @@
+"""Regenerate the README screenshots in docs/screens/ from a demo run (simulated board).
+
+    .venv/bin/python tests/bench/make_screens.py [--plant cart-wheel] [--speed 5] [--out DIR]
+
+Runs `autotune demo --yes` in-process on an in-memory terminal, keeps the last frame of each
+screen and writes them with rich's SVG export. Prints the files written. Asserts nothing.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+
+from autotune.commands import demo  # noqa: E402
+from autotune.simdevice import SIM  # noqa: E402
+from autotune.ui.app import JobSettings  # noqa: E402
+from autotune.ui.export import export_svgs, record_demo  # noqa: E402
+
+
+def main() -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--plant", default="cart-wheel", choices=demo.PLANTS)
+    p.add_argument("--speed", type=float, default=5.0)
+    p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--width", type=int, default=100)
+    p.add_argument("--height", type=int, default=32)
+    p.add_argument("--out", default=str(ROOT / "docs" / "screens"))
+    args = p.parse_args()
+    ns = argparse.Namespace(plant=args.plant, config=None, loop=None, speed=args.speed,
+                            seed=args.seed)
+    cfg = demo.build_config(ns)
+    with tempfile.TemporaryDirectory() as tmp:
+        settings = JobSettings(port=SIM, out_dir=Path(tmp), yes=True, plant=args.plant,
+                               speed=args.speed, seed=args.seed, simulated=True,
+                               label="a pty (started after Y)",
+                               device=f"simulated {args.plant} board",
+                               settle_band=demo.SETTLE_BAND.get(args.plant))
+        code, captured = record_demo(cfg, settings, args.width, args.height)
+    print(f"demo exit code {code}; screens captured: {', '.join(sorted(captured))}")
+    for path in export_svgs(captured, Path(args.out), args.width, args.height):
+        print(f"wrote {path.relative_to(ROOT) if path.is_relative_to(ROOT) else path}")
+    return 0 if code == 0 else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

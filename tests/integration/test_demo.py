@@ -1,0 +1,129 @@
+"""`autotune demo` driven by pexpect in a real pseudo-terminal, against the simulated board.
+
+The demo starts the mock device process on a pty itself (autotune.simdevice); these tests are
+the operator: they read the screens, press the keys, and check the files the job wrote.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+
+import pytest
+
+pexpect = pytest.importorskip("pexpect")
+
+from autotune.gainsfile import read_gains_file  # noqa: E402
+from autotune.recorder import read_session  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[2]
+EXIT_ABORTED = 3
+
+
+def spawn(*args: str, rows: int = 30, cols: int = 100) -> pexpect.spawn:
+    return pexpect.spawn(sys.executable, ["-m", "autotune", "demo", *args], cwd=str(ROOT),
+                         dimensions=(rows, cols), encoding="utf-8", timeout=90)
+
+
+def finish(child: pexpect.spawn) -> int:
+    child.expect(pexpect.EOF)
+    child.close()
+    return child.exitstatus
+
+
+def test_interactive_demo_start_relay_choose_step_accept(tmp_path: Path) -> None:
+    out = tmp_path / "run"
+    child = spawn("--out", str(out), "--speed", "4")
+    try:
+        # the start screen: the cautions, then the confirmation key
+        child.expect("before the motor moves")
+        child.expect("The robot is on blocks")
+        child.expect("The software stop keys are no substitute for that cut-off.")
+        child.send("y")
+        # the live relay view reaches convergence
+        child.expect("relay \\d+/\\d+")
+        child.expect("✓ converged")
+        # the proposals: pick the second design by its number key
+        child.expect("gain choices")
+        # the Ms knob redesigns on the fitted model; back to 1.40 gives the runner's design again
+        child.send("M")
+        child.expect("proposals redesigned for Ms ≤ 1.45")
+        child.send("m")
+        child.expect("proposals redesigned for Ms ≤ 1.40")
+        child.send("d")  # detune factor 1.00 -> 0.95
+        child.expect("×0.95")
+        child.send("2")
+        child.expect("chosen robust-pi")
+        child.send("\r")
+        child.expect("step check")
+        child.expect("PASS|NOT MET")
+        child.send("a")
+        child.expect("gains accepted: robust-pi")
+        code = finish(child)
+    finally:
+        if child.isalive():
+            child.terminate(force=True)
+    assert code == 0
+    result = json.loads((out / "result.json").read_text())
+    chosen = next(p for p in result["proposals"] if p["name"] == "robust-pi")
+    rec = read_gains_file(out / "gains.toml")
+    # the gains file holds the chosen proposal's gains times the detune factor
+    assert math.isclose(rec.gains.kp, 0.95 * chosen["kp"], rel_tol=1e-6)
+    assert math.isclose(rec.gains.ki, 0.95 * chosen["ki"], rel_tol=1e-6)
+    assert math.isclose(rec.gains.kd, 0.95 * chosen["kd"], rel_tol=1e-6, abs_tol=1e-12)
+    assert rec.origin["proposal"] == "robust-pi"
+    assert rec.origin["detuned_by"] == pytest.approx(0.95)
+    assert "overshoot" in rec.measured
+    assert result["step"]["proposal"] == "robust-pi×0.95"
+    step = read_session(out / "step-1" / "session.jsonl")
+    assert step.end is not None and step.reason == "completed"
+    assert read_session(out / "session.jsonl").reason == "converged"
+
+
+def test_space_during_the_relay_stops_the_motor_within_two_ticks(tmp_path: Path) -> None:
+    out = tmp_path / "abort"
+    child = spawn("--out", str(out), "--speed", "1")
+    try:
+        child.expect("before the motor moves")
+        child.send("y")
+        child.expect("relay 2/\\d+")  # two relay cycles done: the motor is oscillating
+        child.send(" ")
+        child.expect("MOTOR STOPPED")  # the live screen says so ...
+        child.expect("abort key \\(space\\) pressed")  # ... and the finish screen tells why
+        child.expect("confirmed zero output")
+        code = finish(child)
+    finally:
+        if child.isalive():
+            child.terminate(force=True)
+    assert code == EXIT_ABORTED
+    s = read_session(out / "session.jsonl")
+    assert s.reason == "aborted"
+    tick = float(s.header["device"]["tick"])
+    req = next(e for e in s.events if e.get("kind") == "stop_request")
+    t_req = float(req["t"])
+    relay = s.phase_mask("relay")
+    assert relay.any() and s.out[relay].max() > 0 and s.out[relay].min() < 0  # it was moving
+    after = s.t > t_req + 1e-9
+    zero = after & (s.out == 0.0)
+    assert zero.any(), "no zero-output sample after the stop request"
+    t_zero = float(s.t[zero][0])
+    assert t_zero - t_req <= 2 * tick + 1e-6, (t_zero - t_req, tick)
+    # and it stayed at zero from then on
+    assert (s.out[s.t >= t_zero] == 0.0).all()
+
+
+def test_unattended_demo_writes_the_gains_and_exits_0(tmp_path: Path) -> None:
+    out = tmp_path / "yes"
+    child = spawn("--plant", "mast-pan", "--yes", "--out", str(out), "--speed", "5")
+    try:
+        child.expect("gains accepted")
+        code = finish(child)
+    finally:
+        if child.isalive():
+            child.terminate(force=True)
+    assert code == 0
+    rec = read_gains_file(out / "gains.toml")
+    assert rec.gains.kp > 0 and rec.period > 0
+    assert json.loads((out / "result.json").read_text())["end_reason"] == "converged"
