@@ -282,14 +282,26 @@ def _phase_below_zero(g: complex) -> float:
     return ph - 2 * math.pi if ph > 0 else ph
 
 
-def _rest_at_start(y: np.ndarray, u: np.ndarray, first_switch: int, noise: float,
-                   pp: float) -> bool:
-    """True when the record starts with the output constant and the PV still (plant at rest)."""
-    if first_switch < 3:
+def _rest_at_start(y: np.ndarray, u: np.ndarray, switches: np.ndarray, noise: float,
+                   pp: float, bias: float | None, step: float) -> bool:
+    """True when the record starts at rest: output constant at the operating point, PV still.
+
+    The first output level must be the bias (settings known) or, without settings, last
+    longer than 1.5 relay half-periods: a record that opens on a relay level whose effect has
+    not yet passed the dead time is not at rest.
+    """
+    first = int(switches[0])
+    if first < 3:
         return False
-    seg = y[:first_switch]
-    return bool(np.all(u[:first_switch] == u[0]) and
-                float(seg.max() - seg.min()) <= max(6 * noise, 0.02 * pp))
+    seg = y[:first]
+    still = bool(np.all(u[:first] == u[0]) and
+                 float(seg.max() - seg.min()) <= max(6 * noise, 0.02 * pp))
+    if not still:
+        return False
+    if bias is not None:
+        return abs(float(u[0]) - bias) <= 0.01 * max(step, 1e-300)
+    halves = np.diff(switches)
+    return halves.size > 0 and first > 1.5 * float(np.median(halves))
 
 
 def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
@@ -335,12 +347,11 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     d = float(np.mean([c.amplitude_d for c in cycles]))
     bias = float(np.mean([c.bias for c in cycles]))
 
-    first_switch = int(switch_indices(u, state)[0][0])
-    at_rest = _rest_at_start(y, u, first_switch, noise, 2 * a)
+    at_rest = _rest_at_start(y, u, switch_indices(u, state)[0], noise, 2 * a,
+                             settings.bias if settings is not None else None, d)
     fit_from = 0 if at_rest else i0
     model = fit_models(t, y, u, ts=ts, w1=w1, phase1=_phase_below_zero(g1), fit_from=fit_from,
-                       candidates=candidates, points=[(p.w, p.g) for p in fourier],
-                       noise_floor=noise)
+                       candidates=candidates, noise_floor=noise)
     tf = model.tf
     up = tf.ultimate_point()
     mismatch = {p.harmonic: float(abs(complex(tf.freq_response(p.w)) - p.g) / abs(p.g))

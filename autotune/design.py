@@ -60,8 +60,9 @@ class Proposal:
     predicted keys: ms, gain_margin, phase_margin_deg, stable, overshoot (%), rise_time,
     settling_time (s), iae_load (PV units s, unit load step at the plant input; inf without
     integral action), peak_output (output units, for the configured step), time_saturated
-    (s), ts (s, loop period used), t_end (s, length of the predicted step; nan figures: not
-    reached within it, or unstable).
+    (s), ts (s, loop period used), ts_assumed (True when the spec gave no loop period and
+    ts = Tu/200 stood in), t_end, t_end_load (s, lengths of the predicted setpoint and load
+    steps; nan figures: not reached within them, or unstable).
     """
 
     name: str
@@ -82,7 +83,7 @@ class Proposal:
             kc, ti, td = to_standard(g)
             d["standard"] = {"kc": kc, "ti": None if math.isinf(ti) else ti, "td": td}
         ts = self.predicted.get("ts")
-        if isinstance(ts, float) and ts > 0:
+        if isinstance(ts, float) and ts > 0 and not self.predicted.get("ts_assumed", False):
             d["per_tick"] = per_tick(g, ts, n)
         return d
 
@@ -134,7 +135,7 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, fl
     return {"ms": mg.ms, "gain_margin": mg.gain_margin, "phase_margin_deg": mg.phase_margin_deg,
             "stable": stable, "overshoot": overshoot, "rise_time": rise, "settling_time": settle,
             "iae_load": iae, "peak_output": peak, "time_saturated": tsat, "ts": ts,
-            "t_end": float(run.t[-1]), "t_end_load": t_cap}
+            "t_end": float(run.t[-1]), "t_end_load": t_cap, "ts_assumed": spec.ts is None}
 
 
 def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:
@@ -198,19 +199,31 @@ def propose(ku: float | None, tu: float | None, model: DelayedTF,
     """All proposals, robust ones first; exactly one has `default=True`.
 
     ku (output units per PV unit) and tu (s) feed the ultimate-point rules (skipped when None);
-    the model feeds SIMC, AMIGO (when it is a FOPDT, SOPDT or integrator+lag+dead time) and
-    the robust optimum, and every prediction.
+    the model feeds SIMC and AMIGO (when `rules.recognise` reads it: FOPDT, SOPDT,
+    integrator+lag+dead time, higher orders by the half rule), the robust optimum and every
+    prediction. Without a robust optimum (no stable PI meets the Ms target, e.g. an unstable
+    model) the default falls back to the rule with the largest ki within the target.
     """
     spec = DesignSpec() if spec is None else spec
-    ts_design = spec.ts
-    rpi = robust.robust_pi(model, spec.ms_target, ts_design)
-    rpid = robust.robust_pid(model, spec.ms_target, spec.n, ts_design)
-    default = choose_default(rpi.gains, rpid.gains, spec)
     src = f"max ki subject to Ms <= {spec.ms_target:g} (Astrom-Panagopoulos-Hagglund 1998)"
-    designs = [("robust-pid", rpid.gains, src), ("robust-pi", rpi.gains, src)]
+    designs: list[tuple[str, PidGains, str]] = []
+    default: str | None = None
+    try:
+        rpi = robust.robust_pi(model, spec.ms_target, spec.ts)
+        rpid = robust.robust_pid(model, spec.ms_target, spec.n, spec.ts, pi=rpi)
+        default = choose_default(rpi.gains, rpid.gains, spec)
+        designs = [("robust-pid", rpid.gains, src), ("robust-pi", rpi.gains, src)]
+    except ValueError:
+        pass  # e.g. an open-loop unstable model: the rules are still offered
     designs += _rule_designs(ku, tu, model, spec)
-    out = []
-    for name, g, source in designs:
-        pred = predict(model, g, spec)
-        out.append(Proposal(name, g, pred, violations(pred, spec), name == default, source))
-    return out
+    preds = [predict(model, g, spec) for _, g, _ in designs]
+    if default is None and designs:
+        # fallback: the largest ki among stable proposals within the Ms target, else the
+        # stable proposal with the lowest Ms (common practice, no source)
+        ok = [i for i, p in enumerate(preds) if p["stable"]]
+        within = [i for i in ok if float(preds[i]["ms"]) <= spec.ms_target + 0.05]
+        pick = (max(within, key=lambda i: designs[i][1].ki) if within else
+                min(ok, key=lambda i: float(preds[i]["ms"])) if ok else 0)
+        default = designs[pick][0]
+    return [Proposal(name, g, pred, violations(pred, spec), name == default, source)
+            for (name, g, source), pred in zip(designs, preds, strict=True)]

@@ -250,9 +250,11 @@ class _Problem:
     """Variable-projection output-error problem for one candidate over a record."""
 
     def __init__(self, kind: str, u: np.ndarray, y: np.ndarray, dt: float, window: slice,
-                 order: int = 1):
+                 order: int = 1, free_response: bool = False):
         self.kind = kind
         self.order = order
+        self.free_response = free_response
+        self.k = np.arange(u.size, dtype=float)
         self.u = u
         self.y = y
         self.dt = dt
@@ -281,46 +283,32 @@ class _Problem:
         elif self.kind == "sopdt_zero":  # s / den: residues p_i r_i
             res_d = [p * q for p, q in zip(poles, res, strict=True)]
             cols.append(modal_response(poles, res_d, lag, self.u, self.dt)[self.window])
+        if self.free_response:
+            # unknown state at sample 0: the free response is a combination of the modes
+            if self.kind == "lag_n":
+                lam = math.exp(-self.dt / shape["time_constant"])
+                base = lam ** self.k
+                kn = self.k / max(self.k[-1], 1.0)
+                cols += [(kn**j * base)[self.window] for j in range(self.order)]
+            else:
+                cols += [(math.exp(p * self.dt) ** self.k)[self.window] for p in poles
+                         if p != 0.0]
         x = np.column_stack(cols)
         # normal equations, column-scaled (small systems: 2 or 3 unknowns)
         scale = np.sqrt(np.sum(x * x, axis=0))
         scale[scale == 0] = 1.0
         xs = x / scale
-        try:
-            beta = np.linalg.solve(xs.T @ xs, xs.T @ self.yw) / scale
-        except np.linalg.LinAlgError:
-            beta = np.linalg.lstsq(x, self.yw, rcond=None)[0]
+        if self.free_response:
+            beta = np.linalg.lstsq(xs, self.yw, rcond=None)[0] / scale
+        else:
+            try:
+                beta = np.linalg.solve(xs.T @ xs, xs.T @ self.yw) / scale
+            except np.linalg.LinAlgError:
+                beta = np.linalg.lstsq(x, self.yw, rcond=None)[0] / scale
         return self.yw - x @ beta, beta, shape
 
     def residual(self, theta: np.ndarray) -> np.ndarray:
         return self.solve(theta)[0]
-
-
-def lag_order_from_points(points: Sequence[tuple[float, complex]]) -> int | None:
-    """Order n of K exp(-L s)/(T s + 1)^n that best explains the harmonic points.
-
-    points: (w rad/s, G) with the fundamental first; for each n, T and L are placed so the
-    phase at the fundamental matches (several splits between lag and delay), K matches its
-    magnitude, and the relative miss at the higher harmonics decides. None without them.
-    """
-    if len(points) < 2:
-        return None
-    w1, g1 = points[0]
-    lag_total = max(-(float(np.angle(g1)) - (2 * math.pi if np.angle(g1) > 0 else 0.0)), 0.05)
-    best: tuple[float, int] | None = None
-    for n in LAG_ORDERS:
-        for q in np.linspace(0.0, 0.9, 19):
-            lag_phase = min((1 - q) * lag_total, n * math.pi / 2 * 0.97)
-            tc = math.tan(lag_phase / n) / w1
-            delay = (lag_total - lag_phase) / w1
-            k = abs(g1) * (1 + (w1 * tc) ** 2) ** (n / 2)
-            miss = 0.0
-            for w, g in points[1:]:
-                gm = k * np.exp(-1j * w * delay) / (1 + 1j * w * tc) ** n
-                miss += abs(gm - g) / abs(g)
-            if best is None or miss < best[0]:
-                best = (miss, n)
-    return None if best is None else best[1]
 
 
 def _start_grid(kind: str, w1: float, phase1: float, order: int = 1) -> list[np.ndarray]:
@@ -363,7 +351,6 @@ def fit_models(
     fit_from: int = 0,
     u_ref: float | None = None,
     candidates: Sequence[str] = CANDIDATES,
-    points: Sequence[tuple[float, complex]] = (),
     noise_floor: float = 0.0,
 ) -> FittedModel:
     """Fit each candidate to the sampled record by least squares; return the best.
@@ -372,9 +359,9 @@ def fit_models(
     over each tick; ts: tick (s), default the median sample spacing; w1, phase1: the measured
     first-harmonic frequency (rad/s) and plant phase there (rad, in (-2 pi, 0)), used to seed
     the search; fit_from: first sample index of the residual window (the model is simulated
-    from sample 0, assuming the plant at rest with input u_ref, default u[0], before it);
-    candidates: model kinds to try; points: measured (w, G) harmonic points (fundamental
-    first); noise_floor: PV noise std (PV units): once a candidate's rms residual is within
+    from sample 0 with input u_ref, default u[0], before it; from rest when fit_from is 0,
+    else from an unknown state whose free response is fitted as well);
+    candidates: model kinds to try (simplest first); noise_floor: PV noise std (PV units): once a candidate's rms residual is within
     5% of it (or of 1e-9 of the PV range) no richer candidate can do better, and the search
     stops there (candidates are tried in the order given, simplest first).
     """
@@ -393,6 +380,8 @@ def fit_models(
     solved: dict[str, np.ndarray] = {}
     log_lo = math.log(ts * 1e-3)
     log_hi = math.log(max(t[-1] - t[0], ts) * 1e3)
+    free = int(fit_from) > 0  # not from rest: the initial state is fitted too
+
     def optimise(prob: _Problem, starts: list[np.ndarray]) -> np.ndarray:
         costs = [float(np.sum(prob.residual(s) ** 2)) for s in starts]
         best = starts[int(np.argmin(costs))]
@@ -411,7 +400,7 @@ def fit_models(
             # rank the orders by their best start, then optimise the two most promising
             ranked = []
             for n in LAG_ORDERS:
-                prob_n = _Problem(kind, du, y, ts, window, n)
+                prob_n = _Problem(kind, du, y, ts, window, n, free)
                 starts_n = _start_grid(kind, w1, phase1, n)
                 c = min(float(np.sum(prob_n.residual(st) ** 2)) for st in starts_n)
                 ranked.append((c, n, prob_n, starts_n))
@@ -423,7 +412,7 @@ def fit_models(
             _, order, prob, x = min(trials, key=lambda r: r[0])
         else:
             order = 1
-            prob = _Problem(kind, du, y, ts, window)
+            prob = _Problem(kind, du, y, ts, window, 1, free)
             starts = _start_grid(kind, w1, phase1)
             if kind == "sopdt_zero" and "sopdt" in solved:
                 starts.append(solved["sopdt"])

@@ -8,10 +8,10 @@ time), PV units, output units.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from enum import Enum
+from enum import StrEnum
 
 
-class Phase(str, Enum):
+class Phase(StrEnum):
     """Where a run stands."""
 
     CONNECT = "connect"

@@ -231,10 +231,58 @@ def closed_loop_poles(plant: DelayedTF, gains: PidGains, n: float = 10.0,
 
 def is_stable(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float | None = None,
               pade_order: int = 12) -> bool:
-    """True when every closed-loop pole (see `closed_loop_poles`) has negative real part."""
+    """Closed-loop stability of the loop.
+
+    Where it applies (plant without right-half-plane poles, at most one integrator, loop
+    gain below 0.5 at the top of a grid reaching at most 1e4 times the reference frequency, or
+    the Nyquist frequency when sampled), the Nyquist criterion is evaluated on the exact
+    frequency response, dead time included (`nyquist_stable`); otherwise every closed-loop
+    pole of the Padé approximation (`closed_loop_poles`) must have negative real part.
+    """
+    verdict = _nyquist_verdict(plant, gains, n, ts)
+    if verdict is not None:
+        return verdict
+    return pade_stable(plant, gains, n, ts, pade_order)
+
+
+def pade_stable(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float | None = None,
+                pade_order: int = 12) -> bool:
+    """True when every closed-loop pole of the Padé approximation has negative real part."""
     poles = closed_loop_poles(plant, gains, n, ts, pade_order)
     wr = reference_frequency(plant, ts)
     return bool(np.all(poles.real < -1e-9 * wr))
+
+
+def _nyquist_verdict(plant: DelayedTF, gains: PidGains, n: float, ts: float | None
+                     ) -> bool | None:
+    """Grid Nyquist count on the exact loop response; None where it does not apply."""
+    if not _winding_test(plant):
+        return None
+    q0 = plant.integrators
+    g0 = plant.velocity_gain if q0 == 1 else plant.static_gain
+    if gains.ki != 0.0:
+        q, theta0 = q0 + 1, float(np.angle(gains.ki * g0)) - (q0 + 1) * np.pi / 2.0
+    elif q0 == 1:
+        q, theta0 = 1, float(np.angle(gains.kp * g0)) - np.pi / 2.0
+    else:
+        q, theta0 = 0, float(np.angle(1.0 + gains.kp * g0))
+    if q > 0 and g0 == 0.0:
+        return None
+    wr = reference_frequency(plant, ts)
+    lo = 1e-4 * wr
+    hi = 1e2 * wr if ts is None else np.pi / ts * 0.999
+    while True:
+        # steps small enough that 1 + L turns by well under pi between points, even where
+        # the dead time turns L quickly (at most 0.2 rad of delay phase a step)
+        step = min(0.003, 0.2 / max(hi * (plant.delay + (ts or 0.0)), 1e-9))
+        pts = int(min(400_000, max(2000, math.log(hi / lo) / step)))
+        w = np.logspace(np.log10(lo), np.log10(hi), pts)
+        opl = 1.0 + loop_response(plant, gains, w, n, ts)
+        if abs(opl[-1] - 1.0) < 0.5:
+            return nyquist_stable(opl, q, theta0)
+        if ts is not None or hi >= 1e4 * wr:
+            return None
+        hi *= 10.0
 
 
 # ---------------------------------------------------------------- robust optimum
@@ -381,24 +429,28 @@ def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None)
     res = optimize.minimize_scalar(lambda x: -float(f(np.array([x]))[0]), bounds=(lo, hi),
                                    method="bounded", options={"xatol": kp_hi * 1e-6})
     kp, ki = (res.x, -res.fun) if -res.fun > kis[j] else (kps[j], kis[j])
+    if not (math.isfinite(ki) and ki > 0):
+        raise ValueError(f"no stable PI reaches Ms <= {ms_target:g} on this model")
     return _verify(plant, PidGains(float(kp), float(ki), 0.0), ms_target, 10.0, ts)
 
 
 def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
-               ts: float | None = None, td_ti_max: float = 0.5) -> RobustDesign:
+               ts: float | None = None, td_ti_max: float = 0.5,
+               pi: RobustDesign | None = None) -> RobustDesign:
     """PID with derivative filter (Tf = Td/N) maximising ki subject to Ms <= ms_target.
 
     For fixed (kp, kd) the largest ki follows in closed form (as for PI); (kp, kd) are searched
     on a grid, then refined by Nelder-Mead. Td/Ti is kept at most `td_ti_max` (Td = Ti/4 is the
     classical ratio; the bound keeps the optimiser off derivative-dominated designs whose gain
-    rests on the filter).
+    rests on the filter). `pi`: the robust PI of the same problem if already computed (the
+    PID never returns less than it). Raises ValueError when no stable PI meets the bound.
     """
     r = 1.0 / ms_target
     w = frequency_grid(plant, ts, points=2500, span=(1e-3, 200.0))
     g = plant.freq_response(w) * hold_response(w, ts)
     ib, _ = controller_bases(w, ts, 0.0)
     b = g * ib
-    pi = robust_pi(plant, ms_target, ts)
+    pi = robust_pi(plant, ms_target, ts) if pi is None else pi
     ku_like = _kp_upper(plant, w, g, 0.0)  # ~ Ku
     wr = reference_frequency(plant, ts)
 

@@ -125,14 +125,18 @@ def recognise(model: DelayedTF) -> LowOrderModel | None:
     for t0 in sorted(lead):
         # a left-half-plane zero (T0 s + 1) cancels against the nearest larger lag tau0:
         # (T0 s + 1)/(tau0 s + 1) ~ 1/((tau0 - T0) s + 1) for tau0 >= T0, T0 <= 5 theta
-        # (Skogestad 2003, from memory); negligible zeros (below 1e-4 of the largest lag) drop
+        # (Skogestad 2003, from memory), or where tau0 is within 10 % of T0 (near
+        # cancellation, common practice, no source); negligible zeros (below 1e-4 of the
+        # largest lag) drop
         if lags and t0 < 1e-4 * lags[0]:
             continue
-        bigger = [k for k, tl in enumerate(lags) if tl >= t0]
-        if not bigger or t0 > 5.0 * theta:
+        bigger = [k for k, tl in enumerate(lags) if tl >= t0 * (1 - 1e-3)]
+        if not bigger:
             return None
         k = bigger[-1]
-        lags[k] -= t0
+        if t0 > 5.0 * theta and lags[k] - t0 > 0.1 * lags[k]:
+            return None  # neither within the rule's range nor a near pole-zero cancellation
+        lags[k] = max(lags[k] - t0, 0.0)
         lags = sorted((tl for tl in lags if tl > 1e-12 * lags[0]), reverse=True)
     tau = lags + [0.0, 0.0, 0.0]
     if i == 1:

@@ -270,7 +270,8 @@ class TuneRun:
         run.sp_value = run.pv_start or 0.0
         recs = self._hold(run, bias, cfg.prechecks.rest_time)
         # the first samples may still show the previous output; use the applied ones
-        recs = [r for r in recs if r.output == bias] or recs
+        tol = 1e-6 * max(1.0, abs(bias))  # the wire carries float32
+        recs = [r for r in recs if abs(r.output - bias) <= tol] or recs
         t = np.array([r.t for r in recs])
         pv = np.array([r.pv for r in recs])
         out = np.array([r.output for r in recs])

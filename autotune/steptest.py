@@ -656,6 +656,10 @@ def _judge(o: StepOutcome, spec: Any) -> None:
     o.verdict = judge(o.metrics, spec if spec is not None else StepSpec(), settled=o.settled)
 
 
+def _clamp(u: float, limit: float) -> float:
+    return min(max(u, -limit), limit)
+
+
 def run_step(
     run: Any,
     candidate: Any,
@@ -738,7 +742,7 @@ def run_step(
                 run.event(f"step:{ev.kind}", ev.detail, step_phase=cmd.phase.value)
             if host_pid is not None and u is not None:
                 run.set_output(u)
-                sent = u + off_applied
+                sent = _clamp(u + off_applied, settings.output_limit)
             if cmd.setpoint != sp_cmd:
                 sp_cmd = cmd.setpoint
                 if loop == "device":
@@ -749,7 +753,7 @@ def run_step(
                 run.request(SetOffset(axis, off_cmd))
                 off_applied = off_cmd
                 if u is not None:
-                    sent = u + off_applied
+                    sent = _clamp(u + off_applied, settings.output_limit)
             run.sample_extra(step=cmd.phase.value, offset=off_cmd)
             if on_update is not None and (cmd.events or rec.t - last_report >= 0.1):
                 last_report = rec.t

@@ -16,6 +16,7 @@ Tick k at device time t_k = k * tick_us (microseconds):
      output at 0 until ClearFault.
   4. the applied drive (after actuator saturation) is held by the plant for [t_k, t_k+1)
   5. streaming and k % decimation == 0 -> Sample(t_k, pv_k, applied u_k, setpoint, flags);
+     then the Fault frame of a fault latched in this tick (after the Sample that shows it);
      Stop requests received before this tick are answered with Stopped now (output is zero).
 """
 
@@ -421,13 +422,12 @@ class Device:
         self.host_output = 0.0
         self.pid = None
 
-    def _latch(self, code: m.FaultCode, value: float) -> Outgoing:
+    def _latch(self, code: m.FaultCode, value: float) -> None:
         self.fault = code
         self.fault_value = value
         self.fault_us = self.device_us
         self._go_idle()
         self._log(f"fault {code.name} latched (value {value:g}) at t={self.t:.3f} s")
-        return self._unsolicited(self._fault_msg())
 
     # ------------------------------------------------------------ tick
     def _relay_output(self, pv: float) -> float:
@@ -489,6 +489,7 @@ class Device:
 
         lim = self.limits
         u = 0.0
+        latched = False
         if self.fault is None and self.mode != m.Mode.IDLE and lim is not None:
             if self.mode == m.Mode.HOST:
                 u = self.host_output
@@ -499,13 +500,16 @@ class Device:
             u += self.offset
             silence_ticks = self.k - self.last_rx_k
             if silence_ticks * self.period >= lim.watchdog - 1e-9:
-                out.append(self._latch(m.FaultCode.WATCHDOG, silence_ticks * self.period))
+                self._latch(m.FaultCode.WATCHDOG, silence_ticks * self.period)
+                latched = True
                 u = 0.0
             elif not lim.pv_low <= pv <= lim.pv_high:
-                out.append(self._latch(m.FaultCode.PV_WINDOW, pv))
+                self._latch(m.FaultCode.PV_WINDOW, pv)
+                latched = True
                 u = 0.0
             elif lim.pv_rate_limit > 0.0 and abs(rate) > lim.pv_rate_limit:
-                out.append(self._latch(m.FaultCode.PV_RATE, rate))
+                self._latch(m.FaultCode.PV_RATE, rate)
+                latched = True
                 u = 0.0
         self.clamped = False
         if lim is not None and abs(u) > lim.output_limit:
@@ -525,6 +529,8 @@ class Device:
                 sp = 0.0
             sample = m.Sample(0, self.device_us, float(pv), float(applied), float(sp), self.flags())
             out.append(self._unsolicited(sample))
+        if latched:  # after this tick's Sample, so the host has the evidence first
+            out.append(self._unsolicited(self._fault_msg()))
         for seq in self._pending_stops:
             out.append(Outgoing(m.Stopped(), seq))
         self._pending_stops.clear()

@@ -250,7 +250,7 @@ def test_warning_saturation():
 
 
 def test_warning_oscillation_near_the_noise_and_too_few_cycles():
-    rec, _, _ = batch_run("sopdt T=1", 0.15, cycles=4)
+    rec, _, _ = batch_run("sopdt T=1", 0.25, cycles=4)
     an = analyse_relay(rec.t, rec.pv, rec.out, rec.settings, ts=rec.ts, noise_std=rec.noise)
     assert _warned(an, "times the PV noise")
     assert _warned(an, "steady cycle")

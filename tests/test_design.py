@@ -339,6 +339,9 @@ def test_proposal_as_dict_has_the_result_fields() -> None:
     d = p.as_dict()
     assert {"name", "kp", "ki", "kd", "predicted", "standard", "per_tick"} <= set(d)
     assert d["per_tick"]["ki_ts"] == pytest.approx(p.gains.ki * 0.005)
+    # without a loop period the predictions use Tu/200 and no per-tick values are offered
+    q = design.propose(None, None, plant)[0]
+    assert q.predicted["ts_assumed"] and "per_tick" not in q.as_dict()
 
 
 @pytest.mark.parametrize("plant", [BATCH[0], BATCH[3], BATCH[5], BATCH[6]])
@@ -364,3 +367,15 @@ def test_grid_nyquist_count_agrees_with_python_control_poles(plant: DelayedTF) -
                 assert robust.is_stable(plant, g) == ref
                 seen.add(ref)
     assert seen == {True, False}  # both outcomes exercised
+
+
+def test_unstable_model_still_gets_proposals() -> None:
+    # An open-loop unstable model (pole at +0.5, dead time 1): no PI reaches Ms 1.4 (the
+    # classical limit: a dead time beyond about the unstable time constant), so the robust
+    # designs are dropped, the rules remain and exactly one default is named.
+    plant = DelayedTF((1.0,), (2.0, -1.0), 1.0)
+    with pytest.raises(ValueError):
+        robust.robust_pi(plant)
+    props = design.propose(1.5, 4.0, plant)  # ultimate point as a relay might report it
+    assert props and sum(p.default for p in props) == 1
+    assert all(not p.name.startswith("robust") for p in props)

@@ -346,6 +346,7 @@ def test_pv_window_trip():
     host.armed(pv_low=-1.0, pv_high=1.0)
     _scripted(host.dev, [0.0, 0.5, 0.9, 1.2, 1.5, 1.5])
     host.one(m.SetOutput(0, 5.0))
+    host.one(m.Stream(0, 1, 1))
     out = host.tick(3)
     assert of_type(out, m.Fault) == []
     out = host.tick()
@@ -353,6 +354,11 @@ def test_pv_window_trip():
     assert len(f) == 1 and f[0].msg.code == m.FaultCode.PV_WINDOW
     assert f[0].msg.value == pytest.approx(1.2)
     assert host.dev.applied == 0.0  # zero in the very tick that saw the violation
+    # the tick's Sample (offending PV, zero output) goes out before the Fault, in seq order
+    [s] = of_type(out, m.Sample)
+    assert s.msg.pv == pytest.approx(1.2) and s.msg.output == 0.0
+    assert s.msg.flags & m.FLAG_FAULT
+    assert out.index(s) < out.index(f[0]) and f[0].seq == s.seq + 1
 
 
 def test_pv_rate_trip_and_single_spike_ignored():

@@ -8,6 +8,7 @@ exactly as against a real board on a serial port. `--yes` runs it unattended.
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from autotune.errors import UserError
@@ -102,4 +103,7 @@ def run(args: argparse.Namespace) -> int:
                            device=f"simulated {args.plant} board",
                            settle_band=SETTLE_BAND.get(args.plant),
                            speed=args.speed, plant=args.plant, seed=args.seed)
-    return run_job(cfg, settings)
+    result = run_job(cfg, settings)
+    if result.exit_code != 0:
+        print(f"autotune demo: {result.message}", file=sys.stderr)
+    return result.exit_code

@@ -176,13 +176,14 @@ def choose_gains(args: argparse.Namespace) -> Choice:
         for key in ("deriv_filter_n", "setpoint_weight", "tracking_time"):
             if isinstance(prop.get(key), int | float) and not isinstance(prop.get(key), bool):
                 extra[key] = float(prop[key])
-    if args.kp is not None:
-        if args.from_result is not None:
-            name = f"{name} (edited)" if (args.kp, args.ki, args.kd) != (kp, ki, kd) else name
-            predicted = {} if name.endswith("(edited)") else predicted
-        kp = args.kp
-        ki = args.ki if args.ki is not None else (ki if args.from_result else 0.0)
-        kd = args.kd if args.kd is not None else (kd if args.from_result else 0.0)
+    if args.from_result is None:
+        kp, ki, kd = args.kp, args.ki or 0.0, args.kd or 0.0
+    elif (args.kp, args.ki, args.kd) != (None, None, None):
+        given = (args.kp, args.ki, args.kd)
+        kp, ki, kd = (v if v is not None else old for v, old in zip(given, (kp, ki, kd),
+                                                                     strict=True))
+        if (kp, ki, kd) != (prop.get("kp"), prop.get("ki", 0.0), prop.get("kd", 0.0)):
+            name, predicted = f"{name} (edited)", {}
     assert kp is not None and ki is not None and kd is not None
     for what, v in (("kp", kp), ("ki", ki), ("kd", kd)):
         if not math.isfinite(v):

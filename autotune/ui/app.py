@@ -376,6 +376,7 @@ class BenchJob:
         run = self.tune.run if self.tune is not None else None
         view = self.start_view()
         term = self.term
+        term.drain()  # keys typed before this screen was shown do not count
         term.show(lambda w, h: screens.start_screen(view, w, h), "start")
         if term.live is None:
             term.lines(plain.start_lines(view))
@@ -383,7 +384,6 @@ class BenchJob:
             term.line("--yes given: starting without asking.")
             return True
         term.line("Press Y when every line above is true; a stop key leaves.")
-        term.drain()
         key = term.wait_key(("y", "Y"))
         if key == ABORT:
             return False
@@ -644,11 +644,14 @@ class BenchJob:
 
         pred_t, pred_y = self.predicted_response(outcome, cand, t1 - t0)
         note = ""
+        verdict = outcome.verdict
         if reason not in ("completed",):
+            # a step cut short proves nothing: figures shown, no verdict, nothing to accept
+            verdict = None
             note = f"stopped: {message}" + (" (device confirmed zero output)" if confirmed
-                                            else "")
+                                            else " (zero output NOT confirmed: cut power)")
         return StepView(cand.name, g.kp, g.ki, g.kd, t, pick(outcome.pv), pick(outcome.sp),
-                        pick(outcome.out), pred_t, pred_y, tuple(outcome.rows), outcome.verdict,
+                        pick(outcome.out), pred_t, pred_y, tuple(outcome.rows), verdict,
                         detune=0.7, message=note)
 
     def predicted_response(self, outcome: Any, cand: Any, t_end: float
@@ -674,7 +677,8 @@ class BenchJob:
     def decide(self, attempt: StepAttempt) -> str:
         """The step-result screen: 'accept', 'detune', 'other', 'repeat' or ABORT."""
         term = self.term
-        v = attempt.outcome.verdict if attempt.outcome is not None else None
+        v = attempt.view.verdict
+        term.drain()  # the keys of the step run were handled there (abort) or do not count
         term.show(lambda w, h: screens.step_screen(attempt.view, w, h), "step")
         if term.live is None:
             term.lines(plain.step_lines(attempt.view))
@@ -684,7 +688,6 @@ class BenchJob:
             if len(self.attempts) >= self.settings.max_steps:
                 return ABORT
             return "other"  # unattended: the next proposal in line (see next_unattended)
-        term.drain()
         while True:
             key = term.wait_key(("a", "d", "o", "r"))
             if key == ABORT:
@@ -751,8 +754,6 @@ class BenchJob:
                                  list(self.files))
             while True:
                 attempt = self.run_one_step()
-                if attempt.reason == "aborted":
-                    self.term.show(lambda w, h, a=attempt: screens.step_screen(a.view, w, h))
                 action = self.decide(attempt)
                 if action == "accept":
                     return self.accept(attempt)
@@ -801,8 +802,9 @@ class _DictProposal:
 
 
 def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,
-            stdin: Any = None, term: Terminal | None = None) -> int:
-    """Run a bench job on the terminal (or in plain lines) and print the finish screen."""
+            stdin: Any = None, term: Terminal | None = None) -> JobResult:
+    """Run a bench job on the terminal (or in plain lines), print the finish screen and
+    return how it ended (`exit_code`, one-line `message`)."""
     term = term or Terminal(console, stdin)
     job = BenchJob(cfg, settings, term)
     with term:
@@ -820,7 +822,7 @@ def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,
         term.console.print(screens.finish_screen(view, term.size()[0]))
     else:
         term.lines(plain.finish_lines(view))
-    return result.exit_code
+    return result
 
 
 __all__ = ["ABORT", "BenchJob", "JobResult", "JobSettings", "KeyRouter", "Terminal",

@@ -60,5 +60,5 @@ def record_demo(cfg: object, settings: JobSettings, width: int = 100, height: in
     term = Terminal(console, stdin=io.StringIO(), rich=True)
     term.captured = {}
     settings.yes = True
-    code = run_job(cfg, settings, term=term)
-    return code, term.captured
+    result = run_job(cfg, settings, term=term)
+    return result.exit_code, term.captured

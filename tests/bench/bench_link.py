@@ -18,6 +18,7 @@ import statistics
 import sys
 import threading
 import time
+from typing import Any
 
 from autotune.simdevice import start_sim_device
 from protocol import messages as m
@@ -61,7 +62,7 @@ def bench_throughput(url: str, baud: int, seconds: float, threads: int) -> dict[
         }
 
 
-def bench_turnaround(url: str, baud: int, seconds: float, in_reader: bool) -> dict[str, float]:
+def bench_turnaround(url: str, baud: int, seconds: float, in_reader: bool) -> dict[str, Any]:
     """Host loop; ``in_reader``: answer in the reader thread (set_sample_handler), else from
     a consumer thread through the sample queue (next_sample)."""
     with Link.open(url, baudrate=baud, silence_timeout=None) as link:
@@ -95,7 +96,11 @@ def bench_turnaround(url: str, baud: int, seconds: float, in_reader: bool) -> di
             link.set_sample_handler(None)
             stopped = link.stop()
         stats = link.stats()
+        faults = sorted({f.name for f in link.poll_faults()})
+        nak = link.last_nak
         return {
+            "faults": ",".join(faults) or "none",  # type: ignore[dict-item]
+            "last_nak": "none" if nak is None else str(nak[1]),  # type: ignore[dict-item]
             "samples": float(len(turnaround)),
             "p50_ms": 1e3 * statistics.median(turnaround),
             "p99_ms": 1e3 * percentile(turnaround, 99),
@@ -131,7 +136,8 @@ def main() -> int:
               f"{tu['samples']:.0f} samples at {100 * a.speed:g} samples/s: p50 "
               f"{tu['p50_ms']:.3f} ms, p99 {tu['p99_ms']:.3f} ms (goal < 2 ms), max "
               f"{tu['max_ms']:.3f} ms, {tu['over_2ms']:.0f} over 2 ms; sequence gaps {tu['seq_gaps']:.0f}, naks "
-              f"{tu['naks']:.0f}, stop confirmed {bool(tu['stopped'])}")
+              f"{tu['naks']:.0f}, stop confirmed {bool(tu['stopped'])}, faults {tu['faults']}"
+              + (f", last nak {tu['last_nak']}" if tu["naks"] else ""))
     return 0
 
 

@@ -86,7 +86,7 @@ def test_from_result_and_automatic_detune(plant_file: str, config_file: str,
     out = tmp_path / "run"
     p = _step("--port", "sim", "--config", config_file, "--plant", plant_file, "--speed", "5",
               "--yes", "--out", str(out), "--from-result", str(tmp_path / "tune.json"), "--size", "1", "--hold", "0.2",
-              "--timeout", "4", "--output-limit", "60", "--max-overshoot", "5", "--retries", "3")
+              "--timeout", "4", "--output-limit", "60", "--max-overshoot", "5", "--retries", "2")
     res = json.loads((out / "result.json").read_text())
     attempts = res["attempts"]
     assert attempts[0]["proposal"] == "zn-pi"

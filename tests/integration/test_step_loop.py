@@ -99,11 +99,25 @@ def test_device_pid_step_matches_python_control(plant_file: str, tmp_path: Path,
 
 
 def test_host_loop_step_matches_python_control(plant_file: str, tmp_path: Path) -> None:
-    """Host loop: the output computed from sample k is applied at tick k+1 (one tick more)."""
+    """Host loop: the output computed from sample k is applied at tick k+1 (one tick more).
+
+    That holds while the host answers each sample within one tick (10 ms of wall clock here);
+    the runner counts the samples where the device applied an older output (`late_outputs`).
+    A run where the host was late on more than 5% of the samples (a busy test machine) is
+    repeated, up to three runs; any run on time must match.
+    """
     size = 1.5
     plan = StepPlan(size=size, hold_time=0.2, timeout=4.0)
-    (o,), _ = _run(plant_file, tmp_path, [StepCandidate("manual", PidGains(2.0, 10.0, 0.0))],
-                   plan, "host", speed=1.0)
+    lates = []
+    for attempt in range(3):
+        (o,), _ = _run(plant_file, tmp_path / str(attempt),
+                       [StepCandidate("manual", PidGains(2.0, 10.0, 0.0))], plan, "host",
+                       speed=1.0)
+        lates.append(o.late_outputs)
+        if o.late_outputs <= 0.05 * len(o.t):
+            break
+    else:
+        pytest.fail(f"the host was late too often in every run (late outputs: {lates})")
     err = _compare_with_reference(o, size, extra_ticks=1)
     assert err <= 0.03 * size, f"max deviation {err:.4g} from python-control's sampled loop"
 

@@ -111,13 +111,18 @@ def test_ideal_relay_limit_cycle_matches_fopdt_formula(tmp_path: Path, loop: str
         "connection": {"loop": loop},
         "safety": {"output_limit": 10.0, "pv_window": 8.0, "max_duration": 120.0},
         "relay": {"start_amplitude": d, "target_amplitude": 3.0, "hysteresis": 0.0,
-                  "adapt_amplitude": False, "balance_bias": False, "max_cycles": 10,
-                  "min_cycles": 8, "converge_tol": 0.02, "max_time": 60.0},
+                  "adapt_amplitude": False, "balance_bias": False, "max_cycles": 12,
+                  # host: always run all 12 cycles, so that a few late answers still leave
+                  # enough clean cycles
+                  "min_cycles": 8 if loop == "device" else 12, "converge_tol": 0.02,
+                  "max_time": 60.0},
         "prechecks": {"rest_time": 0.3, "pulse_size": 2.0},
     }
     res = tune(tmp_path, "sim", cfg, speed=speed, plant=plant)
-    assert res.exit_code == EXIT_OK, res.message
-    assert res.reason == "converged"
+    # a host answering late now and then (busy machine) may keep the period from settling
+    # within the tolerance; the run then ends on max_cycles, which is fine for this test
+    ok = ("converged",) if loop == "device" else ("converged", "max_cycles")
+    assert res.reason in ok, res.message
     assert res.stop_confirmed is True
     assert res.session_path is not None
     r = relay_samples(res.session_path)
@@ -126,21 +131,22 @@ def test_ideal_relay_limit_cycle_matches_fopdt_formula(tmp_path: Path, loop: str
     assert set(np.unique(out)) == {d, -d}  # an ideal relay: two levels only
     _, lags = switch_lags(pv, out)
     assert np.all(lags >= nominal_lag)  # never earlier than the loop allows
-    period, amp, used = limit_cycle(t, pv, out, skip=3, nominal_lag=nominal_lag)
+    period, amp, used = limit_cycle(t, pv, out, skip=2, nominal_lag=nominal_lag)
     assert used >= 3, f"too few clean cycles (switch lags in ticks: {lags.tolist()})"
     l_eff = L + extra_ticks * TICK
     a_exact = K * d * (1 - math.exp(-l_eff / T))
     p_exact = 2 * l_eff + 2 * T * math.log(2 - math.exp(-l_eff / T))
     print(f"{loop} loop: amplitude {amp:.5g} (formula {a_exact:.5g}, error "
           f"{100 * (amp / a_exact - 1):+.2f}%), period {period:.5g} s (formula {p_exact:.5g}, "
-          f"error {100 * (period / p_exact - 1):+.2f}%), {used} cycles")
+          f"error {100 * (period / p_exact - 1):+.2f}%), {used} cycles, switch lags "
+          f"{lags.tolist()}")
     assert amp == pytest.approx(a_exact, rel=0.01)
     assert period == pytest.approx(p_exact, rel=0.01)
     # result.json was written per the contract
     result = read_result(res.result_path)
     assert result["loop_mode"] == loop
     assert result["relay"]["amplitude"] == d and result["relay"]["hysteresis"] == 0.0
-    assert result["end_reason"] == "converged"
+    assert result["end_reason"] == res.reason
 
 
 def test_reversed_sign_stops_at_direction_check(tmp_path: Path) -> None:
