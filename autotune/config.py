@@ -68,6 +68,10 @@ class SafetyConfig:
     watchdog: the device zeroes its output when the host is silent this long (s, device time).
     max_sample_gap: a gap between consecutive samples longer than this stops the run (s, device
         time).
+    max_frame_loss: the run stops with fault:link_quality when more than this fraction (0..1] of
+        the sample frames is lost, or of the frames received is rejected (CRC, framing), over
+        the last `frame_loss_window` s; 1 = off. Bad frames are never acted on either way.
+    frame_loss_window: the window of the frame-loss check (s, device time).
     """
 
     output_limit: float = 30.0
@@ -76,6 +80,8 @@ class SafetyConfig:
     max_duration: float = 300.0
     watchdog: float = 0.5
     max_sample_gap: float = 0.25
+    max_frame_loss: float = 0.5
+    frame_loss_window: float = 2.0
 
 
 @dataclass(frozen=True)
@@ -97,6 +103,8 @@ class RelayConfig:
     stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot rise.
     min_cycles: steady cycles (after the last settings change) needed before convergence can be
         declared; the last three of them must agree within converge_tol.
+    confirm_samples: host loop: a switch needs this many consecutive samples beyond the
+        hysteresis (2 rejects one-sample PV spikes at the cost of one sample of delay); 1 = off.
     """
 
     start_amplitude: float | None = None
@@ -112,6 +120,7 @@ class RelayConfig:
     balance_bias: bool = True
     stall_time: float = 5.0
     min_cycles: int = 5
+    confirm_samples: int = 1
 
 
 @dataclass(frozen=True)
@@ -121,14 +130,17 @@ class PrecheckConfig:
     rest_time: output held at the bias this long to measure noise, drift, resolution (s).
     pulse_size: size of the direction pulse (output units); None = the relay start amplitude.
     pulse_timeout: the PV must respond to the pulse within this long (s).
-    breakaway: run a slow output ramp first to measure the deadband.
+    breakaway: run two slow output ramps first to measure the deadband (on by default: a few
+        seconds of motion, and an unmeasured dead zone inflates the ultimate gain by
+        d / (d - deadband); the relay then starts at twice the deadband at least and the
+        analysis works on the output minus the dead zone). Off: the deadband counts as 0.
     breakaway_rate: ramp rate of the breakaway test (output units per s).
     """
 
     rest_time: float = 1.0
     pulse_size: float | None = None
     pulse_timeout: float = 2.0
-    breakaway: bool = False
+    breakaway: bool = True
     breakaway_rate: float = 5.0
 
 
@@ -366,6 +378,12 @@ def validate(cfg: Config, source: str | None = None) -> None:
     if s.watchdog < 0.01:
         raise ConfigError(src, "safety.watchdog", f"must be at least 0.01 s, got {s.watchdog}")
     _positive(src, "safety.max_sample_gap", s.max_sample_gap)
+    if not 0.0 < s.max_frame_loss <= 1.0:
+        raise ConfigError(src, "safety.max_frame_loss",
+                          f"must be a fraction in (0, 1], got {s.max_frame_loss}")
+    _positive(src, "safety.frame_loss_window", s.frame_loss_window)
+    if not 1 <= r.confirm_samples <= 10:
+        raise ConfigError(src, "relay.confirm_samples", f"must be 1..10, got {r.confirm_samples}")
     _positive(src, "relay.start_amplitude", r.start_amplitude, optional=True)
     _positive(src, "relay.target_amplitude", r.target_amplitude)
     _positive(src, "relay.hysteresis", r.hysteresis, allow_zero=True, optional=True)

@@ -6,15 +6,20 @@ held over [t_k, t_k + ts) (zero-order hold, as the device applies it) and the re
 the continuous plant itself; the hold's delay (about ts/2) is *not* part of it (see
 `autotune.analysis`, `delays_included`).
 
-Candidates (DelayedTF constructors in autotune.lti):
+Candidates (tried in this order; DelayedTF constructors in autotune.lti where they exist):
   "fopdt"          K exp(-L s) / (T s + 1)
-  "sopdt"          K exp(-L s) / ((T1 s + 1)(T2 s + 1))
   "integrator_lag" Kv exp(-L s) / (s (T s + 1))
-The gain, an output offset and (integrating models only) an input offset enter linearly and are
-solved by linear least squares inside the nonlinear search over the time constants and the dead
-time (variable projection). The winner has the lowest Akaike criterion n ln(RSS/n) + 2 p, which
-for the record lengths of a relay experiment is "best residual wins" unless two candidates are
-practically tied, when the simpler one is kept.
+  "sopdt"          K exp(-L s) / ((T1 s + 1)(T2 s + 1))
+  "lag_n"          K (Tz s + 1) exp(-L s) / (T s + 1)^n, n = 2..8 (Tz < 0: a right-half-plane
+                   zero, non-minimum phase); covers high-order lags and inverse responses
+  "sopdt_zero"     K (Tz s + 1) exp(-L s) / ((T1 s + 1)(T2 s + 1)) (optional, not by default)
+The gain, an output offset, the zero, (integrating models) an input offset and, for a record
+that does not start at rest, the free response of the unknown initial state all enter
+linearly and are solved by linear least squares inside the nonlinear search over the time
+constants and the dead time (variable projection). The winner has the lowest Akaike criterion
+n ln(RSS/n) + 2 p, which for the record lengths of a relay experiment is "best residual wins"
+unless two candidates are practically tied, when the simpler one is kept; the search stops
+early once a candidate's residual is down at the noise floor.
 """
 
 from __future__ import annotations
@@ -24,7 +29,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import linalg, optimize, signal
+from scipy import linalg, optimize, signal, special
 
 from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
 
@@ -81,6 +86,24 @@ def _zoh(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray
     block[:n, n:] = b * h
     e = linalg.expm(block)
     return e[:n, :n], e[:n, n:]
+
+
+def _zoh_equal_lags(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
+    """Closed-form ZOH of the cascade of n equal lags 1/(T s + 1) (a, b as in cascade_states).
+
+    e^{A h}[i, k] = e^{-h/T} (h/T)^(i-k) / (i-k)!; Gamma[i] = P(i + 1, h/T), the regularised
+    lower incomplete gamma function.
+    """
+    n = a.shape[0]
+    x = -a[0, 0] * h  # h / T
+    j = np.arange(n)
+    coef = np.exp(-x) * x**j / special.factorial(j)
+    phi = np.zeros((n, n))
+    for d in range(n):
+        idx = np.arange(d, n)
+        phi[idx, idx - d] = coef[d]
+    gam = special.gammainc(j + 1, x).reshape(n, 1)
+    return phi, gam
 
 
 def sampled_response(tf: DelayedTF, u: np.ndarray, dt: float) -> np.ndarray:
@@ -156,8 +179,9 @@ def cascade_states(time_constants: Sequence[float], delay: float, u: np.ndarray,
     if m:
         u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
     u_early = np.concatenate([[0.0], u[:-1]])
-    phi1, gam1 = _zoh(a, b, frac) if frac > 0 else (np.eye(n), np.zeros((n, 1)))
-    phi2, gam2 = _zoh(a, b, dt - frac)
+    zoh = _zoh_equal_lags if len(set(time_constants)) == 1 else _zoh
+    phi1, gam1 = zoh(a, b, frac) if frac > 0 else (np.eye(n), np.zeros((n, 1)))
+    phi2, gam2 = zoh(a, b, dt - frac)
     phi = np.tril(phi2 @ phi1)
     g_e = (phi2 @ gam1)[:, 0]
     g_l = gam2[:, 0]

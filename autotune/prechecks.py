@@ -10,8 +10,9 @@ direction expected for a positive output step (the runner passes +1 after applyi
    max(3 x noise, 2 x resolution) (common practice, no source).
 2. Direction: one small output pulse; the PV must move the expected way by more than 5 x noise
    within the timeout.
-3. Breakaway (optional): a slow output ramp; the output at which the PV first moves beyond the
-   noise estimates the deadband (output units).
+3. Breakaway: a slow output ramp; the output at which the PV first moves beyond the noise bounds
+   the deadband (output units) from above (`assess_breakaway`); two ramps at different rates
+   measure it exactly, lag and dead time cancelling (`deadband_from_two_ramps`).
 """
 
 from __future__ import annotations
@@ -35,6 +36,9 @@ __all__ = [
     "assess_rest",
     "breakaway_ramp",
     "breakaway_ramp_duration",
+    "crossing_time",
+    "deadband_from_two_ramps",
+    "TwoRampReport",
     "direction_pulse",
     "smallest_step",
 ]
@@ -287,3 +291,78 @@ def breakaway_ramp_duration(rate: float, max_step: float) -> float:
     if not rate > 0:
         raise ValueError("ramp rate must be > 0")
     return max_step / rate
+
+
+# ---------------------------------------------------------------------------------- two ramps
+def crossing_time(t: ArrayLike, dev: ArrayLike, level: float) -> float | None:
+    """First time (s) the running maximum of `dev` (median of three against spikes) reaches
+    `level` (PV units), linearly interpolated between samples; None if it never does."""
+    ta, da = _arrays(t, dev)
+    if ta.size < 2:
+        return None
+    env = np.maximum.accumulate(np.where(np.isfinite(da), _median3(da), -np.inf))
+    k = np.nonzero(env >= level)[0]
+    if k.size == 0 or k[0] == 0:
+        return None if k.size == 0 else float(ta[0])
+    i = int(k[0])
+    lo, hi = env[i - 1], env[i]
+    frac = (level - lo) / (hi - lo) if hi > lo else 1.0
+    return float(ta[i - 1] + frac * (ta[i] - ta[i - 1]))
+
+
+@dataclass(frozen=True)
+class TwoRampReport:
+    """deadband (output units, None when not measurable), its spread (output units: half the
+    range of the middle half of the per-level estimates), the per-level estimates, the levels
+    used (PV units, of the first ramp) and a message."""
+
+    deadband: float | None
+    spread: float
+    estimates: tuple[float, ...]
+    levels: tuple[float, ...]
+    message: str
+
+    def as_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+def deadband_from_two_ramps(t_a: ArrayLike, dev_a: ArrayLike, rate_a: float,
+                            t_b: ArrayLike, dev_b: ArrayLike, rate_b: float, *,
+                            level_min: float, level_max: float,
+                            n_levels: int = 9) -> TwoRampReport:
+    """Deadband from two output ramps at different rates (exact for a linear plant behind a
+    continuous dead zone).
+
+    Ramp k starts at t = 0 (each `t_*` counts from its ramp's start, s) and rises at `rate_k`
+    (output units/s); `dev_k` is the PV motion in the ramp's direction from its baseline (PV
+    units). Past the dead zone of half-width D the plant sees rate_k (t - D/rate_k), so its
+    response is rate_k Y(t - D/rate_k) with Y the plant's unit-ramp response, whatever its lag,
+    dead time or order. Ramp a reaches the level h when ramp b reaches h rate_b/rate_a after the
+    same time past breakaway, hence D = (t_a(h) - t_b(h rate_b/rate_a)) / (1/rate_a - 1/rate_b)
+    for every level h (analytic; the estimate is the median over `n_levels` levels between
+    level_min and level_max, PV units of ramp a).
+    """
+    if not (rate_a > 0 and rate_b > 0 and rate_a != rate_b):
+        raise ValueError("two different positive ramp rates are needed")
+    if not 0 < level_min < level_max:
+        raise ValueError("need 0 < level_min < level_max")
+    ratio = rate_b / rate_a
+    inv = 1.0 / rate_a - 1.0 / rate_b
+    levels = np.linspace(level_min, level_max, max(2, n_levels))
+    est: list[float] = []
+    used: list[float] = []
+    for h in levels:
+        ta = crossing_time(t_a, dev_a, float(h))
+        tb = crossing_time(t_b, dev_b, float(h) * ratio)
+        if ta is None or tb is None:
+            continue
+        est.append((ta - tb) / inv)
+        used.append(float(h))
+    if len(est) < 2:
+        return TwoRampReport(None, math.inf, tuple(est), tuple(used),
+                             "the PV did not move far enough during the breakaway ramps: check "
+                             "power and wiring, or raise the ramps' end value")
+    arr = np.array(est)
+    d = max(0.0, float(np.median(arr)))
+    q1, q3 = np.percentile(arr, [25, 75])
+    return TwoRampReport(d, float(0.5 * (q3 - q1)), tuple(est), tuple(used), "")

@@ -44,6 +44,10 @@ __all__ = [
     "RelayStep",
     "clamp",
     "default_converged",
+    "mean_cycle",
+    "measurement_tolerances",
+    "steady_converged",
+    "switch_jitter",
 ]
 
 HIGH = 1
@@ -258,6 +262,86 @@ def default_converged(cycles: Sequence[CycleFigures], tol: float = 0.02) -> bool
     return close(a.period, b.period) and close(a.amplitude_pp, b.amplitude_pp)
 
 
+def switch_jitter(amplitude: float, period: float, hysteresis: float = 0.0,
+                  noise_std: float = 0.0, resolution: float = 0.0, tick: float = 0.0) -> float:
+    """Standard deviation (s) of one relay switching instant.
+
+    The relay switches when the PV crosses centre -/+ hysteresis; PV noise (std `noise_std`) and
+    quantisation (step `resolution`, uniform error of std resolution/sqrt(12)), divided by the
+    PV slope there, move that instant, and the tick (s) rounds it (uniform, std tick/sqrt(12)).
+    The slope is that of a sinusoid of peak `amplitude` and `period` at the switching level:
+    (2 pi / period) sqrt(amplitude^2 - hysteresis^2), floored at a third of its peak value
+    (common practice, no source). amplitude and hysteresis in PV units, period in s.
+    """
+    quant = tick * tick / 12.0
+    if not (amplitude > 0 and period > 0):
+        return math.sqrt(quant)
+    level = max(amplitude * amplitude - hysteresis * hysteresis, (amplitude / 3.0) ** 2)
+    slope = 2.0 * math.pi / period * math.sqrt(level)
+    pv_var = noise_std * noise_std + resolution * resolution / 12.0
+    return math.sqrt(pv_var / (slope * slope) + quant)
+
+
+def measurement_tolerances(period: float, amplitude_pp: float, *, hysteresis: float = 0.0,
+                           tick: float = 0.0, noise_std: float = 0.0,
+                           resolution: float = 0.0) -> tuple[float, float]:
+    """(period, amplitude) relative differences that two readings of a steady oscillation can
+    show from the measurement alone (period s, amplitude_pp PV units peak to peak).
+
+    Period: 3 x the standard deviation of the difference of two 2-cycle mean periods, each period
+    being the difference of two switching instants (`switch_jitter`), and at least one tick.
+    Amplitude: a peak-to-peak reading is off by up to one quantisation step and 2 x noise.
+    """
+    if not (period > 0 and amplitude_pp > 0):
+        return math.inf, math.inf
+    sd = switch_jitter(0.5 * amplitude_pp, period, hysteresis, noise_std, resolution, tick)
+    tol_p = max(3.0 * math.sqrt(2.0) * sd, tick) / period
+    tol_a = (resolution + 2.0 * noise_std) / amplitude_pp
+    return tol_p, tol_a
+
+
+def steady_converged(cycles: Sequence[CycleFigures], tol: float = 0.02, *, min_cycles: int = 4,
+                     hysteresis: float = 0.0, tick: float = 0.0, noise_std: float = 0.0,
+                     resolution: float = 0.0) -> bool:
+    """Has the relay oscillation settled? (cycles with `period` s and `amplitude_pp` PV units).
+
+    At least max(min_cycles, 4) cycles, and the mean period and mean peak-to-peak amplitude of
+    the last two cycles agree with those of the two before within `tol` (relative), widened to
+    what the tick, PV noise and PV resolution can resolve (`measurement_tolerances`; common
+    practice, no source). The means of pairs are compared through
+    autotune.analysis.converged_cycles when it is available, with the wider of the two
+    tolerances applied to each quantity in turn.
+    """
+    if len(cycles) < max(min_cycles, 4):
+        return False
+    a, b = cycles[-4:-2], cycles[-2:]
+    pa = sum(c.period for c in a) / 2
+    pb = sum(c.period for c in b) / 2
+    aa = sum(c.amplitude_pp for c in a) / 2
+    ab = sum(c.amplitude_pp for c in b) / 2
+    if min(pa, pb, aa, ab) <= 0:
+        return False
+    tol_p, tol_a = measurement_tolerances(min(pa, pb), min(aa, ab), hysteresis=hysteresis,
+                                          tick=tick, noise_std=noise_std,
+                                          resolution=resolution)
+    tol_p, tol_a = max(tol, tol_p), max(tol, tol_a)
+    return abs(pa - pb) <= tol_p * max(pa, pb) and abs(aa - ab) <= tol_a * max(aa, ab)
+
+
+def mean_cycle(cycles: Sequence[CycleFigures]) -> CycleFigures:
+    """One CycleFigures holding the means of `cycles` (the last one's index, start, d, bias)."""
+    n = len(cycles)
+    last = cycles[-1]
+
+    def m(name: str) -> float:
+        return sum(getattr(c, name) for c in cycles) / n
+
+    return replace(last, t_start=cycles[0].t_start, period=m("period"),
+                   amplitude_pp=m("amplitude_pp"), high_time=m("high_time"),
+                   low_time=m("low_time"), mean_pv=m("mean_pv"), pv_max=m("pv_max"),
+                   pv_min=m("pv_min"), samples=round(m("samples")))
+
+
 # ---------------------------------------------------------------------------------- plan
 @dataclass(frozen=True)
 class RelayPlan:
@@ -280,6 +364,18 @@ class RelayPlan:
     stall_time: if the relay has not switched for this long (s), raise d (or end with
         "no_oscillation" when it cannot rise); None: off.
     max_adjustments: after this many settings changes the settings stay as they are.
+    deadband: actuator dead zone (output units, half-width, as measured by the breakaway
+        precheck): the plant sees a relay of d - deadband, so the adaptation predicts the PV
+        amplitude as proportional to d - deadband and the bias estimate scales with it.
+    tick: sample period (s); pv_noise: PV noise standard deviation and pv_resolution: PV
+        quantisation step (PV units). They set what the measurement can resolve: bias
+        balancing acts only on a half-period mismatch larger than the switching jitter they
+        cause, and the amplitude band is widened to the peak-reading error (0 = ideal).
+
+    Adjustments are judged on the mean of the cycles completed since the last change (at least
+    settle_cycles of them; the first one, still carrying the transient, left out). The bias correction is
+    bias_gain x (the integrating-loop estimate of the bias error) and the gain halves each time
+    the mismatch changes sign, so the bias cannot swing ever wider (common practice, no source).
     """
 
     target_amplitude: float
@@ -292,7 +388,7 @@ class RelayPlan:
     adapt_amplitude: bool = True
     balance_bias: bool = True
     bias_tolerance: float = 0.03
-    bias_gain: float = 1.0
+    bias_gain: float = 0.8
     max_bias_step: float = 0.3
     settle_cycles: int = 2
     max_cycles: int = 30
@@ -300,6 +396,10 @@ class RelayPlan:
     converge_tol: float = 0.02
     stall_time: float | None = None
     max_adjustments: int = 12
+    deadband: float = 0.0
+    tick: float = 0.0
+    pv_noise: float = 0.0
+    pv_resolution: float = 0.0
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.target_amplitude) and self.target_amplitude > 0):
@@ -319,6 +419,10 @@ class RelayPlan:
                      "max_bias_step"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be > 0")
+        for name in ("deadband", "tick", "pv_noise", "pv_resolution"):
+            v = getattr(self, name)
+            if not (math.isfinite(v) and v >= 0):
+                raise ValueError(f"{name} must be a finite number >= 0, got {v!r}")
         if self.settle_cycles < 1 or self.max_cycles < 1 or self.max_adjustments < 0:
             raise ValueError("settle_cycles and max_cycles must be >= 1, max_adjustments >= 0")
 
@@ -418,6 +522,8 @@ class RelayExperiment:
         self._acc: _CycleAccumulator | None = None
         self._history: list[tuple[float, float, float]] = []  # (d, bias, a) of judged cycles
         self._capped_reported = False
+        self._bias_gain = plan.bias_gain  # halves whenever the mismatch changes sign
+        self._bias_dir = 0  # sign of the last bias change
         self._step_events: list[RelayEvent] = []
         self._new_settings: RelaySettings | None = None
 
@@ -645,11 +751,19 @@ class RelayExperiment:
                                               cyc.low_time, cyc.mean_pv)):
             return
         s = self.relay.settings
-        self._history.append((s.amplitude, s.bias, cyc.amplitude))
+        # the first cycle after a change still carries the plant's transient: left out
+        judged = [c for c in (settled[1:] if len(settled) > 1 else settled)
+                  if all(math.isfinite(x) for x in (c.period, c.amplitude_pp, c.high_time,
+                                                    c.low_time, c.mean_pv))]
+        avg = mean_cycle(judged)
+        if self._history and self._history[-1][:2] == (s.amplitude, s.bias):
+            self._history[-1] = (s.amplitude, s.bias, avg.amplitude)  # refined by one more cycle
+        else:
+            self._history.append((s.amplitude, s.bias, avg.amplitude))
         new = s
         if self.adjustments < self.plan.max_adjustments:
-            new = self._balance_bias(t, cyc, new)
-            new = self._adapt_amplitude(t, cyc, new)
+            new = self._balance_bias(t, judged, new)
+            new = self._adapt_amplitude(t, avg, new, len(judged))
         if new != s:
             self._issue(t, new)
             return
@@ -669,37 +783,63 @@ class RelayExperiment:
             ceiling = min(ceiling, self.plan.max_amplitude)
         return ceiling
 
-    def _balance_bias(self, t: float, cyc: CycleFigures, s: RelaySettings) -> RelaySettings:
-        """Proportional bias correction from the half-period mismatch (common practice, no source).
+    def _balance_bias(self, t: float, cycles: Sequence[CycleFigures],
+                      s: RelaySettings) -> RelaySettings:
+        """Bias correction from the mean half-period mismatch of `cycles` (the settled ones).
 
-        With an integrating approximation the half-periods go as 1/(d + delta) and 1/(d - delta)
-        for a bias error delta, so (high - low)/(high + low) = -delta/d: a longer high half means
-        the bias is too low.
+        With an integrating approximation the half-periods go as 1/(d' + delta) and
+        1/(d' - delta) for a bias error delta and an effective amplitude d' = d - deadband, so
+        r = (high - low)/(high + low) = -delta/d': a longer high half means the bias is too low
+        (common practice, no source). The bias moves only when the mean r is larger than the
+        tolerance, than 3 standard errors of the switching jitter (`switch_jitter`) and, with 3
+        cycles or more, than 2.5 empirical standard errors, and the cycles mostly agree on its
+        sign. The step is bias_gain x r x d', the gain halving at every change of sign.
         """
-        if not self.plan.balance_bias or s.asymmetry != 0.0 or s.amplitude <= 0:
+        p = self.plan
+        if not p.balance_bias or s.asymmetry != 0.0 or s.amplitude <= 0 or not cycles:
             return s
-        half = 0.5 * (cyc.high_time + cyc.low_time)
-        tick = cyc.period / max(cyc.samples, 1)
-        tol = max(self.plan.bias_tolerance, 2.0 * tick / half if half > 0 else 0.0)
-        if abs(cyc.half_period_mismatch) <= tol:
+        n = len(cycles)
+        rs = [(c.high_time - c.low_time) / (c.high_time + c.low_time) for c in cycles
+              if c.high_time + c.low_time > 0]
+        if len(rs) != n:
             return s
-        r = (cyc.high_time - cyc.low_time) / (cyc.high_time + cyc.low_time)
-        step = self.plan.bias_gain * r * s.amplitude
-        cap = self.plan.max_bias_step * s.amplitude
+        r = sum(rs) / n
+        avg = mean_cycle(cycles)
+        tick = p.tick or (avg.period / max(avg.samples, 1))
+        sd = switch_jitter(avg.amplitude, avg.period, s.hysteresis, p.pv_noise,
+                           p.pv_resolution, tick)
+        # r of one cycle: (2 t_down - t_start - t_end)/period, so its variance is 6 sd^2/P^2
+        sd_r = math.sqrt(6.0) * sd / avg.period
+        need = max(0.5 * p.bias_tolerance, 3.0 * sd_r / math.sqrt(n), tick / avg.period)
+        if n >= 3:
+            spread = math.sqrt(sum((x - r) ** 2 for x in rs) / (n - 1))
+            need = max(need, 2.5 * spread / math.sqrt(n))
+        agree = sum(1 for x in rs if x * r > 0)
+        if abs(r) <= need or agree < max(1, math.ceil(2 * n / 3)):
+            return s
+        direction = 1 if r > 0 else -1
+        if self._bias_dir and direction != self._bias_dir:
+            self._bias_gain *= 0.5
+        d_eff = max(s.amplitude - p.deadband, 0.1 * s.amplitude)
+        step = self._bias_gain * r * d_eff
+        cap = p.max_bias_step * d_eff
         step = max(-cap, min(cap, step))
         room = self.output_limit - s.amplitude
         new_bias = max(-room, min(room, s.bias + step)) if room > 0 else s.bias
         if abs(new_bias - s.bias) <= 1e-12 * max(1.0, abs(s.bias)):
             return s
+        self._bias_dir = direction
         self._emit(t, "bias_changed", {"from": s.bias, "to": new_bias,
-                                       "high_time": cyc.high_time, "low_time": cyc.low_time,
-                                       "mismatch": cyc.half_period_mismatch})
+                                       "high_time": avg.high_time, "low_time": avg.low_time,
+                                       "mismatch": 2.0 * r, "cycles": n, "threshold": 2 * need,
+                                       "gain": self._bias_gain})
         return replace(s, bias=new_bias)
 
     def _predict(self, d_new: float, d: float, a: float) -> tuple[float, float]:
         """(best, conservative) predicted PV amplitude at d_new from the describing-function
         proportionality a ~ d, refined by a secant through the last judged cycle at another d."""
-        prop = a * d_new / d if d > 0 else a
+        db = min(self.plan.deadband, 0.9 * d)
+        prop = a * (d_new - db) / (d - db) if d > db else a
         slope = self._secant_slope(d)
         if slope is None:
             return prop, prop
@@ -713,25 +853,36 @@ class RelayExperiment:
                 return slope if slope > 0 else None
         return None
 
-    def _adapt_amplitude(self, t: float, cyc: CycleFigures, s: RelaySettings) -> RelaySettings:
-        """Raise or lower d towards the target amplitude within the output and window limits."""
+    def _adapt_amplitude(self, t: float, cyc: CycleFigures, s: RelaySettings,
+                         n: int = 1) -> RelaySettings:
+        """Raise or lower d towards the target amplitude within the output and window limits.
+
+        `cyc` holds the mean figures of the `n` settled cycles. The band around the target is
+        amplitude_tolerance widened to the peak-reading error of the PV (resolution + 2 noise
+        over the peak-to-peak swing); the PV amplitude is predicted proportional to
+        d - deadband (a secant through an earlier d refines it).
+        """
         if not self.plan.adapt_amplitude or s.amplitude <= 0:
             return s
         p = self.plan
         d, a, target = s.amplitude, cyc.amplitude, p.target_amplitude
+        db = min(p.deadband, 0.9 * d)
+        _, tol_meas = measurement_tolerances(cyc.period, cyc.amplitude_pp,
+                                             noise_std=p.pv_noise, resolution=p.pv_resolution)
+        band = max(p.amplitude_tolerance, tol_meas / math.sqrt(max(n, 1)))
         slope = self._secant_slope(d)
         # d aimed at the target
-        if a < target * (1 - p.amplitude_tolerance):
+        if a < target * (1 - band):
             if a <= 0:
                 d_t = d * p.amplitude_step_factor
             elif slope is not None:
                 d_t = d + (target - a) / slope
             else:
-                d_t = d * target / a
+                d_t = db + (d - db) * target / a
             d_t = min(max(d_t, d), d * p.amplitude_step_factor)
-        elif a > target * (1 + p.amplitude_tolerance):
-            d_t = d + (target - a) / slope if slope is not None else d * target / a
-            d_t = max(min(d_t, d), d / p.amplitude_step_factor)
+        elif a > target * (1 + band):
+            d_t = d + (target - a) / slope if slope is not None else db + (d - db) * target / a
+            d_t = max(min(d_t, d), d / p.amplitude_step_factor, db + 0.1 * (d - db))
         else:
             d_t = d
         limited_by = None

@@ -52,6 +52,7 @@ from autotune.progress import LimitGauge, LinkHealth, Phase, RunSnapshot
 from autotune.recorder import SessionWriter
 from autotune.safety import SafetyGuard, SafetyLimits
 from autotune.simdevice import SIM, SimDevice, start_sim_device
+from autotune.supervise import LinkCounters, LinkQualityMonitor, ResetMonitor, Supervisor
 
 CAUTIONS = (
     "This run powers a motor. Before you go on:",
@@ -195,6 +196,8 @@ class PoweredRun:
         self.writer: SessionWriter | None = None
         self.guard: SafetyGuard | None = None
         self.limits_readback: dict[str, float] | None = None
+        self.supervisor: Supervisor | None = None
+        """Link quality, device reset and (once armed by the verb) no-response detectors."""
         self.pv_start: float | None = None
         self.t_start: float | None = None
         self.phase = Phase.CONNECT
@@ -374,6 +377,10 @@ class PoweredRun:
             self.pv_start,
             self.t_start,
         )
+        self.supervisor = Supervisor(
+            LinkQualityMonitor(s.max_frame_loss, s.frame_loss_window),
+            ResetMonitor(self.info.boot_id),
+        )
         self._open_session(phase_header or {})
         self.armed = True
         self._start_abort_watch()
@@ -527,6 +534,8 @@ class PoweredRun:
         self.last_sample = rec
         self._keepalive()
         self._record(rec, self.phase.value)
+        if self.supervisor is not None:
+            self._supervise(rec)
         # the host's own check first: when the device latched on the same sample, the host
         # limit names the cause (the device's Fault confirms it)
         if self.guard is not None:
@@ -553,6 +562,20 @@ class PoweredRun:
         if publish:
             self.publish()
         return rec
+
+    def _supervise(self, rec: Any) -> None:
+        """Feed the supervisor (autotune.supervise); a fault it finds ends the run."""
+        sup = self.supervisor
+        assert sup is not None
+        pong = self.link.last_pong
+        f = sup.check_sample(rec.t, rec.pv, rec.output,
+                             None if pong is None else getattr(pong, "boot_id", None))
+        if f is None and sup.link_due(rec.t):
+            f = sup.check_link(rec.t, LinkCounters.from_mapping(self.link.counters()))
+        if f is not None:
+            code = EXIT_FAILED if f.which == "no_response" else EXIT_LINK
+            self.request_stop(f.reason, f.message, code, rec.t)
+            raise RunEnded(f.reason, f.message, code, rec.t)
 
     def _keepalive(self) -> None:
         """Feed the device watchdog from the sample loop as well as from the heartbeat thread

@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 import sys
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -100,26 +100,15 @@ def choose_loop(requested: str, has_device_relay: bool, has_host_loop: bool,
 
 
 def steady_cycles(cycles: list[Any], tol: float, *, min_cycles: int = 4, tick: float = 0.0,
-                  noise_std: float = 0.0, resolution: float = 0.0) -> bool:
-    """Has the relay oscillation settled? (pure; cycles with `period` s and `amplitude_pp`).
+                  noise_std: float = 0.0, resolution: float = 0.0,
+                  hysteresis: float = 0.0) -> bool:
+    """Has the relay oscillation settled? See autotune.relay.steady_converged (tick s, noise and
+    resolution PV units: the tolerance widens to the switching jitter and peak-reading error
+    they cause)."""
+    from autotune.relay import steady_converged
 
-    At least `min_cycles` cycles, and the mean period and mean peak-to-peak amplitude of the
-    last two cycles agree with those of the two before within a relative tolerance of `tol`,
-    widened to what the measurement can resolve: one tick (s) of switching jitter in the period,
-    resolution + 2 x noise (PV units) in a peak-to-peak reading (common practice, no source).
-    """
-    if len(cycles) < max(min_cycles, 4):
-        return False
-    a, b = cycles[-4:-2], cycles[-2:]
-    pa = sum(c.period for c in a) / 2
-    pb = sum(c.period for c in b) / 2
-    aa = sum(c.amplitude_pp for c in a) / 2
-    ab = sum(c.amplitude_pp for c in b) / 2
-    if min(pa, pb, aa, ab) <= 0:
-        return False
-    tol_p = max(tol, tick / min(pa, pb))
-    tol_a = max(tol, (resolution + 2.0 * noise_std) / min(aa, ab))
-    return abs(pa - pb) <= tol_p * max(pa, pb) and abs(aa - ab) <= tol_a * max(aa, ab)
+    return steady_converged(cycles, tol, min_cycles=min_cycles, hysteresis=hysteresis,
+                            tick=tick, noise_std=noise_std, resolution=resolution)
 
 
 class LinePrinter:
@@ -170,6 +159,7 @@ class TuneRun:
         self.rest: pre.RestReport | None = None
         self.direction: pre.DirectionReport | None = None
         self.breakaway: pre.BreakawayReport | None = None
+        self.deadband = 0.0  # output units, measured by the breakaway precheck (0: none)
         self.hysteresis: float | None = cfg.relay.hysteresis
         self.start_amplitude = cfg.start_amplitude
         self.centre = 0.0  # PV units (raw)
@@ -330,54 +320,102 @@ class TuneRun:
             raise RunEnded("precheck:direction", d.message, EXIT_FAILED)
         run.say(f"direction: PV moved {self.sign * d.change:+.3g} for an output pulse of "
                 f"{size:+g}: as expected")
+        if run.supervisor is not None:
+            # from now on an output step of `size` or more must move the PV out of its noise
+            # band within twice the time the pulse needed (at least pulse_timeout), else
+            # fault:no_response (issue 8: stuck sensor)
+            from autotune.supervise import noise_band
+
+            took = recs[-1].t - t_pulse if recs else cfg.prechecks.pulse_timeout
+            run.supervisor.expect_response(
+                bias, size, noise_band(rest.noise_std, rest.resolution, rest.mean),
+                max(cfg.prechecks.pulse_timeout, 2.0 * took))
         # 3. breakaway
         if cfg.prechecks.breakaway:
             self._breakaway(run, threshold)
 
     def _breakaway(self, run: PoweredRun, threshold: float) -> None:
+        """Two output ramps (up at breakaway_rate, down at twice it) measure the deadband.
+
+        Each ramp starts from rest at the bias and stops once the PV has moved a few noise
+        levels (bounded by a tenth of the PV window); `prechecks.deadband_from_two_ramps`
+        compares the times the two responses take to reach matching levels, which cancels the
+        loop's lag and dead time. If the PV moved too little for that, the first ramp's upper
+        bound (`assess_breakaway`) is used.
+        """
         cfg = self.cfg
         bias = cfg.relay.bias
-        assert self.rest is not None
+        rest = self.rest
+        assert rest is not None
         room = cfg.safety.output_limit - abs(bias)
         max_step = min(room, cfg.safety.output_limit * 0.5)
-        run.set_phase(Phase.PRECHECK_BREAKAWAY, f"output ramp at {cfg.prechecks.breakaway_rate:g}"
-                      f"/s up to {max_step:g}")
-        # let the PV settle back after the pulse
-        self._hold(run, bias, cfg.prechecks.rest_time)
-        t0 = run.last_sample.t
-        duration = pre.breakaway_ramp_duration(cfg.prechecks.breakaway_rate, max_step)
-        data = Arrays()
-        # quantisation steps are not motion; the ramp runs on while the response travels
-        # through the plant's lag and dead time (as long as the direction pulse took to show)
-        min_change = max(threshold, 2.0 * self.rest.resolution)
-        lag = 0.0
-        if self.direction is not None and self.direction.t_response is not None:
-            lag = max(0.0, self.direction.t_response - self._t_pulse)
-        noise = self.rest.noise_std
-        while True:
-            rec = run.next_sample()
-            data.add(rec.t, self._y(rec.pv), rec.output)
-            if rec.t - t0 > duration:
-                break
-            if len(data.t) >= 3:
-                t, y, u = data.np()
-                if pre.assess_breakaway(t, y, u, noise, min_change=min_change).deadband \
-                        is not None:
+        rate_a = cfg.prechecks.breakaway_rate
+        rate_b = 2.0 * rate_a
+        ratio = rate_b / rate_a
+        level_min = max(threshold, 3.0 * rest.resolution, 5.0 * rest.noise_std)
+        level_max = max(min(3.0 * level_min, 0.1 * cfg.safety.pv_window / ratio),
+                        1.5 * level_min)
+        noise = rest.noise_std
+        drift = self.sign * rest.drift
+        run.set_phase(Phase.PRECHECK_BREAKAWAY, f"output ramps at {rate_a:g}/s and "
+                      f"{-rate_b:g}/s, up to {max_step:g}")
+
+        def ramp(rate: float, direction: int, stop_level: float) -> tuple[Arrays, float]:
+            # from rest at the bias: the PV settles after the previous motion
+            held = self._hold(run, bias, cfg.prechecks.rest_time)
+            tail = held[len(held) // 2:] or held
+            t0 = run.last_sample.t
+            base = float(np.mean([self._y(r.pv) for r in tail]))
+            duration = pre.breakaway_ramp_duration(rate, max_step)
+            data = Arrays()  # t from the ramp start, motion in the ramp's direction, output
+            recent: list[float] = []
+            while True:
+                rec = run.next_sample()
+                dev = direction * (self._y(rec.pv) - base - drift * (rec.t - t0))
+                data.add(rec.t - t0, dev, rec.output)
+                recent.append(dev)
+                if rec.t - t0 > duration or sorted(recent[-3:])[len(recent[-3:]) // 2] \
+                        > stop_level:
                     break
-            run.set_output(pre.breakaway_ramp(rec.t - t0, cfg.prechecks.breakaway_rate,
-                                              max_step, bias=bias))
-        run.set_output(bias)
-        t, y, u = data.np()
-        rep = pre.assess_breakaway(t, y, u, noise, min_change=min_change, response_lag=lag)
-        self.breakaway = rep
-        self.precheck_results["breakaway"] = rep.as_dict()
-        run.event("precheck", rep.as_dict(), check="breakaway", ok=rep.deadband is not None)
-        if rep.deadband is None:
-            raise RunEnded("precheck:breakaway", rep.message, EXIT_FAILED)
+                run.set_output(pre.breakaway_ramp(rec.t - t0, rate, max_step, bias=bias,
+                                                  sign=direction))
+            run.set_output(bias)
+            # the ramp as applied (the link's latency delays it): its start from a fit of the
+            # applied output, rate (t - t_start), over the samples on the slope
+            t, _, out = data.np()
+            on = (np.abs(out - bias) > 0) & (np.abs(out - bias) < max_step - 1e-9)
+            if np.any(on):
+                shift = float(np.mean(t[on] - np.abs(out[on] - bias) / rate))
+                data.t = [x - shift for x in data.t]
+            return data, t0
+
+        stop_a = level_max + 2.0 * max(rest.resolution, noise)
+        ramp_a, _ = ramp(rate_a, +1, stop_a)
+        ramp_b, _ = ramp(rate_b, -1, ratio * level_max + 2.0 * max(rest.resolution, noise))
+        self._hold(run, bias, 0.5 * cfg.prechecks.rest_time)
+        ta, ya, ua = ramp_a.np()
+        tb, yb, _ = ramp_b.np()
+        two = pre.deadband_from_two_ramps(ta, ya, rate_a, tb, yb, rate_b,
+                                          level_min=level_min, level_max=level_max)
+        bound = pre.assess_breakaway(ta, ya, ua - bias, noise,
+                                     min_change=max(threshold, 2.0 * rest.resolution))
+        self.breakaway = bound
+        detail: dict[str, Any] = {"method": "two_ramps", "rates": [rate_a, -rate_b],
+                                  **two.as_dict(), "upper_bound": bound.deadband}
+        deadband = two.deadband
+        if deadband is None:
+            detail["method"] = "first_motion"
+            deadband = bound.deadband
+        detail["deadband"] = deadband
+        self.deadband = deadband or 0.0
+        self.precheck_results["breakaway"] = detail
+        run.event("precheck", detail, check="breakaway", ok=deadband is not None)
+        if deadband is None:
+            raise RunEnded("precheck:breakaway", two.message or bound.message, EXIT_FAILED)
         # start the relay above the deadband (twice it: common practice, no source)
-        self.start_amplitude = min(max(self.start_amplitude, 2.0 * rep.deadband), room)
-        run.say(f"breakaway: deadband about {rep.deadband:.3g}; relay starts at "
-                f"{self.start_amplitude:.3g}")
+        self.start_amplitude = min(max(self.start_amplitude, 2.0 * deadband), room)
+        run.say(f"breakaway: deadband {deadband:.3g} (+/- {two.spread:.2g}, {detail['method']});"
+                f" relay starts at {self.start_amplitude:.3g}")
 
     # ------------------------------------------------------------------ relay
     def _plan(self) -> RelayPlan:
@@ -394,6 +432,10 @@ class TuneRun:
             max_time=r.max_time,
             converge_tol=r.converge_tol,
             stall_time=r.stall_time,
+            deadband=self.deadband,
+            tick=self.run.info.tick if self.run is not None else 0.0,
+            pv_noise=self.rest.noise_std if self.rest else 0.0,
+            pv_resolution=self.rest.resolution if self.rest else 0.0,
         )
 
     def _relay(self, run: PoweredRun) -> None:
@@ -405,7 +447,8 @@ class TuneRun:
                                  amplitude=self.start_amplitude, hysteresis=self.hysteresis)
         exp = RelayExperiment(self._plan(), settings, cfg.safety.output_limit,
                               converged=self._converged,
-                              pv_start=self._y(run.pv_start or self.centre))
+                              pv_start=self._y(run.pv_start or self.centre),
+                              confirm_samples=cfg.relay.confirm_samples)
         self.experiment = exp
         run.sp_value = self.centre
         run.snapshot_extra["max_cycles"] = cfg.relay.max_cycles
@@ -472,7 +515,8 @@ class TuneRun:
         return steady_cycles(list(cycles), self.cfg.relay.converge_tol,
                              min_cycles=self.cfg.relay.min_cycles, tick=self.run.info.tick,
                              noise_std=rest.noise_std if rest else 0.0,
-                             resolution=rest.resolution if rest else 0.0)
+                             resolution=rest.resolution if rest else 0.0,
+                             hysteresis=self.hysteresis or 0.0)
 
     def _end_message(self, reason: str) -> str:
         exp = self.experiment
@@ -545,6 +589,19 @@ class TuneRun:
                                    "are reported")
             self._classic_only(result, exp)
             return result
+        if self.deadband > 0:
+            # the plant sees a relay of d - deadband: the dead zone taken out of the output
+            # (continuous dead zone u - sign(u) deadband) before the analysis
+            db = self.deadband
+            u = np.where(np.abs(u) <= db, 0.0, u - np.sign(u) * db)
+            s = replace(s, amplitude=max(s.amplitude - db, 1e-9))
+            result["deadband"] = {
+                "deadband": db, "method": self.precheck_results.get("breakaway", {}).get(
+                    "method"),
+                "relay_amplitude": exp.settings.amplitude, "effective_amplitude": s.amplitude,
+                "correction": "analysis on the output minus the dead zone (u - sign(u) "
+                              "deadband); Ku without it would be inflated by about "
+                              f"d / (d - deadband) = {exp.settings.amplitude / s.amplitude:.4g}"}
         try:
             an = analysis.analyse_relay(t, y, u, s, noise_std=noise, ts=info.tick,
                                         output_limit=cfg.safety.output_limit,

@@ -73,6 +73,13 @@ class LinkCounters:
     lost: int
 
     @classmethod
+    def from_mapping(cls, c: Any) -> LinkCounters:
+        """From `protocol.link.Link.counters()` (a dict with the LinkStats counter names)."""
+        return cls(int(c["frames_good"]),
+                   int(c["crc_errors"]) + int(c["framing_errors"]) + int(c["decode_errors"]),
+                   int(c["samples_received"]), int(c["seq_gaps"]))
+
+    @classmethod
     def from_stats(cls, stats: Any) -> LinkCounters:
         """From a `protocol.link.LinkStats` (or anything with the same counter names)."""
         rejected = (int(getattr(stats, "crc_errors", 0)) + int(getattr(stats, "framing_errors", 0))

@@ -455,11 +455,15 @@ class Device:
             p.deriv = 0.0
         p.pv_prev = pv
         v = p.bias + p.kp * (p.b * p.setpoint - pv) + p.integral + p.deriv
-        u = min(limit, max(-limit, v + self.offset)) - self.offset
+        # Saturation is decided on the total drive (PID output plus the load-test offset), not by
+        # comparing floats after adding and removing the offset, which rarely round-trips exactly.
+        high = v + self.offset > limit
+        low = v + self.offset < -limit
+        u = (limit - self.offset) if high else (-limit - self.offset) if low else v
         if p.tt > 0.0:
             # back-calculation: the integral is pulled towards the saturated output
             p.integral += p.ki * h * e + (h / p.tt) * (u - v)
-        elif u == v or (v > u and p.ki * e < 0.0) or (v < u and p.ki * e > 0.0):
+        elif not (high or low) or (high and p.ki * e < 0.0) or (low and p.ki * e > 0.0):
             # clamping: integrate unless saturated and the error drives further into it
             p.integral += p.ki * h * e
         return v

@@ -561,6 +561,20 @@ class Link:
             thread.join(timeout=2.0)
         self._hb_thread = None
 
+    def counters(self) -> dict[str, int]:
+        """The reception counters of `stats()` without the round-trip statistics: cheap enough
+        to read on every sample (frames_good, crc_errors, framing_errors, decode_errors,
+        seq_gaps, samples_received)."""
+        c = self._counts
+        return {
+            "frames_good": self._decoder.frames_good,
+            "crc_errors": self._decoder.crc_errors,
+            "framing_errors": self._decoder.framing_errors,
+            "decode_errors": c["decode_errors"],
+            "seq_gaps": c["seq_gaps"],
+            "samples_received": c["samples_received"],
+        }
+
     def stats(self) -> LinkStats:
         """Snapshot of the counters."""
         rtts = list(self._rtts)

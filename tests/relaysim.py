@@ -11,45 +11,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from autotune.relay import Relay, RelaySettings
 from mock_device.plant import LtiPlant, Sensor
-
-try:  # the project's relay when it exists
-    from autotune.relay import Relay as _ProjectRelay
-    from autotune.relay import RelaySettings
-except ImportError:  # pragma: no cover - until autotune.relay lands
-    _ProjectRelay = None
-
-    @dataclass(frozen=True)
-    class RelaySettings:  # type: ignore[no-redef]
-        """Minimal stand-in with the fields of autotune.relay.RelaySettings."""
-
-        centre: float
-        bias: float
-        amplitude: float
-        hysteresis: float
-        asymmetry: float = 0.0
-
-
-class _MiniRelay:
-    """Relay with hysteresis on the error e = centre - pv: high when e > eps, low when e < -eps."""
-
-    def __init__(self, settings: RelaySettings, output_limit: float) -> None:
-        self.s = settings
-        self.limit = output_limit
-        self.state = 1
-
-    def update(self, t: float, pv: float) -> float:
-        e = self.s.centre - pv
-        if self.state < 0 and e > self.s.hysteresis:
-            self.state = 1
-        elif self.state > 0 and e < -self.s.hysteresis:
-            self.state = -1
-        asym = getattr(self.s, "asymmetry", 0.0)
-        if self.state > 0:
-            out = self.s.bias + self.s.amplitude * (1 + asym)
-        else:
-            out = self.s.bias - self.s.amplitude * (1 - asym)
-        return float(min(self.limit, max(-self.limit, out)))
 
 
 @dataclass(frozen=True)
@@ -69,8 +32,7 @@ def run_relay(num, den, delay: float, *, ts: float, amplitude: float = 1.0,
               hysteresis: float = 0.0, bias: float = 0.0, centre: float = 0.0,
               n_cycles: int = 10, period_guess: float | None = None, duration: float | None = None,
               noise: float = 0.0, resolution: float = 0.0, load: float = 0.0,
-              rest: int = 20, output_limit: float = 1e9, seed: int = 0,
-              use_project_relay: bool = True) -> RelayRecord:
+              rest: int = 20, output_limit: float = 1e9, seed: int = 0) -> RelayRecord:
     """Run a relay experiment: `rest` ticks at the bias, then the relay for `duration` s
     (default n_cycles * period_guess). PV = plant output + noise (std, PV units), quantised to
     `resolution`; `load` is a constant disturbance at the plant input (output units)."""
@@ -80,10 +42,7 @@ def run_relay(num, den, delay: float, *, ts: float, amplitude: float = 1.0,
         duration = n_cycles * period_guess
     settings = RelaySettings(centre=centre, bias=bias, amplitude=amplitude,
                              hysteresis=hysteresis)
-    if use_project_relay and _ProjectRelay is not None:
-        relay = _ProjectRelay(settings, output_limit)
-    else:
-        relay = _MiniRelay(settings, output_limit)
+    relay = Relay(settings, output_limit)  # autotune.relay: hysteresis on e = centre - pv
     plant = LtiPlant(num, den, delay, max_step=ts)
     sensor = Sensor(noise=noise, resolution=resolution, offset=centre,
                     rng=np.random.default_rng(seed))

@@ -7,7 +7,13 @@ import numpy as np
 import pytest
 
 from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
-from autotune.model import _modes, fit_models, modal_response, sampled_response
+from autotune.model import (
+    _modes,
+    cascade_response,
+    fit_models,
+    modal_response,
+    sampled_response,
+)
 
 RNG = np.random.default_rng(7)
 U = np.repeat(RNG.uniform(-1.0, 1.0, 60), 13)
@@ -80,4 +86,19 @@ def test_best_candidate_wins_on_an_integrating_record():
     fit = fit_models(np.arange(u.size) * dt, y, u, ts=dt, w1=w1, phase1=float(true.phase(w1)))
     assert fit.kind == "integrator_lag"
     assert fit.residual < 1e-6 * np.ptp(y)
-    assert set(fit.candidates) >= {"fopdt", "sopdt", "integrator_lag"}
+    # an exact fit ends the search: the richer candidates after it are not tried
+    assert set(fit.candidates) == {"fopdt", "integrator_lag"}
+    assert fit.candidates["fopdt"].residual > 1e3 * fit.residual
+
+
+@pytest.mark.parametrize("tcs,delay", [([0.7] * 5, 0.1234), ([1.0] * 8, 0.0),
+                                        ([1.0, 0.5, 0.25, 0.125], 0.057)])
+def test_cascade_response_matches_exact_zoh(tcs, delay):
+    # Reference: DelayedTF.simulate_zoh (matrix exponential of the companion form); the
+    # equal-lag path uses the closed-form (incomplete gamma) discretisation.
+    den = np.array([1.0])
+    for tc in tcs:
+        den = np.polymul(den, [tc, 1.0])
+    ref = DelayedTF((1.0,), tuple(den), delay).simulate_zoh(U, 0.01)
+    y = cascade_response(tcs, delay, U, 0.01)
+    assert np.max(np.abs(y - ref)) < 1e-10 * np.max(np.abs(ref))

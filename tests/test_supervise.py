@@ -104,6 +104,9 @@ def test_counters_from_stats() -> None:
         samples_received, seq_gaps = 8, 4
 
     assert LinkCounters.from_stats(S()) == LinkCounters(10, 6, 8, 4)
+    d = {k: getattr(S, k) for k in ("frames_good", "crc_errors", "framing_errors",
+                                     "decode_errors", "samples_received", "seq_gaps")}
+    assert LinkCounters.from_mapping(d) == LinkCounters(10, 6, 8, 4)
 
 
 def test_noise_band() -> None:

@@ -338,3 +338,44 @@ def test_plain_reporter_prints_changes_not_every_sample() -> None:
     assert any("cycle 8" in ln for ln in out[n:])
     rep.update(replace(s1, phase=Phase.DONE, stopped=True, message="aborted"))
     assert any("motor stopped" in ln for ln in out)
+
+
+# ---------------------------------------------------------------------------- the key thread
+
+
+def test_key_router_handles_abort_keys_first_and_passes_the_others_on() -> None:
+    """A read holding an abort key goes to on_abort only; other keys reach on_key in order."""
+    import os
+    import threading
+
+    from autotune.ui.app import KeyRouter
+
+    master, slave = os.openpty()
+    aborts: list[str] = []
+    keys: list[str] = []
+    got = threading.Event()
+
+    def on_abort(name: str) -> None:
+        aborts.append(name)
+        got.set()
+
+    def on_key(ch: str) -> None:
+        keys.append(ch)
+        got.set()
+
+    with os.fdopen(slave, "rb", buffering=0) as stream:
+        router = KeyRouter(on_abort, on_key, stream=stream).start()
+        try:
+            assert router.active
+            for data, check in ((b"2", lambda: keys == ["2"]),
+                                (b"mq", lambda: aborts == ["q"]),  # abort wins the whole read
+                                (b"\x1b[A", lambda: aborts == ["q", "esc"]),  # arrow = Esc
+                                (b" ", lambda: aborts == ["q", "esc", "space"])):
+                got.clear()
+                os.write(master, data)
+                assert got.wait(2.0)
+                assert check(), (data, aborts, keys)
+            assert keys == ["2"]  # "m" travelled with "q": dropped, never acted on
+        finally:
+            router.stop()
+            os.close(master)

@@ -19,8 +19,11 @@ PLANTS = ("cart-wheel", "mast-pan")
 
 # Demo settings per scenario (invented demo data): limits and relay targets that suit each plant.
 # cart-wheel: wheel speed in rad/s, output in % duty; mast-pan: pan angle in degrees, % duty.
+# The watchdog (device time) is longer than a real board's so that a demo run many times faster
+# than the wall clock (--speed) on a busy machine does not trip it with a late heartbeat.
 DEMO_CONFIG: dict[str, dict[str, object]] = {
     "cart-wheel": {
+        "safety.watchdog": 1.0,
         "safety.output_limit": 40.0,
         "safety.pv_window": 3.0,
         "relay.target_amplitude": 0.4,
@@ -29,6 +32,7 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "step.size": 1.0,
     },
     "mast-pan": {
+        "safety.watchdog": 1.0,
         "safety.output_limit": 90.0,
         "safety.pv_window": 25.0,
         "relay.target_amplitude": 2.5,

@@ -37,7 +37,11 @@ from autotune.ui import plain, screens
 from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
 
 ABORT = "<abort>"  # what the key queue carries for an abort key
-FRAME_RATE = 12.0  # most frames a second the screen thread draws
+FRAME_RATE = 8.0  # most frames a second the screen thread draws
+# While a screen thread draws (pure Python, tens of ms a frame), the runner's thread waits for the
+# interpreter lock at every sample; a short switch interval hands it over within a millisecond
+# instead of the default 5 ms, so the runner never falls behind the device's samples.
+SWITCH_INTERVAL = 0.0005
 ENTER_KEYS = ("\r", "\n")
 
 
@@ -108,6 +112,7 @@ class Terminal:
         self._drawn = 0
         self._closing = False
         self._drawer: threading.Thread | None = None
+        self._old_switch = sys.getswitchinterval()
         self.on_abort: Callable[[str], None] | None = None  # installed by the current stage
         self.abort_key: str | None = None
         self.reporter = plain.PlainReporter(self.line)
@@ -122,6 +127,8 @@ class Terminal:
                              redirect_stdout=False, redirect_stderr=False)
             self.live.start()
             self._closing = False
+            self._old_switch = sys.getswitchinterval()
+            sys.setswitchinterval(SWITCH_INTERVAL)
             self._drawer = threading.Thread(target=self._draw_loop, name="screen", daemon=True)
             self._drawer.start()
         return self
@@ -133,6 +140,7 @@ class Terminal:
                 self._cond.notify_all()
             self._drawer.join(timeout=5.0)
             self._drawer = None
+            sys.setswitchinterval(self._old_switch)
         if self.live is not None:
             with contextlib.suppress(Exception):
                 self.live.stop()

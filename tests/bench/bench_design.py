@@ -9,8 +9,8 @@ non-minimum phase (1-as)/(s+1)^3.
 For each plant: a simulated relay experiment (tests/relaysim.py, no noise) analysed by
 autotune.analysis.analyse_relay gives Ku, Tu and the fitted model (autotune.model.fit_models);
 if that path fails for a plant, the "identified" model is instead the best FOPDT/SOPDT/
-integrator-lag least-squares fit of the true frequency response around the ultimate frequency
-(marked "fr-fit" in the table). All proposals are designed from the identified model
+integrator-lag least-squares fit of the true frequency response around and below the ultimate
+frequency plus the static gain (marked "fr-fit" in the table; --fr-fit forces it). All proposals are designed from the identified model
 (continuous design, Ms target 1.4) and evaluated on the TRUE plant: Ms of every proposal, and
 ki of the default proposal as a fraction of the true robust optimum of the same structure
 (robust-pid or robust-pi, designed on the true plant).
@@ -82,10 +82,11 @@ def _fr_candidates(x: np.ndarray, kind: str) -> DelayedTF:
 
 
 def identify_fr(plant: DelayedTF) -> tuple[float, float, DelayedTF, str]:
-    """Least-squares fit of the true frequency response on 0.2..1.5 w180 (relative error)."""
+    """Least-squares fit (relative error) of the true frequency response on 0.3..1.2 w180
+    and of its static (or velocity) gain, as a biased relay would measure it."""
     ku, tu = plant.ultimate_point()
     w180 = 2 * math.pi / tu
-    w = np.linspace(0.2, 1.5, 40) * w180
+    w = np.linspace(0.3, 1.2, 40) * w180
     g = plant.freq_response(w)
     kinds = ["integrator_lag"] if plant.is_integrating else ["fopdt", "sopdt"]
     best = None
@@ -97,9 +98,11 @@ def identify_fr(plant: DelayedTF) -> tuple[float, float, DelayedTF, str]:
         for scale in (0.3, 1.0, 3.0):
             x0 = np.log(np.array(starts) * np.r_[1.0, [scale] * (len(starts) - 1)])
 
-            def res(x: np.ndarray, kind: str = kind) -> np.ndarray:
-                r = _fr_candidates(x, kind).freq_response(w) / g - 1.0
-                return np.r_[r.real, r.imag]
+            def res(x: np.ndarray, kind: str = kind, k0: float = k0) -> np.ndarray:
+                m = _fr_candidates(x, kind)
+                r = m.freq_response(w) / g - 1.0
+                km = m.velocity_gain if m.is_integrating else m.static_gain
+                return np.r_[r.real, r.imag, km / k0 - 1.0]
 
             sol = optimize.least_squares(res, x0)
             if best is None or sol.cost < best[0]:

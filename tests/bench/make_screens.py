@@ -9,6 +9,7 @@ screen and writes them with rich's SVG export. Prints the files written. Asserts
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 from pathlib import Path
@@ -34,15 +35,22 @@ def main() -> int:
     ns = argparse.Namespace(plant=args.plant, config=None, loop=None, speed=args.speed,
                             seed=args.seed)
     cfg = demo.build_config(ns)
+    out = Path(args.out).resolve()
+    here = Path.cwd()
     with tempfile.TemporaryDirectory() as tmp:
-        settings = JobSettings(port=SIM, out_dir=Path(tmp), yes=True, plant=args.plant,
+        os.chdir(tmp)  # the finish screen then shows the short relative paths a user would see
+        settings = JobSettings(port=SIM, out_dir=Path("autotune-sessions/demo"), yes=True,
+                               plant=args.plant,
                                speed=args.speed, seed=args.seed, simulated=True,
                                label="a pty (started after Y)",
                                device=f"simulated {args.plant} board",
                                settle_band=demo.SETTLE_BAND.get(args.plant))
-        code, captured = record_demo(cfg, settings, args.width, args.height)
+        try:
+            code, captured = record_demo(cfg, settings, args.width, args.height)
+        finally:
+            os.chdir(here)
     print(f"demo exit code {code}; screens captured: {', '.join(sorted(captured))}")
-    for path in export_svgs(captured, Path(args.out), args.width, args.height):
+    for path in export_svgs(captured, out, args.width, args.height):
         print(f"wrote {path.relative_to(ROOT) if path.is_relative_to(ROOT) else path}")
     return 0 if code == 0 else 1
 
