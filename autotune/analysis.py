@@ -33,6 +33,7 @@ from autotune.lti import DelayedTF
 from autotune.model import CANDIDATES, FittedModel, fit_models
 
 DELAYS_INCLUDED = "plant"
+FIT_CYCLES = 10  # the model is fitted to at most this many of the last steady cycles
 DELAYS_NOTE = ("ultimate_gain, ultimate_period and model are the continuous plant's: the device "
                "tick's sample-and-hold (about ts/2) is modelled and excluded; "
                "*_with_hold figures include it; the classic figures include it and the "
@@ -248,8 +249,11 @@ class RelayAnalysis:
 
     ku, tu: refined (continuous plant, hold excluded); ku_classic, tu_classic: plain
     describing function; ku_with_hold, tu_with_hold: refined with the tick's ts/2 hold delay;
-    uncertainty: relative, per figure; fourier: plant points at w, 3w, 5w; estimates: per-cycle
-    dicts; warnings: actionable one-line messages.
+    uncertainty: relative, per figure (cycle spread, noise and a heuristic model-extrapolation
+    term from the model's miss at the Fourier points); fourier: plant points at w, 3w, 5w;
+    estimates: per cycle, that cycle's classic figures and its refined ones (the cycle's
+    classic figures times the whole record's refined/classic ratio); warnings: actionable
+    one-line messages.
     """
 
     ku: float
@@ -349,9 +353,18 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
 
     at_rest = _rest_at_start(y, u, switch_indices(u, state)[0], noise, 2 * a,
                              settings.bias if settings is not None else None, d)
-    fit_from = 0 if at_rest else i0
-    model = fit_models(t, y, u, ts=ts, w1=w1, phase1=_phase_below_zero(g1), fit_from=fit_from,
-                       candidates=candidates, noise_floor=noise)
+    if n_cyc > FIT_CYCLES:
+        # long record: fit the last FIT_CYCLES steady cycles, simulated from one cycle before
+        # (the dead time is shorter than a period; the unknown state there is fitted)
+        j0 = cycles[-FIT_CYCLES - 1].i_start
+        sl = slice(j0, None)
+        model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
+                           fit_from=cycles[-FIT_CYCLES].i_start - j0, candidates=candidates,
+                           noise_floor=noise)
+    else:
+        model = fit_models(t, y, u, ts=ts, w1=w1, phase1=_phase_below_zero(g1),
+                           fit_from=0 if at_rest else i0, candidates=candidates,
+                           noise_floor=noise)
     tf = model.tf
     up = tf.ultimate_point()
     mismatch = {p.harmonic: float(abs(complex(tf.freq_response(p.w)) - p.g) / abs(p.g))

@@ -344,8 +344,9 @@ def _start_grid(kind: str, w1: float, phase1: float, order: int = 1) -> list[np.
         for q in (0.0, 0.15, 0.4):
             lag_phase = min((1 - q) * lag_total, order * math.pi / 2 * 0.97)
             tc = max(math.tan(lag_phase / order) / w1, 1e-6)
+            delay = (lag_total - lag_phase) / w1 if q > 0 else 0.0
             for f in ((1.0, 0.6, 0.35) if q == 0.0 else (1.0,)):
-                starts.append(np.array([math.log(tc * f), (lag_total - lag_phase) / w1]))
+                starts.append(np.array([math.log(tc * f), delay]))
         return starts
     lag_max = math.pi / 2 * (2 if kind in ("sopdt", "sopdt_zero") else 1) * 0.97
     for q in (0.05, 0.25, 0.5, 0.75, 0.95):
@@ -431,8 +432,13 @@ def fit_models(
             ranked.sort(key=lambda r: r[0])
             trials = []
             for _, n, prob_n, starts_n in ranked[:2]:
-                x = optimise(prob_n, starts_n)
-                trials.append((float(np.sum(prob_n.residual(x) ** 2)), n, prob_n, x))
+                # the delay-free starts separately: a right-half-plane zero (inverse response)
+                # and a dead time compete, and sit in different basins
+                groups = [starts_n, [st for st in starts_n if st[-1] == 0.0]]
+                for group in groups:
+                    if group:
+                        x = optimise(prob_n, group)
+                        trials.append((float(np.sum(prob_n.residual(x) ** 2)), n, prob_n, x))
             _, order, prob, x = min(trials, key=lambda r: r[0])
         else:
             order = 1

@@ -263,6 +263,10 @@ class PoweredRun:
         self.url = url
         watchdog = self.cfg.safety.watchdog
         heartbeat = min(0.05, watchdog / 5.0) / self.speed
+        # at high simulated speeds no faster than every 2 ms of wall clock while that still
+        # feeds the watchdog five times per period (thousands of Pings a second only load the
+        # host and the line)
+        heartbeat = max(heartbeat, min(0.002, watchdog / 5.0 / self.speed))
         try:
             self.link = Link.open(url, baudrate=self.cfg.connection.baudrate,
                                   heartbeat_interval=heartbeat, retries=LINK_RETRIES)

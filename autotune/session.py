@@ -219,29 +219,27 @@ class TuneRun:
         """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples.
 
         The clock starts at the first sample showing the output applied: samples queued before
-        the command (a slow request before it) do not count, and a command lost on a noisy
-        line is sent again with each sample until the device shows it (at most `duration`).
+        the command (a slow request before it, a backlog in the port) do not count, and a
+        command lost on a noisy line is sent again with each sample until the device shows it
+        (for at most one second of wall clock, or `duration` of it, whichever is longer).
         """
         import time as _time
 
         from autotune.runner_base import float32
 
         sent_at = _time.monotonic()
+        give_up = sent_at + max(1.0, run.wall(duration))
         run.set_output(output)
         want = float32(output)
         got: list[Any] = []
         t0: float | None = None
-        t_wait: float | None = None
         while True:
             rec = run.next_sample()
             got.append(rec)
             if t0 is None:
-                if rec.received_at < sent_at:
-                    continue  # queued before the command
-                if t_wait is None:
-                    t_wait = rec.t
-                if rec.output != want and rec.t - t_wait < duration:
-                    run.set_output(output)
+                if rec.output != want and _time.monotonic() < give_up:
+                    if rec.received_at >= sent_at:
+                        run.set_output(output)
                     continue
                 t0 = rec.t
             if until is not None and until(rec):
@@ -338,7 +336,7 @@ class TuneRun:
         """Two output ramps (up at breakaway_rate, down at twice it) measure the deadband.
 
         Each ramp starts from rest at the bias and stops once the PV has moved a few noise
-        levels (bounded by a tenth of the PV window); `prechecks.deadband_from_two_ramps`
+        levels (at most 0.3 of the PV window); `prechecks.deadband_from_two_ramps`
         compares the times the two responses take to reach matching levels, which cancels the
         loop's lag and dead time. If the PV moved too little for that, the first ramp's upper
         bound (`assess_breakaway`) is used.
@@ -353,7 +351,7 @@ class TuneRun:
         rate_b = 2.0 * rate_a
         ratio = rate_b / rate_a
         level_min = max(threshold, 3.0 * rest.resolution, 5.0 * rest.noise_std)
-        level_max = max(min(3.0 * level_min, 0.1 * cfg.safety.pv_window / ratio),
+        level_max = max(min(3.0 * level_min, 0.3 * cfg.safety.pv_window / ratio),
                         1.5 * level_min)
         noise = rest.noise_std
         drift = self.sign * rest.drift
@@ -396,7 +394,8 @@ class TuneRun:
         ta, ya, ua = ramp_a.np()
         tb, yb, _ = ramp_b.np()
         two = pre.deadband_from_two_ramps(ta, ya, rate_a, tb, yb, rate_b,
-                                          level_min=level_min, level_max=level_max)
+                                          level_min=level_min, level_max=level_max,
+                                          n_levels=15)
         bound = pre.assess_breakaway(ta, ya, ua - bias, noise,
                                      min_change=max(threshold, 2.0 * rest.resolution))
         self.breakaway = bound
@@ -619,6 +618,11 @@ class TuneRun:
         }
         result.update(fields_)
         result["end_reason"] = run.outcome.reason
+        if self.deadband > 0:
+            # the contract's `relay` holds the settings as used; the analysis saw d - deadband
+            result["relay"] = {**result.get("relay", {}), "amplitude": exp.settings.amplitude,
+                               "bias": exp.settings.bias,
+                               "effective_amplitude": exp.settings.amplitude - self.deadband}
         for w in getattr(an, "warnings", []) or []:
             result["notes"].append(str(w))
         run.set_phase(Phase.PROPOSALS, "designing gains")

@@ -88,19 +88,24 @@ class LinkCounters:
                    int(stats.seq_gaps))
 
 
+_MAX_HISTORY = 4096  # counter readings kept at most (bounds memory on a very slow stream)
+
+
 class LinkQualityMonitor:
     """Judges the link from its counters over the last `window` seconds of device time.
 
     max_loss: largest tolerated fraction (0..1) of lost frames (sequence gaps among the sample
         stream) and of rejected frames (among all frames received); 1.0 turns the check off.
     window: length of the sliding window, s (device time).
-    min_frames: the fractions are judged only once the window holds this many frames.
+    min_frames: the fractions are judged only over at least this many frames of the sample
+        stream (the window stretches back further when the stream is slow), so that chance
+        does not decide: at 25% loss the spread over 100 frames is about 4%.
     interval: how often the counters need to be read, s (device time); see `due`.
 
     Corrupt or garbage frames are never acted on (the link's CRC drops them); they count here.
     """
 
-    def __init__(self, max_loss: float, window: float, *, min_frames: int = 20,
+    def __init__(self, max_loss: float, window: float, *, min_frames: int = 100,
                  interval: float = 0.1) -> None:
         if not 0.0 < max_loss <= 1.0:
             raise ValueError(f"max_loss must lie in (0, 1], got {max_loss!r}")
@@ -132,8 +137,17 @@ class LinkQualityMonitor:
         if hist and t < hist[-1][0]:  # time ran backwards (device reset): start afresh
             hist.clear()
         hist.append((t, counters))
-        # keep one entry at or before t - window as the base of the window
-        while len(hist) >= 2 and hist[1][0] <= t - self.window:
+        stream_now = counters.received + counters.lost
+
+        def enough(entry: tuple[float, LinkCounters]) -> bool:
+            te, ce = entry
+            return te <= t - self.window and stream_now - (ce.received + ce.lost) >= \
+                self.min_frames
+
+        # the base: the newest entry a full window and min_frames back; older ones go
+        while len(hist) >= 2 and enough(hist[1]):
+            hist.popleft()
+        while len(hist) > _MAX_HISTORY:
             hist.popleft()
         t0, base = hist[0]
         d_good = counters.good - base.good
@@ -148,7 +162,7 @@ class LinkQualityMonitor:
         stream = d_recv + d_lost
         self.rejected = d_rej / frames if frames > 0 else 0.0
         self.loss = d_lost / stream if stream > 0 else 0.0
-        if self.max_loss >= 1.0 or frames < self.min_frames or t - t0 < 0.5 * self.window:
+        if self.max_loss >= 1.0 or not enough(hist[0]):
             return None
         worst = max(self.loss, self.rejected)
         if worst > self.max_loss:

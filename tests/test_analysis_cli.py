@@ -80,3 +80,23 @@ def test_analyze_reports_a_session_without_cycles(tmp_path, capsys):
 def test_analyze_missing_file(tmp_path, capsys):
     assert main(["analyze", str(tmp_path / "none.jsonl")]) != 0
     assert "no such file" in capsys.readouterr().err
+
+
+def test_analyze_takes_the_breakaway_dead_zone_out_as_the_live_run(tmp_path):
+    rec, ku, tu = batch_run("fopdt T=1", 0.0, cycles=8)
+    path = tmp_path / "session.jsonl"
+    _write_session(path, rec)
+    text = path.read_text().splitlines()
+    event = {"type": "event", "t": 0.0, "kind": "precheck", "check": "breakaway",
+             "detail": {"deadband": 0.2}}
+    path.write_text("\n".join([text[0], json.dumps(event), *text[1:]]) + "\n")
+    assert main(["analyze", str(path), "--json", str(tmp_path / "a.json")]) == 0
+    assert main(["analyze", str(path), "--json", str(tmp_path / "b.json"),
+                 "--deadband", "0"]) == 0
+    a = json.loads((tmp_path / "a.json").read_text())
+    b = json.loads((tmp_path / "b.json").read_text())
+    assert a["deadband"]["deadband"] == 0.2 and "deadband" not in b
+    # the same record seen through a dead zone of 0.2 on a relay of 1: the plant saw 0.8,
+    # so the analysis on the corrected output reports Ku lower by that factor
+    assert a["ultimate_gain"] == pytest.approx(0.8 * b["ultimate_gain"], rel=1e-6)
+    assert b["ultimate_gain"] == pytest.approx(ku, rel=0.02)

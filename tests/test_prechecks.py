@@ -221,3 +221,49 @@ def test_breakaway_ramp_profile() -> None:
     assert breakaway_ramp_duration(2.0, 5.0) == 2.5
     with pytest.raises(ValueError):
         breakaway_ramp_duration(0.0, 5.0)
+
+
+# ---------------------------------------------------------------------------------- two ramps
+def _ramp(rate: float, seed: int, sign: int, num, den, delay, deadband, noise, res, stop):
+    from mock_device.plant import Actuator, LtiPlant, Sensor
+
+    dt = 0.01
+    plant = LtiPlant(num, den, delay, max_step=dt)
+    sensor = Sensor(noise, res, rng=np.random.default_rng(seed))
+    act = Actuator(100.0, deadband)
+    t, y = [], []
+    for k in range(3000):
+        yk = sign * sensor.read(plant.y)
+        t.append(k * dt)
+        y.append(yk)
+        if yk > stop:
+            break
+        plant.advance(act.apply(sign * rate * k * dt), dt)
+    return np.array(t), np.array(y)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_deadband_from_two_ramps_integrating_with_lag_and_delay(seed: int) -> None:
+    """mast-pan-like loop, dead zone 3: the estimate is within 0.3 (10%) of the truth, where the
+    first-motion reading is an upper bound well above it. Exact in the noise-free limit
+    (analytic: the two ramp responses are time-shifted copies past the dead zone)."""
+    from autotune.prechecks import assess_breakaway, deadband_from_two_ramps
+
+    args = ([0.9], [0.25, 1.0, 0.0], 0.06, 3.0, 0.03, 360 / 4096)
+    ta, ya = _ramp(5.0, seed, +1, *args, stop=1.0)
+    tb, yb = _ramp(10.0, seed + 50, -1, *args, stop=2.0)
+    rep = deadband_from_two_ramps(ta, ya, 5.0, tb, yb, 10.0, level_min=0.27, level_max=0.8)
+    assert rep.deadband == pytest.approx(3.0, abs=0.3)
+    bound = assess_breakaway(ta, ya, 5.0 * ta, 0.03, min_change=0.18)
+    assert bound.deadband is not None and bound.deadband > rep.deadband
+
+
+def test_deadband_from_two_ramps_noise_free_exact_and_zero() -> None:
+    from autotune.prechecks import deadband_from_two_ramps
+
+    for db in (0.0, 2.0):
+        args = ([0.25], [0.048, 0.68, 1.0], 0.05, db, 0.0, 0.0)
+        ta, ya = _ramp(5.0, 0, +1, *args, stop=0.6)
+        tb, yb = _ramp(10.0, 0, -1, *args, stop=1.2)
+        rep = deadband_from_two_ramps(ta, ya, 5.0, tb, yb, 10.0, level_min=0.1, level_max=0.5)
+        assert rep.deadband == pytest.approx(db, abs=0.02)

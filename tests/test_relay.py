@@ -509,3 +509,69 @@ def test_experiment_argument_checks() -> None:
                 dict(window_margin=1.0), dict(max_cycles=0), dict(pv_window=-1.0)):
         with pytest.raises(ValueError):
             RelayPlan(**(dict(target_amplitude=1.0) | bad))
+
+
+# ---------------------------------------------------------------------------------- noisy PV
+def _mast_like(seed: int, load: float = 0.0):
+    """Integrating loop 0.9/(s (0.25 s + 1)) e^{-0.06 s} behind a 3-unit dead zone, PV noise
+    0.03 and quantisation 360/4096 (the mast-pan scenario), host loop at a 10 ms tick."""
+    from autotune.relay import steady_converged
+    from mock_device.plant import Actuator, LtiPlant, Sensor
+
+    dt, noise, res, d0 = 0.01, 0.03, 360 / 4096, 9.0
+    plant = LtiPlant([0.9], [0.25, 1.0, 0.0], 0.06, max_step=dt)
+    sensor = Sensor(noise, res, rng=np.random.default_rng(seed))
+    act = Actuator(100.0, 3.0)
+    eps = max(3 * noise, 2 * res)
+    plan = RelayPlan(target_amplitude=0.5, start_amplitude=d0, amplitude_step_factor=1.5,
+                     deadband=3.0, tick=dt, pv_noise=noise, pv_resolution=res, max_cycles=30)
+    exp = RelayExperiment(plan, RelaySettings(0.0, 0.0, d0, eps), 30.0, converged=lambda cs:
+                          steady_converged(cs, 0.02, min_cycles=5, hysteresis=eps, tick=dt,
+                                           noise_std=noise, resolution=res))
+    for k in range(100_000):
+        step = exp.update(k * dt, sensor.read(plant.y))
+        if step.done:
+            break
+        plant.advance(act.apply(step.output) + load, dt)
+    return exp
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_bias_stays_put_on_noisy_quantised_pv(seed: int) -> None:
+    """No load: the half-period mismatch is noise and quantisation only; the bias must not chase
+    it (it used to swing 0.12, -0.10, 0.24, -0.38, 0.47) and the run converges."""
+    exp = _mast_like(seed)
+    assert exp.end_reason == "converged"
+    assert len(exp.cycles) <= 14
+    assert abs(exp.settings.bias) <= 0.05 * exp.settings.amplitude
+    assert len(exp.settled_cycles) >= 5  # the analysis gets steady cycles after the last change
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_bias_balances_a_real_load_on_noisy_pv(seed: int) -> None:
+    """A load of 1 output unit at the plant input: the bias converges towards -1 without
+    oscillating in sign (the gain halves at a sign change)."""
+    exp = _mast_like(seed, load=1.0)
+    assert exp.end_reason == "converged"
+    biases = [e.detail["to"] for e in exp.events if e.kind == "bias_changed"]
+    assert biases and all(b < 0 for b in biases)
+    assert exp.settings.bias == pytest.approx(-1.0, abs=0.1)
+    steps = np.diff([0.0] + biases)
+    assert all(abs(b) <= abs(a) + 1e-12 for a, b in zip(steps, steps[1:], strict=False))
+
+
+def test_switch_jitter_and_tolerances() -> None:
+    from autotune.relay import measurement_tolerances, steady_converged, switch_jitter
+
+    # analytic: sinusoid of peak a, period P crossing zero has slope 2 pi a / P
+    sd = switch_jitter(1.0, 2 * math.pi, 0.0, noise_std=0.1)
+    assert sd == pytest.approx(0.1)
+    assert switch_jitter(1.0, 1.0, tick=0.012) == pytest.approx(0.012 / math.sqrt(12))
+    tol_p, tol_a = measurement_tolerances(1.0, 1.0, tick=0.01, noise_std=0.03, resolution=0.09)
+    assert tol_a == pytest.approx(0.15)
+    assert tol_p > 0.01
+    cyc = [CycleFigures(i, i, i + 1, p, pp, p / 2, p / 2, 0, pp / 2, -pp / 2, 1, 0)
+           for i, (p, pp) in enumerate([(1.0, 1.0), (1.0, 1.0), (1.04, 0.9), (1.04, 0.9)])]
+    assert not steady_converged(cyc, 0.02)  # ideal measurement: 4% and 10% are real changes
+    assert steady_converged(cyc, 0.02, tick=0.01, noise_std=0.03, resolution=0.09,
+                            hysteresis=0.2)

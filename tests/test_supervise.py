@@ -85,10 +85,15 @@ def test_link_quality_off_and_counter_reset() -> None:
 def test_link_quality_needs_enough_frames() -> None:
     mon = LinkQualityMonitor(0.1, 1.0, min_frames=20)
     c = LinkCounters(0, 0, 0, 0)
-    # 10 frames a second, all bad: under min_frames in a 1 s window, so not judged
-    for k in range(30):
+    # 10 frames a second, all bad: the window stretches back until it holds 20 stream frames
+    found = None
+    for k in range(40):
         c = LinkCounters(c.good, c.rejected + 1, c.received, c.lost + 1)
-        assert mon.update(0.1 * (k + 1), c) is None
+        f = mon.update(0.1 * (k + 1), c)
+        if f is not None:
+            found = k + 1
+            break
+    assert found == 21  # 20 frames after the base reading (the first one)
 
 
 def test_link_quality_validation() -> None:

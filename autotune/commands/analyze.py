@@ -19,6 +19,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("session", metavar="SESSION", help="session.jsonl written by `tune`")
     parser.add_argument("--json", metavar="FILE", default=None,
                         help="where to write result.json (default: result.json next to SESSION)")
+    parser.add_argument("--deadband", metavar="U", type=float, default=None,
+                        help="actuator dead zone to take out of the output before the analysis "
+                             "(output units; default: the breakaway precheck's figure, as the "
+                             "live run did; 0 = none)")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -46,8 +50,9 @@ def session_inputs(session: Any) -> dict[str, Any]:
     """The analysis inputs from a recorder.Session: relay-phase arrays, settings, tick, noise.
 
     Relay samples: those recorded in phase "relay" (all samples when no phase was recorded).
-    Settings: the last `relay_settings` event, else the header config's [relay]. PV is
-    multiplied by the header's `sign` (the relay runs on the sign-normalised loop).
+    Settings: the last `relay_settings` / `settings_applied` event, else the header config's
+    [relay]. PV is multiplied by the header's `sign` (the relay runs on the sign-normalised
+    loop). deadband: the breakaway precheck's dead zone (output units), 0 when none.
     """
     header = session.header
     sign = _finite(header.get("sign")) or _finite(_get(header, "config", "connection", "sign"))
@@ -58,7 +63,8 @@ def session_inputs(session: Any) -> dict[str, Any]:
     ok = mask & np.isfinite(session.t) & np.isfinite(session.pv) & np.isfinite(session.out)
     t, y, u = session.t[ok], sign * session.pv[ok], session.out[ok]
     sp = session.sp[ok]
-    events = [e for e in session.events if e.get("kind") == "relay_settings"]
+    events = [e for e in session.events
+              if e.get("kind") in ("relay_settings", "settings_applied")]
     detail = events[-1].get("detail") if events else None
     cfg_relay = _get(header, "config", "relay") or {}
     src = detail if isinstance(detail, dict) else cfg_relay
@@ -82,8 +88,14 @@ def session_inputs(session: Any) -> dict[str, Any]:
             resid = pv_rest - np.polyval(np.polyfit(k, pv_rest, 1), k)
             noise = float(np.std(resid))
     limit = _finite(_get(header, "config", "safety", "output_limit"))
+    deadband = 0.0
+    for e in session.events:
+        det = e.get("detail")
+        if e.get("kind") == "precheck" and isinstance(det, dict) and \
+                (e.get("check") == "breakaway" or "deadband" in det):
+            deadband = _finite(det.get("deadband")) or 0.0
     return {"t": t, "y": y, "u": u, "settings": settings, "ts": tick, "noise_std": noise,
-            "output_limit": limit, "sign": sign}
+            "output_limit": limit, "sign": sign, "deadband": deadband}
 
 
 def run(args: argparse.Namespace) -> int:
@@ -94,14 +106,27 @@ def run(args: argparse.Namespace) -> int:
     inp = session_inputs(session)
     if inp["t"].size < 10:
         raise UserError(f"{args.session}: no relay samples to analyse")
+    db = inp["deadband"] if args.deadband is None else float(args.deadband)
+    if db < 0:
+        raise UserError(f"--deadband must be >= 0, got {db:g}")
+    settings, u = inp["settings"], inp["u"]
+    if db > 0:
+        # as the live run: the plant sees the output minus the dead zone (u - sign(u) deadband)
+        u = np.where(np.abs(u) <= db, 0.0, u - np.sign(u) * db)
+        settings = dataclasses.replace(settings, amplitude=max(settings.amplitude - db, 1e-9))
     try:
-        an = analysis.analyse_relay(inp["t"], inp["y"], inp["u"], inp["settings"],
+        an = analysis.analyse_relay(inp["t"], inp["y"], u, settings,
                                     noise_std=inp["noise_std"], ts=inp["ts"],
                                     output_limit=inp["output_limit"])
     except analysis.AnalysisError as exc:
         raise UserError(f"{args.session}: {exc}") from None
     result: dict[str, Any] = {"source": str(args.session), **analysis.result_fields(an)}
     result["relay"]["centre"] = inp["settings"].centre
+    if db > 0:
+        result["relay"]["amplitude"] = inp["settings"].amplitude
+        result["relay"]["effective_amplitude"] = settings.amplitude
+        result["deadband"] = {"deadband": db, "correction": "analysis on the output minus the "
+                              "dead zone (u - sign(u) deadband); --deadband 0 turns it off"}
     result["end_reason"] = session.reason or "cut-off"
     result["notes"] = list(session.warnings)
     result["proposals"] = _proposals(an, session.header, result["notes"])
@@ -115,6 +140,8 @@ def run(args: argparse.Namespace) -> int:
     params = ", ".join(f"{k} {v:.4g}" for k, v in an.model.params.items())
     print(f"model           {an.model.kind}: {params}")
     print(f"cycles used     {an.cycles_used}{'' if an.converged else ' (not converged)'}")
+    if db > 0:
+        print(f"dead zone       {db:.4g} taken out of the output (--deadband 0: none)")
     for w in an.warnings:
         print(f"warning: {w}")
     print(f"wrote {out}")

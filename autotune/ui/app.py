@@ -101,8 +101,9 @@ class Terminal:
                  rich: bool | None = None) -> None:
         self.console = console or Console(highlight=False)
         self.stdin = stdin if stdin is not None else sys.stdin
-        self.rich = self.console.is_terminal if rich is None else rich
-        self.keys_available = self.rich and _isatty(self.stdin)
+        # full screens need a terminal that moves the cursor; a dumb one gets plain lines
+        self.rich = self.console.is_interactive if rich is None else rich
+        self.keys_available = _isatty(self.stdin)  # abort keys work whenever someone types
         self.keys: queue.Queue[str] = queue.Queue()
         self.live: Live | None = None
         self.router: KeyRouter | None = None
@@ -380,7 +381,8 @@ class BenchJob:
 
     # ---------------------------------------------------------------- stage 1: start + relay
     def confirm_start(self) -> bool:
-        """Called by the runner after it connected: the start screen and the operator's Y."""
+        """Called by the runner before it opens the port: the start screen and the operator's
+        Y (or --yes). From a yes on, an abort key stops the run from the key thread."""
         run = self.tune.run if self.tune is not None else None
         view = self.start_view()
         term = self.term
@@ -390,14 +392,13 @@ class BenchJob:
             term.lines(plain.start_lines(view))
         if self.settings.yes:
             term.line("--yes given: starting without asking.")
-            return True
-        term.line("Press Y when every line above is true; a stop key leaves.")
-        key = term.wait_key(("y", "Y"))
-        if key == ABORT:
-            return False
-        # from here on an abort key stops the powered run at once, from the key thread
-        term.on_abort = lambda k: run.request_stop("aborted", f"abort key ({k}) pressed",
-                                                   EXIT_ABORTED)
+        else:
+            term.line("Press Y when every line above is true; a stop key leaves.")
+            if term.wait_key(("y", "Y")) == ABORT:
+                return False
+        if run is not None:
+            term.on_abort = lambda k: run.request_stop("aborted", f"abort key ({k}) pressed",
+                                                       EXIT_ABORTED)
         return True
 
     def run_relay(self) -> int:
@@ -513,6 +514,10 @@ class BenchJob:
         while True:
             view = self.proposals_view(message)
             term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h), "proposals")
+            if term.live is None:
+                term.lines(plain.proposals_lines(view))
+                term.line("keys: 1-9/Tab/n/p choose, m/M Ms target, d/D detune, Enter step; "
+                          "Space, Esc, q stop and leave")
             key = term.wait_key()
             message = ""
             if key == ABORT:
@@ -696,6 +701,8 @@ class BenchJob:
             if len(self.attempts) >= self.settings.max_steps:
                 return ABORT
             return "other"  # unattended: the next proposal in line (see next_unattended)
+        if term.live is None:
+            term.line("keys: a accept, d detune, o other proposal, r repeat; Space, Esc, q leave")
         while True:
             key = term.wait_key(("a", "d", "o", "r"))
             if key == ABORT:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import sys
 from pathlib import Path
 
@@ -22,9 +23,18 @@ ROOT = Path(__file__).resolve().parents[2]
 EXIT_ABORTED = 3
 
 
+def terminal_env() -> dict[str, str]:
+    """The environment of a terminal emulator, whatever the test runner's (CI may have none)."""
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("COLUMNS", "LINES", "NO_COLOR", "FORCE_COLOR", "TERM")}
+    env["TERM"] = "xterm-256color"
+    return env
+
+
 def spawn(*args: str, rows: int = 30, cols: int = 100) -> pexpect.spawn:
     return pexpect.spawn(sys.executable, ["-m", "autotune", "demo", *args], cwd=str(ROOT),
-                         dimensions=(rows, cols), encoding="utf-8", timeout=90)
+                         dimensions=(rows, cols), encoding="utf-8", timeout=90,
+                         env=terminal_env())
 
 
 def finish(child: pexpect.spawn) -> int:
@@ -127,3 +137,50 @@ def test_unattended_demo_writes_the_gains_and_exits_0(tmp_path: Path) -> None:
     rec = read_gains_file(out / "gains.toml")
     assert rec.gains.kp > 0 and rec.period > 0
     assert json.loads((out / "result.json").read_text())["end_reason"] == "converged"
+
+
+def test_plain_lines_when_stdout_is_not_a_terminal(tmp_path: Path) -> None:
+    """Keys from the terminal, output through a pipe: plain lines, no escape codes, same job."""
+    out = tmp_path / "plain"
+    cmd = (f"set -o pipefail; {sys.executable} -m autotune demo --out {out} --speed 4 "
+           f"| cat")
+    child = pexpect.spawn("bash", ["-c", cmd], cwd=str(ROOT), encoding="utf-8", timeout=90,
+                          env=terminal_env())
+    seen: list[str] = []
+    try:
+        for pattern, key in (("Press Y when every line above is true", "y"),
+                             ("keys: 1-9/Tab/n/p choose", "\r"),
+                             ("keys: a accept", "a")):
+            child.expect(pattern)
+            seen.append(child.before)
+            child.send(key)
+        child.expect("done: gains accepted")
+        seen.append(child.before)
+        code = finish(child)
+        seen.append(child.before or "")
+    finally:
+        if child.isalive():
+            child.terminate(force=True)
+    assert code == 0
+    text = "".join(seen)
+    assert "\x1b" not in text  # no escape codes at all
+    assert "The robot is on blocks" in text and "[relay" in text and "converged" in text
+    assert "robust-pid" in text and "figure" in text and "measured" in text
+    assert read_gains_file(out / "gains.toml").gains.kp > 0
+
+
+def test_abort_keys_work_in_an_unattended_run_too(tmp_path: Path) -> None:
+    """--yes skips the questions, never the stop keys."""
+    out = tmp_path / "yes-abort"
+    child = spawn("--yes", "--out", str(out), "--speed", "2")
+    try:
+        child.expect("relay 2/\\d+")
+        child.send("q")
+        child.expect("abort key \\(q\\) pressed")
+        code = finish(child)
+    finally:
+        if child.isalive():
+            child.terminate(force=True)
+    assert code == EXIT_ABORTED
+    assert read_session(out / "session.jsonl").reason == "aborted"
+    assert not (out / "gains.toml").exists()

@@ -1,0 +1,124 @@
+"""Bounded soak test (issue 8): one long relay run on a noisy link, against the mock device
+process over a real pty.
+
+1% of the bytes to the host get a bit flipped (about a quarter of the sample frames are lost),
+0.2% of the bytes to the device, and up to 10 ms of jitter on every frame. The relay runs in
+device loop on a 10 Hz board (plant `SOAK_PLANT`, our own scenario) at --speed 100 for
+`SOAK_SECONDS` of device time: 1800 s (half a simulated hour) by default, sized so that the test
+takes about half a minute on a loaded two-core machine; set the environment variable
+AUTOTUNE_SOAK_SECONDS=3600 for the full hour.
+
+Checks: no crash (the relay ends on its own time limit), no missed stop (zero output confirmed
+and recorded), no unbounded memory growth (tracemalloc: what the run keeps per sample stays
+within the size of the relay record it needs for the analysis), counters consistent (the link's
+counts against the session file and against the loss the corruption rate predicts).
+"""
+
+from __future__ import annotations
+
+import os
+import tracemalloc
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from autotune.config import config_from_dict
+from autotune.recorder import read_session
+from autotune.runner_base import RunOptions
+from autotune.session import TuneRun
+
+SOAK_SECONDS = float(os.environ.get("AUTOTUNE_SOAK_SECONDS", "1200"))
+SPEED = float(os.environ.get("AUTOTUNE_SOAK_SPEED", "50"))
+TICK = 0.1  # s, the soak board's period
+CORRUPT = 0.01
+SOAK_PLANT = """
+# soak-wheel: a slow wheel-speed loop on a 10 Hz board (invented demo data)
+[plant]
+num = [0.25]
+den = [0.5, 1.0]
+delay = 0.3
+[sensor]
+noise = 0.02
+resolution = 0.01
+[device]
+period = 0.1
+name = "soak-wheel"
+"""
+SAMPLE_WIRE_BYTES = 26  # Sample frame: 3 + 19 payload + 2 CRC, COBS +1, delimiter +1
+RECORD_BYTES_PER_SAMPLE = 3 * (8 + 24) * 1.25  # the runner's relay record: three lists of
+#                                               floats (pointer + float object, list slack)
+
+
+def test_soak_noisy_link(tmp_path: Path) -> None:
+    plant = tmp_path / "soak-wheel.toml"
+    plant.write_text(SOAK_PLANT)
+    cfg = config_from_dict({
+        "connection": {"loop": "device"},
+        "relay": {"max_time": SOAK_SECONDS, "max_cycles": 100000, "min_cycles": 100000},
+        # limits as for a real run, with the watchdog and sample gap allowing for a loaded
+        # test machine at 100 x speed (0.3 s and 10 ms of wall clock)
+        "safety": {"max_duration": SOAK_SECONDS + 1000, "watchdog": 60.0,
+                   "max_sample_gap": 1.0},
+        "prechecks": {"breakaway": False},
+    }, "soak.toml")
+    opts = RunOptions(port="sim", yes=True, out_dir=tmp_path / "out", plant=str(plant),
+                      speed=SPEED, faults=f"corrupt={CORRUPT},corrupt_rx=0.002,jitter=0.01,"
+                      "seed=11", keys=False)
+    memory: list[tuple[int, int]] = []  # (relay samples so far, traced bytes)
+    tr: TuneRun
+
+    def on_update(snap: Any) -> None:
+        memory.append((len(tr.relay_data.t), tracemalloc.get_traced_memory()[0]))
+
+    tr = TuneRun(cfg, opts, on_update=on_update, say=lambda line: None, analyse=False)
+    tracemalloc.start(1)
+    try:
+        outcome = tr.execute()
+    finally:
+        tracemalloc.stop()
+
+    # no crash: the relay ran to its own time limit
+    assert outcome.reason == "max_time", (outcome.reason, outcome.message)
+    # no missed stop
+    assert outcome.stop_confirmed is True
+    assert outcome.session_path is not None
+    s = read_session(outcome.session_path)
+    assert s.end is not None and s.end["reason"] == "max_time" and s.end["stop_confirmed"]
+    assert not s.warnings
+    assert "stopped" in [e["kind"] for e in s.events]
+    assert s.out[-1] == 0.0
+    relay = s.phase_mask("relay")
+    assert s.t[relay][-1] - s.t[relay][0] >= 0.95 * SOAK_SECONDS
+
+    # counters consistent
+    st = tr.run.link.stats()
+    assert st.samples_dropped == 0 and st.handler_errors == 0
+    assert s.t.size <= st.samples_received  # only frames that passed the CRC were recorded
+    assert s.t.size >= 0.98 * st.samples_received  # (a few before the file opened)
+    assert np.all(np.diff(s.t) > 0)
+    assert st.frames_good >= st.samples_received + st.rtt_count
+    loss = st.seq_gaps / (st.seq_gaps + st.samples_received)
+    expected = 1.0 - (1.0 - CORRUPT) ** SAMPLE_WIRE_BYTES  # a frame with any flipped bit
+    assert 0.7 * expected < loss < 1.6 * expected, (loss, expected)
+    assert st.crc_errors + st.framing_errors >= 0.5 * st.seq_gaps
+    # the device's samples in the file are one a tick where none was lost
+    dt = np.diff(s.t[relay])
+    assert np.isclose(np.min(dt), TICK, atol=1e-6)
+    assert np.all(np.isclose(dt / TICK, np.round(dt / TICK), atol=1e-3))
+    cycles = tr.experiment.cycles if tr.experiment is not None else []
+    assert len(cycles) > SOAK_SECONDS / 5
+
+    # no unbounded growth: between a quarter of the run and its end, memory grows by no more
+    # than the relay record (which the analysis needs) plus the per-cycle figures
+    pts = [(n, b) for n, b in memory if n > 0]
+    assert len(pts) > 10
+    n0, b0 = next((n, b) for n, b in pts if n >= pts[-1][0] / 4)
+    n1, b1 = pts[-1]
+    assert n1 - n0 > 1000
+    allowed = (n1 - n0) * RECORD_BYTES_PER_SAMPLE + len(cycles) * 4000 + 2_000_000
+    print(f"soak: {SOAK_SECONDS:g} s device time at speed {SPEED:g}, {s.t.size} samples, "
+          f"{len(cycles)} cycles, loss {loss:.3f} (predicted {expected:.3f}), rejected "
+          f"{st.crc_errors + st.framing_errors}, memory growth {b1 - b0} B over {n1 - n0} "
+          f"samples (allowed {allowed:.0f})")
+    assert b1 - b0 < allowed, (b1 - b0, allowed, n1 - n0)
