@@ -33,7 +33,8 @@ from autotune.lti import DelayedTF
 from autotune.model import CANDIDATES, FittedModel, fit_models
 
 DELAYS_INCLUDED = "plant"
-FIT_CYCLES = 10  # the model is fitted to at most this many of the last steady cycles
+FIT_SAMPLES = 3000  # records longer than this ...
+FIT_CYCLES = 10  # ... have the model fitted through this many steady cycles only
 DELAYS_NOTE = ("ultimate_gain, ultimate_period and model are the continuous plant's: the device "
                "tick's sample-and-hold (about ts/2) is modelled and excluded; "
                "*_with_hold figures include it; the classic figures include it and the "
@@ -353,18 +354,16 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
 
     at_rest = _rest_at_start(y, u, switch_indices(u, state)[0], noise, 2 * a,
                              settings.bias if settings is not None else None, d)
-    if n_cyc > FIT_CYCLES:
-        # long record: fit the last FIT_CYCLES steady cycles, simulated from one cycle before
-        # (the dead time is shorter than a period; the unknown state there is fitted)
-        j0 = cycles[-FIT_CYCLES - 1].i_start
-        sl = slice(j0, None)
-        model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
-                           fit_from=cycles[-FIT_CYCLES].i_start - j0, candidates=candidates,
-                           noise_floor=noise)
-    else:
-        model = fit_models(t, y, u, ts=ts, w1=w1, phase1=_phase_below_zero(g1),
-                           fit_from=0 if at_rest else i0, candidates=candidates,
-                           noise_floor=noise)
+    end = t.size
+    if t.size > FIT_SAMPLES and n_cyc > FIT_CYCLES:
+        # long record: the model is fitted to its head, from the start through FIT_CYCLES
+        # steady cycles (the rest repeats the same oscillation); the cycle figures, Fourier
+        # points and uncertainty still use every steady cycle
+        end = cycles[FIT_CYCLES - 1].i_end
+    sl = slice(0, end)
+    model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
+                       fit_from=0 if at_rest else i0, candidates=candidates,
+                       noise_floor=noise)
     tf = model.tf
     up = tf.ultimate_point()
     mismatch = {p.harmonic: float(abs(complex(tf.freq_response(p.w)) - p.g) / abs(p.g))
@@ -483,6 +482,7 @@ def result_fields(analysis: RelayAnalysis) -> dict[str, Any]:
         "ultimate_period_with_hold": analysis.tu_with_hold,
         "uncertainty": dict(analysis.uncertainty),
         "model": {"kind": m.kind, "params": dict(m.params), "residual": m.residual,
+                  "num": list(m.tf.num), "den": list(m.tf.den), "delay": m.tf.delay,
                   "candidates": {k: {"params": dict(c.params), "residual": c.residual}
                                  for k, c in m.candidates.items()}},
         "cycles_used": analysis.cycles_used,

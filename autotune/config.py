@@ -101,6 +101,9 @@ class RelayConfig:
     adapt_amplitude: adapt d towards the target amplitude (false: keep the start amplitude).
     balance_bias: adjust the bias until the half-periods match (false: keep the bias).
     stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot rise.
+    amplitude_tolerance: d is left alone while the PV amplitude lies within this fraction of
+        the target (widened to the PV's peak-reading error); the target is a guide, and every
+        change of d costs cycles.
     min_cycles: steady cycles (after the last settings change) needed before convergence can be
         declared; the last three of them must agree within converge_tol.
     confirm_samples: host loop: a switch needs this many consecutive samples beyond the
@@ -119,7 +122,8 @@ class RelayConfig:
     adapt_amplitude: bool = True
     balance_bias: bool = True
     stall_time: float = 5.0
-    min_cycles: int = 5
+    min_cycles: int = 7
+    amplitude_tolerance: float = 0.25
     confirm_samples: int = 1
 
 
@@ -130,8 +134,8 @@ class PrecheckConfig:
     rest_time: output held at the bias this long to measure noise, drift, resolution (s).
     pulse_size: size of the direction pulse (output units); None = the relay start amplitude.
     pulse_timeout: the PV must respond to the pulse within this long (s).
-    breakaway: run two slow output ramps first to measure the deadband (on by default: a few
-        seconds of motion, and an unmeasured dead zone inflates the ultimate gain by
+    breakaway: run two slow output ramps first to measure the deadband (turn it on for any
+        loop with static friction: an unmeasured dead zone inflates the ultimate gain by
         d / (d - deadband); the relay then starts at twice the deadband at least and the
         analysis works on the output minus the dead zone). Off: the deadband counts as 0.
     breakaway_rate: ramp rate of the breakaway test (output units per s).
@@ -140,7 +144,7 @@ class PrecheckConfig:
     rest_time: float = 1.0
     pulse_size: float | None = None
     pulse_timeout: float = 2.0
-    breakaway: bool = True
+    breakaway: bool = False
     breakaway_rate: float = 5.0
 
 
@@ -391,6 +395,7 @@ def validate(cfg: Config, source: str | None = None) -> None:
     _positive(src, "relay.max_time", r.max_time)
     _positive(src, "relay.bias_tolerance", r.bias_tolerance)
     _positive(src, "relay.converge_tol", r.converge_tol)
+    _positive(src, "relay.amplitude_tolerance", r.amplitude_tolerance)
     _positive(src, "relay.stall_time", r.stall_time)
     if r.min_cycles < 2:
         raise ConfigError(src, "relay.min_cycles", f"must be >= 2, got {r.min_cycles}")

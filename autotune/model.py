@@ -322,8 +322,9 @@ class _Problem:
         scale = np.sqrt(np.sum(x * x, axis=0))
         scale[scale == 0] = 1.0
         xs = x / scale
-        if self.free_response:
-            beta = np.linalg.lstsq(xs, self.yw, rcond=None)[0] / scale
+        if self.free_response:  # the modes can be nearly collinear: pivoted QR
+            beta = linalg.lstsq(xs, self.yw, lapack_driver="gelsy", check_finite=False)[0]
+            beta = beta / scale
         else:
             try:
                 beta = np.linalg.solve(xs.T @ xs, xs.T @ self.yw) / scale

@@ -726,14 +726,15 @@ class PoweredRun:
         self.phase = Phase.STOPPING
         while time.monotonic() < deadline:
             got = self.link.drain_samples()
-            for rec in got:
+            for i, rec in enumerate(got):
                 if rec.axis != self.axis:
                     continue
                 self.last_sample = rec
                 self._record(rec, Phase.STOPPING.value)
                 if rec.output == 0.0 and rec.mode == 0:
-                    # keep recording what is already queued, then report
-                    for r2 in self.link.drain_samples():
+                    # keep recording what is already queued (the rest of this batch first,
+                    # in order), then report
+                    for r2 in got[i + 1:] + self.link.drain_samples():
                         if r2.axis == self.axis:
                             self._record(r2, Phase.STOPPING.value)
                     return rec.t

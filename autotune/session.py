@@ -335,7 +335,8 @@ class TuneRun:
     def _breakaway(self, run: PoweredRun, threshold: float) -> None:
         """Two output ramps (up at breakaway_rate, down at twice it) measure the deadband.
 
-        Each ramp starts from rest at the bias and stops once the PV has moved a few noise
+        Each ramp starts from rest at the bias (held max(3 x rest_time, 10 x the direction
+        pulse's response time) first) and stops once the PV has moved a few noise
         levels (at most 0.3 of the PV window); `prechecks.deadband_from_two_ramps`
         compares the times the two responses take to reach matching levels, which cancels the
         loop's lag and dead time. If the PV moved too little for that, the first ramp's upper
@@ -359,8 +360,9 @@ class TuneRun:
                       f"{-rate_b:g}/s, up to {max_step:g}")
 
         def ramp(rate: float, direction: int, stop_level: float) -> tuple[Arrays, float]:
-            # from rest at the bias: the PV settles after the previous motion
-            held = self._hold(run, bias, cfg.prechecks.rest_time)
+            # from rest at the bias: the PV settles after the previous motion (an integrating
+            # loop coasts on through its lag; motion left over biases the reading)
+            held = self._hold(run, bias, settle)
             tail = held[len(held) // 2:] or held
             t0 = run.last_sample.t
             base = float(np.mean([self._y(r.pv) for r in tail]))
@@ -387,6 +389,10 @@ class TuneRun:
                 data.t = [x - shift for x in data.t]
             return data, t0
 
+        lag = 0.0
+        if self.direction is not None and self.direction.t_response is not None:
+            lag = max(0.0, self.direction.t_response - self._t_pulse)
+        settle = max(3.0 * cfg.prechecks.rest_time, 10.0 * lag)
         stop_a = level_max + 2.0 * max(rest.resolution, noise)
         ramp_a, _ = ramp(rate_a, +1, stop_a)
         ramp_b, _ = ramp(rate_b, -1, ratio * level_max + 2.0 * max(rest.resolution, noise))
@@ -431,6 +437,7 @@ class TuneRun:
             max_time=r.max_time,
             converge_tol=r.converge_tol,
             stall_time=r.stall_time,
+            amplitude_tolerance=r.amplitude_tolerance,
             deadband=self.deadband,
             tick=self.run.info.tick if self.run is not None else 0.0,
             pv_noise=self.rest.noise_std if self.rest else 0.0,

@@ -403,14 +403,19 @@ def load_figures(
 
 # ---------------------------------------------------------------------- predictions (pure)
 def model_from_dict(model: dict[str, Any]) -> Any:
-    """DelayedTF from a result.json `model` ({"kind", "params"}); None if it cannot be built.
+    """DelayedTF from a result.json `model`; None if it cannot be built.
 
-    Kinds and params as autotune.model.FittedModel: fopdt (gain, time_constant, delay), sopdt
-    (gain, t1, t2, delay), integrator_lag (velocity_gain, time_constant, delay); times in s.
+    The transfer function is read from `num`, `den` (highest power of s first) and `delay` (s),
+    which every model kind writes; result files without them fall back to the kind's params:
+    fopdt (gain, time_constant, delay), sopdt (gain, t1, t2, delay), integrator_lag
+    (velocity_gain, time_constant, delay).
     """
-    from autotune.lti import fopdt, integrator_lag, sopdt
+    from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
 
     try:
+        if "num" in model and "den" in model:
+            return DelayedTF(tuple(float(c) for c in model["num"]),
+                             tuple(float(c) for c in model["den"]), float(model.get("delay", 0.0)))
         kind, p = model["kind"], model["params"]
         if kind == "fopdt":
             return fopdt(float(p["gain"]), float(p["time_constant"]), float(p["delay"]))

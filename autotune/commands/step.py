@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_overrides
-from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, UserError
+from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
 from autotune.pid import PidGains
 from autotune.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
 
@@ -396,13 +396,6 @@ def store_later(cfg: Config, args: argparse.Namespace, gains: PidGains, stdout: 
         run.__exit__(None, None, None)
 
 
-def _ask(stdout: TextIO, stdin: Any, prompt: str) -> str:
-    stdout.write(prompt)
-    stdout.flush()
-    line = stdin.readline()
-    return line.strip().lower()
-
-
 def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = None) -> int:
     from autotune.commands.tune import default_out_dir
 
@@ -426,77 +419,15 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
         max_time_saturated=args.max_saturation,
     )
     out_root = Path(args.out) if args.out else default_out_dir("step")
-    outcomes: list[Any] = []
-    sessions: list[Path] = []
-    gains_file: Path | None = None
-    n_batch = 0
-    code = EXIT_FAILED
-    end_reason = "unknown"
-    while True:
-        n_batch += 1
-        out_dir = out_root if n_batch == 1 else out_root / f"attempt-{n_batch}"
-        batch = run_batch(cfg, args, choice, out_dir, spec, stdout,
-                          args.retries if args.yes else 0)
-        outcomes += batch.outcomes
-        if batch.session is not None and batch.session.exists():
-            sessions.append(batch.session)
-        ro = batch.run_outcome
-        end_reason = ro.reason
-        for o in batch.outcomes:
-            text = describe(o)
-            if text:
-                print(text, file=stdout)
-        last = batch.outcomes[-1] if batch.outcomes else None
-        if ro.reason != "completed" or last is None or last.verdict is None:
-            code = ro.exit_code if ro.exit_code != EXIT_OK else EXIT_FAILED
-            write_outputs(out_root, outcomes, end_reason, gains_file, sessions)
-            print(f"autotune step: {ro.message or ro.reason}", file=sys.stderr)
-            return code
-        verdict = last.verdict
-        device = dict(batch.device, axis=cfg.connection.axis)
-        gpath = Path(args.gains_file) if args.gains_file else out_root / "gains.toml"
-        if args.yes:
-            if verdict.passed:
-                gains_file = accept(last, gpath, batch.session, stdout, device)
-                code = EXIT_OK
-            else:
-                code = EXIT_FAILED
-            break
-        action = _ask(stdout, stdin, f"suggested: {verdict.action.value}. [a]ccept, "
-                      f"[d]etune x{args.detune:g}, [o]ther proposal, [r]epeat, [q]uit: ")
-        if action in ("a", "accept"):
-            gains_file = accept(last, gpath, batch.session, stdout, device)
-            if args.store:
-                store_later(cfg, args, last.candidate.gains, stdout)
-            code = EXIT_OK
-            break
-        if action in ("d", "detune"):
-            g = detune(last.candidate.gains, args.detune)
-            choice = Choice(f"{choice.name} x{args.detune:g}", g, {}, choice.pool, choice.model,
-                            choice.pid_extra)
-            continue
-        if action in ("r", "repeat"):
-            continue
-        if action in ("o", "other"):
-            if not choice.pool:
-                print("no other proposals (use --from-result FILE)", file=stdout)
-                continue
-            names = ", ".join(str(p.get("name")) for p in choice.pool)
-            pick = _ask(stdout, stdin, f"proposal ({names}): ")
-            match = [p for p in choice.pool if str(p.get("name")).lower() == pick]
-            if not match:
-                print(f"no proposal {pick!r}", file=stdout)
-                continue
-            p = match[0]
-            choice = Choice(str(p["name"]), PidGains(float(p["kp"]), float(p.get("ki", 0.0)),
-                                                     float(p.get("kd", 0.0))),
-                            dict(p.get("predicted") or {}), choice.pool, choice.model,
-                            choice.pid_extra)
-            continue
-        code = EXIT_FAILED if not verdict.passed else EXIT_OK
-        break
-    write_outputs(out_root, outcomes, end_reason, gains_file, sessions)
+    from autotune.confirm import run_attempts
+
+    res = run_attempts(cfg, args, choice, spec, out_root, stdout, stdin)
+    write_outputs(out_root, res.outcomes, res.end_reason, res.gains_file, res.sessions)
+    last = res.outcomes[-1] if res.outcomes else None
+    if last is None or last.verdict is None or res.end_reason != "completed":
+        print(f"autotune step: {res.reason}", file=sys.stderr)
+        return res.exit_code
     print(f"result: {out_root / 'result.json'}", file=stdout)
-    if code != EXIT_OK:
-        print(f"autotune step: the step misses the spec: {verdict.reason}", file=sys.stderr)
-    return code
+    if res.exit_code != EXIT_OK:
+        print(f"autotune step: the step misses the spec: {res.reason}", file=sys.stderr)
+    return res.exit_code

@@ -6,8 +6,10 @@ import argparse
 import sys
 import time
 from pathlib import Path
+from typing import Any, TextIO
 
 from autotune.config import (
+    Config,
     ConnectionConfig,
     PrecheckConfig,
     RelayConfig,
@@ -28,7 +30,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.epilog = (
         "Options override the config file, which overrides the built-in defaults shown.\n"
         "Abort at any time with Space, Esc, q or Ctrl-C; keep a physical power cut-off within\n"
-        "reach. Exit codes: 0 converged, 1 limit/fault/failed check or no convergence,\n"
+        "reach. Exit codes: 0 converged (and the confirmation step, when run, accepted or\n"
+        "within the spec), 1 limit/fault/failed check, no convergence or a step off the spec,\n"
         "2 usage or configuration, 3 aborted, 4 link lost, 5 zero output not confirmed."
     )
     p.add_argument("--port", metavar="URL|sim",
@@ -78,6 +81,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="for --port sim: noise seed (default: the plant's)")
     p.add_argument("--csv", action="store_true",
                    help="also write the samples as session.csv next to session.jsonl")
+    p.add_argument("--no-step", action="store_true",
+                   help="do not offer the confirmation step after the proposals (default: with "
+                        "--yes the step runs with the default proposal; otherwise you are asked "
+                        "which proposal to try and whether to run it)")
 
 
 def _overrides(args: argparse.Namespace) -> dict[str, object]:
@@ -141,4 +148,69 @@ def run(args: argparse.Namespace) -> int:
         print(f"result: {outcome.result_path}")
     if outcome.exit_code != EXIT_OK:
         print(f"autotune tune: {outcome.reason}: {outcome.message}", file=sys.stderr)
+        return outcome.exit_code
+    if res is not None and res.get("proposals") and not args.no_step:
+        return confirmation_step(cfg, args, res, out_dir, outcome.result_path)
     return outcome.exit_code
+
+
+def confirmation_step(cfg: Config, args: argparse.Namespace, res: dict[str, Any],
+                      out_dir: Path, result_path: Path | None,
+                      stdout: TextIO | None = None, stdin: Any = None) -> int:
+    """The confirmation step after the proposals (line mode): with --yes the default proposal,
+    else the operator picks one (name or number; Enter: the default) and confirms; then the
+    same attempt loop as `autotune step` (autotune.confirm.run_attempts) in OUT/step. Adds
+    `step`, `step_attempts`, `step_end_reason` and `gains_file` to result.json. Returns 0 when
+    the step was skipped or accepted / meets the spec, else the step's exit code."""
+    from autotune.confirm import (
+        ask,
+        pick_interactively,
+        proposal_choice,
+        run_attempts,
+        step_namespace,
+    )
+    from autotune.recorder import write_result
+    from autotune.verdict import StepSpec
+
+    stdout = stdout if stdout is not None else sys.stdout
+    stdin = stdin if stdin is not None else sys.stdin
+    pool = [p for p in res.get("proposals") or [] if isinstance(p, dict)]
+    default = pick_interactively(pool, "")
+    if default is None:
+        return EXIT_OK
+    if args.yes:
+        prop = default
+    else:
+        for k, p in enumerate(pool, 1):
+            print(f"  {k:>2}. {p.get('name')}", file=stdout)
+        prop = None
+        while prop is None:
+            answer = ask(stdout, stdin, f"proposal for the confirmation step (name or number; "
+                                        f"Enter: {default.get('name')}): ")
+            prop = pick_interactively(pool, answer)
+            if prop is None:
+                print(f"no proposal {answer!r}", file=stdout)
+        go = ask(stdout, stdin, f"run the confirmation step with {prop.get('name')} now "
+                                "(powers the motor)? [Y/n]: ")
+        if go in ("n", "no", "q", "quit"):
+            print("no confirmation step: try the gains later with `autotune step "
+                  f"--from-result {result_path} --proposal {prop.get('name')}`", file=stdout)
+            return EXIT_OK
+    choice = proposal_choice(prop, pool, res.get("model") if isinstance(res.get("model"),
+                                                                      dict) else None)
+    ns = step_namespace(yes=args.yes, faults=args.faults, seed=args.seed)
+    spec = StepSpec(max_overshoot=cfg.design.max_overshoot,
+                    max_settling_time=cfg.design.max_settling_time,
+                    max_time_saturated=ns.max_saturation)
+    print(f"confirmation step with {choice.name}", file=stdout)
+    att = run_attempts(cfg, ns, choice, spec, out_dir / "step", stdout, stdin)
+    res["step"] = att.outcomes[-1].step_field() if att.outcomes else None
+    res["step_attempts"] = [o.step_field() for o in att.outcomes]
+    res["step_end_reason"] = att.end_reason
+    res["step_sessions"] = [str(p) for p in att.sessions]
+    res["gains_file"] = None if att.gains_file is None else str(att.gains_file)
+    path = write_result(result_path or out_dir / "result.json", res)
+    print(f"result: {path}", file=stdout)
+    if att.exit_code != EXIT_OK:
+        print(f"autotune tune: confirmation step: {att.reason}", file=sys.stderr)
+    return att.exit_code

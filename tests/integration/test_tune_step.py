@@ -1,0 +1,43 @@
+"""`autotune tune --yes` runs the confirmation step with the default proposal after the
+proposals, through the real mock device process (cart-wheel scenario); --no-step skips it."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import tomllib
+from pathlib import Path
+
+
+def _tune(out: Path, *extra: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "autotune", "tune", "--port", "sim", "--plant",
+                           "cart-wheel", "--yes", "--speed", "10", "--seed", "2", "--out",
+                           str(out), *extra], capture_output=True, text=True, timeout=240)
+
+
+def test_tune_yes_runs_the_step_and_writes_gains(tmp_path: Path) -> None:
+    out = tmp_path / "run"
+    proc = _tune(out)
+    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-2000:]
+    res = json.loads((out / "result.json").read_text())
+    default = next(p for p in res["proposals"] if p.get("default"))
+    step = res["step"]
+    assert step is not None and res["step_end_reason"] == "completed"
+    # contract: measured overshoot (percent), rise_time, settling_time (s), iae
+    for key in ("overshoot", "rise_time", "settling_time", "iae"):
+        assert isinstance(step[key], float)
+    gains = tomllib.loads(Path(res["gains_file"]).read_text())["gains"]
+    # the default proposal's gains, unchanged (the step passed, no detuning)
+    assert (gains["kp"], gains["ki"], gains["kd"]) == (default["kp"], default["ki"],
+                                                       default["kd"])
+    assert (out / "step" / "session.jsonl").exists() and (out / "session.jsonl").exists()
+    assert "confirmation step with " + default["name"] in proc.stdout
+
+
+def test_tune_no_step(tmp_path: Path) -> None:
+    out = tmp_path / "run"
+    proc = _tune(out, "--no-step")
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    res = json.loads((out / "result.json").read_text())
+    assert "step" not in res and not (out / "step").exists()
