@@ -23,15 +23,18 @@ ABORT_KEYS: dict[bytes, str] = {b" ": "space", b"\x1b": "esc", b"q": "q", b"Q": 
 
 
 class AbortKeys:
-    """Calls `on_abort(key_name)` from its own thread as soon as an abort key is pressed.
+    """Calls `on_abort(key_name)` from its own thread as soon as an abort key is pressed, and
+    `on_key(character)` (if given) for every other key: the one key thread of a run.
 
     Use as a context manager or call `start()` / `stop()`. `active` tells whether it is
     watching a terminal. The callback is called once per key press; it must be quick and
     thread-safe (the runner's stop request is).
     """
 
-    def __init__(self, on_abort: Callable[[str], None], stream: Any = None) -> None:
+    def __init__(self, on_abort: Callable[[str], None], stream: Any = None,
+                 on_key: Callable[[str], None] | None = None) -> None:
         self.on_abort = on_abort
+        self.on_key = on_key
         self._stream = stream if stream is not None else sys.stdin
         self._fd: int | None = None
         self._saved: list[Any] | None = None
@@ -83,13 +86,19 @@ class AbortKeys:
                 return
             if not data:
                 return
-            for i in range(len(data)):
-                name = ABORT_KEYS.get(data[i : i + 1])
-                if name is not None:
-                    self.pressed.append(name)
-                    with contextlib.suppress(Exception):  # never kill the watcher
-                        self.on_abort(name)
-                    break
+            # A read that holds an abort key anywhere calls `on_abort` once and drops the rest
+            # (so an arrow key's escape sequence counts as Esc: it stops the motor).
+            name = next((ABORT_KEYS[data[i : i + 1]] for i in range(len(data))
+                         if data[i : i + 1] in ABORT_KEYS), None)
+            if name is not None:
+                self.pressed.append(name)
+                with contextlib.suppress(Exception):  # never kill the watcher
+                    self.on_abort(name)
+                continue
+            if self.on_key is not None:
+                for ch in data.decode("utf-8", errors="ignore"):
+                    with contextlib.suppress(Exception):
+                        self.on_key(ch)
 
     def _restore(self) -> None:
         if self._fd is not None and self._saved is not None:

@@ -16,9 +16,7 @@ from __future__ import annotations
 import contextlib
 import io
 import math
-import os
 import queue
-import select
 import sys
 import threading
 import time
@@ -31,7 +29,7 @@ from rich.console import Console, RenderableType
 from rich.live import Live
 
 from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_OK, UserError
-from autotune.keys import ABORT_KEYS, AbortKeys
+from autotune.keys import AbortKeys
 from autotune.progress import RunSnapshot
 from autotune.ui import plain, screens
 from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
@@ -55,35 +53,7 @@ class KeyRouter(AbortKeys):
 
     def __init__(self, on_abort: Callable[[str], None], on_key: Callable[[str], None],
                  stream: Any = None) -> None:
-        super().__init__(on_abort, stream=stream)
-        self.on_key = on_key
-
-    def _watch(self) -> None:
-        fd = self._fd
-        assert fd is not None
-        while not self._stop.is_set():
-            try:
-                ready, _, _ = select.select([fd], [], [], 0.05)
-            except (OSError, ValueError):
-                return
-            if not ready:
-                continue
-            try:
-                data = os.read(fd, 64)
-            except OSError:
-                return
-            if not data:
-                return
-            name = next((ABORT_KEYS[data[i:i + 1]] for i in range(len(data))
-                         if data[i:i + 1] in ABORT_KEYS), None)
-            if name is not None:
-                self.pressed.append(name)
-                with contextlib.suppress(Exception):  # never kill the key thread
-                    self.on_abort(name)
-                continue
-            for ch in data.decode("utf-8", errors="ignore"):
-                with contextlib.suppress(Exception):
-                    self.on_key(ch)
+        super().__init__(on_abort, stream=stream, on_key=on_key)
 
 
 def _isatty(stream: Any) -> bool:
