@@ -31,6 +31,8 @@ import numpy as np
 from autotune.harmonics import FourierPoint, fourier_coefficients, fourier_points
 from autotune.lti import DelayedTF
 from autotune.model import CANDIDATES, FittedModel, fit_models
+from autotune.prechecks import smallest_step
+from autotune.relay import measurement_tolerances, steady_converged
 
 DELAYS_INCLUDED = "plant"
 FIT_SAMPLES = 3000  # records longer than this ...
@@ -108,14 +110,82 @@ def switch_indices(u: np.ndarray, state: np.ndarray | None = None) -> tuple[np.n
     return change, s[change]
 
 
+def _segment_reduce(ufunc: np.ufunc, a: np.ndarray, starts: np.ndarray,
+                    ends: np.ndarray) -> np.ndarray:
+    """ufunc reduced over each a[starts[i]:ends[i]] (non-empty segments, ends <= a.size)."""
+    ind = np.empty(2 * starts.size, dtype=np.intp)
+    ind[0::2], ind[1::2] = starts, ends
+    if ind[-1] == a.size:  # reduceat needs indices inside the array: the last end is implied
+        return ufunc.reduceat(a, ind[:-1])[0::2]
+    return ufunc.reduceat(a, ind)[0::2]
+
+
+def _levels(u: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """Median output (output units) of each u[starts[i]:ends[i]]; constant segments directly."""
+    hi = _segment_reduce(np.maximum, u, starts, ends)
+    lo = _segment_reduce(np.minimum, u, starts, ends)
+    out = u[starts].astype(float)
+    for k in np.nonzero(hi != lo)[0]:
+        out[k] = float(np.median(u[starts[k]:ends[k]]))
+    return out
+
+
+def _raw_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, ups: np.ndarray,
+                downs: np.ndarray, centre: float) -> list[Cycle]:
+    """Every cycle between consecutive upward switches with exactly one downward switch."""
+    if ups.size < 2:
+        return []
+    i0s, i1s = ups[:-1], ups[1:]
+    first_down = np.searchsorted(downs, i0s, side="right")
+    n_down = np.searchsorted(downs, i1s, side="left") - first_down
+    ok = n_down == 1
+    if not ok.any():
+        return []
+    js = np.nonzero(ok)[0]
+    i0, i1 = i0s[ok], i1s[ok]
+    i_d = downs[first_down[ok]]
+    n = (i1 - i0).astype(float)
+    period = t[i1] - t[i0]
+    high_time = t[i_d] - t[i0]
+    mean = _segment_reduce(np.add, y, i0, i1) / n
+    pp = _segment_reduce(np.maximum, y, i0, i1) - _segment_reduce(np.minimum, y, i0, i1)
+    hi = _levels(u, i0, i_d)
+    lo = _levels(u, i_d, i1)
+    # first harmonic of each cycle's PV at its own frequency (autotune.harmonics'
+    # coefficient, vectorised over the cycles)
+    cid = np.repeat(np.arange(js.size), (i1 - i0))
+    samp = np.concatenate([np.arange(a, b) for a, b in zip(i0, i1, strict=True)]) \
+        if js.size < ups.size - 1 else np.arange(i0[0], i1[-1])
+    ph = 2 * math.pi * (t[samp] - t[i0][cid]) / period[cid]
+    yc = y[samp] - mean[cid]
+    starts = np.concatenate([[0], np.cumsum(i1 - i0)[:-1]])
+    re = np.add.reduceat(yc * np.cos(ph), starts) / n
+    im = np.add.reduceat(yc * np.sin(ph), starts) / n
+    h1 = 2 * np.hypot(re, im)
+    return [Cycle(index=int(js[k]), i_start=int(i0[k]), i_end=int(i1[k]),
+                  t_start=float(t[i0[k]]), t_end=float(t[i1[k]]), period=float(period[k]),
+                  amplitude_pp=float(pp[k]), amplitude_h1=float(h1[k]),
+                  high_time=float(high_time[k]), low_time=float(period[k] - high_time[k]),
+                  asymmetry=float((2 * high_time[k] - period[k]) / period[k]),
+                  mean_pv=float(mean[k]), offset=float(mean[k] - centre),
+                  amplitude_d=float((hi[k] - lo[k]) / 2), bias=float((hi[k] + lo[k]) / 2))
+            for k in range(js.size)]
+
+
 def extract_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, *, centre: float = 0.0,
                    state: np.ndarray | None = None, drop_transient: int = 1,
-                   level_tol: float = 0.01) -> list[Cycle]:
+                   level_tol: float = 0.01, tick: float | None = None, noise_std: float = 0.0,
+                   resolution: float = 0.0, hysteresis: float = 0.0) -> list[Cycle]:
     """Relay cycles from the switch instants, transients dropped.
 
-    Drops the first `drop_transient` cycles and, after any change of the output levels
-    (amplitude adaptation, bias balancing), the cycle in which it happened and as many again;
-    only cycles at the final output levels (within `level_tol` of the step) are kept.
+    Drops the first `drop_transient` cycles of the record and every cycle that does not start
+    after the output last left the final levels (within `level_tol` of the step: amplitude
+    adaptation, bias balancing, the rest before the relay), as the relay's own "settled"
+    cycles. Then leading
+    cycles are dropped while their period or first-harmonic amplitude stands out from the
+    later half's median by more than the measurement can explain (`steady_tolerances`: tick
+    (s), PV noise std and resolution, hysteresis (PV units); default tick: the median sample
+    spacing), so steady cycles that differ only by switching jitter or quantisation are kept.
     """
     t = np.asarray(t, dtype=float)
     y = np.asarray(y, dtype=float)
@@ -123,55 +193,65 @@ def extract_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, *, centre: float
     idx, new = switch_indices(u, state)
     ups = idx[new > 0]
     downs = idx[new < 0]
-    raw: list[Cycle] = []
-    for j in range(len(ups) - 1):
-        i0, i1 = int(ups[j]), int(ups[j + 1])
-        d_in = downs[(downs > i0) & (downs < i1)]
-        if d_in.size != 1:
-            continue
-        i_d = int(d_in[0])
-        period = t[i1] - t[i0]
-        seg = y[i0:i1]
-        hi = float(np.median(u[i0:i_d]))
-        lo = float(np.median(u[i_d:i1]))
-        ts = period / (i1 - i0)
-        w = 2 * math.pi / period
-        yk, _ = fourier_coefficients(t[i0:i1], seg - seg.mean(), u[i0:i1], w, ts)
-        high_time = t[i_d] - t[i0]
-        raw.append(Cycle(index=j, i_start=i0, i_end=i1, t_start=float(t[i0]),
-                         t_end=float(t[i1]), period=float(period),
-                         amplitude_pp=float(seg.max() - seg.min()),
-                         amplitude_h1=float(2 * abs(yk)), high_time=float(high_time),
-                         low_time=float(period - high_time),
-                         asymmetry=float((2 * high_time - period) / period),
-                         mean_pv=float(seg.mean()), offset=float(seg.mean() - centre),
-                         amplitude_d=(hi - lo) / 2, bias=(hi + lo) / 2))
+    raw = _raw_cycles(t, y, u, ups, downs, centre)
     if not raw:
         return []
     final_d, final_b = raw[-1].amplitude_d, raw[-1].bias
     scale = max(abs(final_d), 1e-300)
     keep_from = drop_transient
-    for k, c in enumerate(raw):
-        if abs(c.amplitude_d - final_d) > level_tol * scale or \
-                abs(c.bias - final_b) > level_tol * scale:
-            keep_from = max(keep_from, k + 1 + drop_transient)
+    # the last sample off the final output levels (rest before the relay, amplitude or bias
+    # still changing): cycles from then on must start after the new levels took effect
+    tol_u = level_tol * scale
+    head = u[:raw[-1].i_end]
+    off = np.nonzero((np.abs(head - (final_b + final_d)) > tol_u) &
+                     (np.abs(head - (final_b - final_d)) > tol_u))[0]
+    if off.size:
+        last_off = int(off[-1])
+        keep_from = max(keep_from, next((k for k, c in enumerate(raw)
+                                         if c.i_start > last_off + 1), len(raw)))
     kept = raw[keep_from:]
     # periodic steady state: drop leading cycles whose period or amplitude stand out from the
-    # later half's (tolerance from that half's own spread, at least 1%)
+    # later half's median (tolerance: that half's own spread, at least 1%, widened to what
+    # the tick, noise and resolution can resolve)
     if len(kept) >= 4:
+        if tick is None:
+            tick = float(np.median(np.diff(t))) if t.size > 1 else 0.0
         late = kept[len(kept) // 2:]
+        tol_p, tol_a = steady_tolerances(float(np.median([c.period for c in late])),
+                                         float(np.median([c.amplitude_pp for c in late])),
+                                         tick=tick, noise_std=noise_std,
+                                         resolution=resolution, hysteresis=hysteresis)
         lead = 0
-        for attr in ("period", "amplitude_h1"):
+        for attr, tol_m in (("period", tol_p), ("amplitude_h1", tol_a)):
             vals = np.array([getattr(c, attr) for c in late])
             ref = float(np.median(vals))
             spread = 1.4826 * float(np.median(np.abs(vals - ref))) / ref
-            tol = max(0.01, 4 * spread)
+            tol = max(0.01, 4 * spread, tol_m)
             k = 0
             while k < len(kept) // 2 and abs(getattr(kept[k], attr) - ref) > tol * ref:
                 k += 1
             lead = max(lead, k)
         kept = kept[lead:]
     return kept
+
+
+def steady_tolerances(period: float, amplitude_pp: float, *, tick: float = 0.0,
+                      noise_std: float = 0.0, resolution: float = 0.0,
+                      hysteresis: float = 0.0) -> tuple[float, float]:
+    """Relative (period, amplitude) differences steady cycles can show from measurement alone.
+
+    period (s), amplitude_pp (PV units, peak to peak), tick (s), noise_std, resolution,
+    hysteresis (PV units). autotune.relay.measurement_tolerances (switching jitter of the
+    period; peak-reading error of the amplitude); the amplitude tolerance is at least the
+    period's, since the jitter that moves a switch moves the swing with it (for an integrating
+    plant the swing grows in proportion to the half-period; common practice, no source).
+    """
+    tol_p, tol_a = measurement_tolerances(period, amplitude_pp, hysteresis=hysteresis,
+                                          tick=tick, noise_std=noise_std,
+                                          resolution=resolution)
+    if not (math.isfinite(tol_p) and math.isfinite(tol_a)):
+        return 0.0, 0.0
+    return tol_p, max(tol_a, tol_p)
 
 
 def converged_cycles(cycles: Sequence[Any], tol: float = 0.02) -> bool:
@@ -293,10 +373,13 @@ def _rest_at_start(y: np.ndarray, u: np.ndarray, switches: np.ndarray, noise: fl
 
     The first output level must be the bias (settings known) or, without settings, last
     longer than 1.5 relay half-periods: a record that opens on a relay level whose effect has
-    not yet passed the dead time is not at rest.
+    not yet passed the dead time is not at rest. The still stretch must span at least a
+    quarter of a relay half-period (a PV still for a few ticks says nothing about the plant's
+    state, e.g. just after a precheck; common practice, no source).
     """
     first = int(switches[0])
-    if first < 3:
+    halves = np.diff(switches)
+    if first < 3 or (halves.size > 0 and first < 0.25 * float(np.median(halves))):
         return False
     seg = y[:first]
     still = bool(np.all(u[:first] == u[0]) and
@@ -305,7 +388,6 @@ def _rest_at_start(y: np.ndarray, u: np.ndarray, switches: np.ndarray, noise: fl
         return False
     if bias is not None:
         return abs(float(u[0]) - bias) <= 0.01 * max(step, 1e-300)
-    halves = np.diff(switches)
     return halves.size > 0 and first > 1.5 * float(np.median(halves))
 
 
@@ -315,14 +397,16 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
                   hysteresis: float | None = None, output_limit: float | None = None,
                   state: np.ndarray | None = None, drop_transient: int = 1,
                   converge_tol: float = 0.02, candidates: Sequence[str] = CANDIDATES,
-                  min_snr: float = 5.0) -> RelayAnalysis:
+                  min_snr: float = 5.0, resolution: float | None = None) -> RelayAnalysis:
     """Analyse a relay experiment: Ku, Tu (refined and classic), model, uncertainty, warnings.
 
     t (s), y (PV units), u (output units, as applied and held over each tick); settings: the
     relay settings as finally used (centre, bias, amplitude, hysteresis) or give `centre` and
     `hysteresis` (PV units) directly; noise_std: PV noise (PV units), estimated from the record
     when None; ts: tick (s), default the median sample spacing; output_limit: for the
-    saturation warning; state: recorded relay state (+1/-1) if available.
+    saturation warning; state: recorded relay state (+1/-1) if available; resolution: PV
+    quantisation step (PV units), the smallest PV step in the record when None (noise and
+    resolution set how far steady cycles may differ: `extract_cycles`, convergence).
     Raises AnalysisError when there is no complete steady relay cycle.
     """
     t = np.asarray(t, dtype=float)
@@ -337,7 +421,9 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     c0 = float(centre if centre is not None else
                (settings.centre if settings is not None else np.median(y)))
     noise = float(estimate_noise(y) if noise_std is None else noise_std)
-    cycles = extract_cycles(t, y, u, centre=c0, state=state, drop_transient=drop_transient)
+    res = float(smallest_step(y) if resolution is None else resolution)
+    cycles = extract_cycles(t, y, u, centre=c0, state=state, drop_transient=drop_transient,
+                            tick=ts, noise_std=noise, resolution=res, hysteresis=eps)
     if not cycles:
         raise AnalysisError("no complete steady relay cycle in the record: run the relay "
                             "longer (at least three cycles)")
@@ -389,9 +475,13 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
         estimates.append({"cycle": c.index, "t_end": c.t_end, "period": c.period,
                           "amplitude_pp": c.amplitude_pp, "ku_classic": kc,
                           "tu_classic": c.period, "ku": kc * scale_k, "tu": c.period * scale_t})
-    converged = converged_cycles(cycles, max(converge_tol, 6 * noise / max(a, 1e-300) /
-                                             math.sqrt(max(cycles[-1].i_end -
-                                                           cycles[-1].i_start, 1))))
+    if n_cyc >= 4:  # the relay's own criterion (pairs of cycles, measurement tolerances)
+        converged = steady_converged(cycles, converge_tol, min_cycles=4, hysteresis=eps,
+                                     tick=ts, noise_std=noise, resolution=res)
+    else:
+        converged = converged_cycles(cycles, max(converge_tol, 6 * noise / max(a, 1e-300) /
+                                                 math.sqrt(max(cycles[-1].i_end -
+                                                               cycles[-1].i_start, 1))))
 
     # ---- uncertainty (relative): cycle spread, noise, model extrapolation (heuristic)
     kcs = np.array([e["ku_classic"] for e in estimates])

@@ -75,7 +75,7 @@ def step_namespace(**overrides: Any) -> argparse.Namespace:
     from autotune.commands.step import DEFAULT_MAX_SATURATION
     from autotune.verdict import DEFAULT_DETUNE
 
-    ns = argparse.Namespace(size=None, load_offset=0.0, filter_n=10.0, setpoint_weight=1.0,
+    ns = argparse.Namespace(size=None, load_offset=0.0, filter_n=10.0, setpoint_weight=None,
                             tracking_time=None, max_overshoot=None, max_settling_time=None,
                             max_saturation=DEFAULT_MAX_SATURATION, detune=DEFAULT_DETUNE,
                             retries=0, gains_file=None, store=False, yes=False, faults=None,

@@ -9,6 +9,16 @@ Default proposal (documented choice): "robust-pid", unless the derivative buys l
 more integral gain than "robust-pi" (derivative does not help), or the PID's high-frequency
 gain kp (1 + N) times the PV noise exceeds 2 % of the output limit (noise would reach the
 actuator); then "robust-pi". The thresholds are common practice, no source.
+
+Setpoint weight b (two-degree-of-freedom PID: the proportional term acts on b sp - pv; Åström
+and Hägglund, "Advanced PID Control", ISA 2006, from memory): b shapes the setpoint response
+only; Ms, the margins and the load response do not depend on it. Each proposal gets the
+largest b in [0, 1] (on a 0.01 grid) whose predicted overshoot, on the model with the discrete
+PID at the loop period, is at most a target: spec.max_overshoot, else DEFAULT_OVERSHOOT_TARGET
+(10 %, common practice, no source). Proposals without integral action keep b = 1 (with P only,
+b would move the final value). The loop being linear in b while the output stays inside its
+limits, the step responses for b = 0 and b = 1 give the response for every b as
+y_b = y_0 + b (y_1 - y_0); a saturating loop is checked again tick by tick with the chosen b.
 """
 
 from __future__ import annotations
@@ -35,8 +45,9 @@ class DesignSpec:
     dead time); max_overshoot (%), max_settling_time (s): spec limits to flag (None = none);
     step_size: setpoint step for the prediction (PV units); output_limit: actuator limit
     (output units, symmetric); ts: loop period (s; None = continuous design and predictions
-    at Tu/200); n: derivative filter N; setpoint_weight: b; tracking_time: Tt (None =
-    clamping); pv_noise: PV noise standard deviation (PV units) for the default choice.
+    at Tu/200); n: derivative filter N; setpoint_weight: b for every proposal (None: chosen
+    per proposal, see the module docstring); tracking_time: Tt (None = clamping); pv_noise:
+    PV noise standard deviation (PV units) for the default choice.
     """
 
     ms_target: float = 1.4
@@ -48,9 +59,12 @@ class DesignSpec:
     output_limit: float = math.inf
     ts: float | None = None
     n: float = 10.0
-    setpoint_weight: float = 1.0
+    setpoint_weight: float | None = None
     tracking_time: float | None = None
     pv_noise: float = 0.0
+
+
+DEFAULT_OVERSHOOT_TARGET = 10.0  # %, for the choice of b without a spec (common practice, no source)
 
 
 @dataclass(frozen=True)
@@ -62,7 +76,8 @@ class Proposal:
     integral action), peak_output (output units, for the configured step), time_saturated
     (s), ts (s, loop period used), ts_assumed (True when the spec gave no loop period and
     ts = Tu/200 stood in), t_end, t_end_load (s, lengths of the predicted setpoint and load
-    steps; nan figures: not reached within them, or unstable).
+    steps; nan figures: not reached within them, or unstable), setpoint_weight (the b the
+    setpoint-step figures were computed with). setpoint_weight: b of these gains, 0..1.
     """
 
     name: str
@@ -71,11 +86,14 @@ class Proposal:
     violations: list[str] = field(default_factory=list)
     default: bool = False
     source: str = ""
+    setpoint_weight: float = 1.0
 
     def as_dict(self, n: float = 10.0) -> dict[str, object]:
-        """The result.json entry: name, kp, ki, kd, predicted, plus the other gain forms."""
+        """The result.json entry: name, kp, ki, kd, setpoint_weight (b), predicted, plus the
+        other gain forms."""
         g = self.gains
         d: dict[str, object] = {"name": self.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
+                                "setpoint_weight": self.setpoint_weight,
                                 "predicted": dict(self.predicted),
                                 "violations": list(self.violations), "default": self.default,
                                 "source": self.source}
@@ -95,22 +113,92 @@ def loop_period(model: DelayedTF, spec: DesignSpec) -> float:
     return 2.0 * math.pi / robust.reference_frequency(model) / 200.0
 
 
-def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, float | bool]:
-    """Predicted figures of `gains` on `model` with the discrete PID at the loop period and its
-    ZOH (see `autotune.robust` for the loop, `autotune.closedloop` for the simulation)."""
-    ts = loop_period(model, spec)
-    mg = robust.loop_margins(model, gains, spec.n, ts)
-    stable = robust.is_stable(model, gains, spec.n, ts)
+def _spans(model: DelayedTF, gains: PidGains, ts: float) -> tuple[float, float]:
+    """(t_end, t_cap) in s: the first span of a predicted step and the longest one.
+
+    The first span covers most loops; a loop not settled in it is simulated again over the
+    longest span (60 Tu, at most 20000 ticks: the tick-by-tick path that saturation needs
+    costs about 10 us a tick)."""
     tu = 2.0 * math.pi / robust.reference_frequency(model, ts)
     ti = math.inf if gains.ki == 0 else abs(gains.kp / gains.ki)
-    # first try a span that covers most loops; a loop not settled in it is simulated again
-    # over the longest span (60 Tu, at most 20000 ticks: the tick-by-tick path that
-    # saturation needs costs about 10 us a tick)
     t_cap = min(60.0 * tu, 20000 * ts)
-    t_end = min(max(12.0 * tu, 4.0 * ti), t_cap)
+    return min(max(12.0 * tu, 4.0 * ti), t_cap), t_cap
+
+
+def _weight(spec: DesignSpec, setpoint_weight: float | None) -> float:
+    if setpoint_weight is not None:
+        return float(setpoint_weight)
+    return 1.0 if spec.setpoint_weight is None else float(spec.setpoint_weight)
+
+
+def overshoot_target(spec: DesignSpec) -> float:
+    """The overshoot (%) the setpoint weight is chosen for: spec.max_overshoot, else
+    DEFAULT_OVERSHOOT_TARGET."""
+    return DEFAULT_OVERSHOOT_TARGET if spec.max_overshoot is None else float(spec.max_overshoot)
+
+
+B_GRID = np.round(np.linspace(0.0, 1.0, 101), 2)  # candidate setpoint weights, 0.01 apart
+
+
+def choose_setpoint_weight(model: DelayedTF, gains: PidGains, spec: DesignSpec,
+                           target: float | None = None) -> float:
+    """Setpoint weight b (0..1) for `gains` on `model`: the largest b in B_GRID whose
+    predicted setpoint-step overshoot (%) is at most `target` (None: `overshoot_target(spec)`);
+    when no b meets it, the b of the smallest overshoot (the peak is the maximum of functions
+    affine in b, so the overshoot is convex in b). b = 1 without integral action or proportional
+    gain, and for a loop unstable on the model. Linear loop: at most two simulations (b = 1,
+    then b = 0; see the module docstring); a loop that saturates with the chosen b is checked
+    again tick by tick and b halved towards 0 while it overshoots (at most three more)."""
+    target = overshoot_target(spec) if target is None else float(target)
+    if gains.ki == 0.0 or gains.kp == 0.0:
+        return 1.0
+    ts = loop_period(model, spec)
+    if not robust.is_stable(model, gains, spec.n, ts):
+        return 1.0
+    t_end, _ = _spans(model, gains, ts)
     lim = spec.output_limit
-    settings = PidSettings(gains, ts, spec.n, spec.setpoint_weight, spec.tracking_time,
-                           -lim, lim)
+    size = spec.step_size
+
+    def settings(b: float) -> PidSettings:
+        return PidSettings(gains, ts, spec.n, b, spec.tracking_time, -lim, lim)
+
+    y1 = simulate_closed_loop(model, settings(1.0), t_end, size, method="linear").y / size
+    if not np.all(np.isfinite(y1)):
+        return 1.0
+    if max(0.0, float(np.max(y1)) - 1.0) * 100.0 <= target:
+        b = 1.0
+    else:
+        y0 = simulate_closed_loop(model, settings(0.0), t_end, size, method="linear").y / size
+        peaks = np.max(y0[None, :] + B_GRID[:, None] * (y1 - y0)[None, :], axis=1)
+        os_grid = np.maximum(0.0, peaks - 1.0) * 100.0
+        ok = np.nonzero(os_grid <= target)[0]
+        b = float(B_GRID[ok[-1]] if ok.size else B_GRID[int(np.argmin(os_grid))])
+    if math.isfinite(lim):
+        # saturation makes the loop nonlinear: check the chosen b on the tick-by-tick path
+        for _ in range(3):
+            run = simulate_closed_loop(model, settings(b), t_end, size)
+            if not np.any(np.abs(run.u) >= lim * (1 - 1e-9)):
+                break
+            os_ = max(0.0, float(np.max(run.y)) / size - 1.0) * 100.0
+            if os_ <= target or b == 0.0:
+                break
+            b = round(0.5 * b, 2)
+    return b
+
+
+def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec,
+            setpoint_weight: float | None = None) -> dict[str, float | bool]:
+    """Predicted figures of `gains` on `model` with the discrete PID at the loop period and its
+    ZOH (see `autotune.robust` for the loop, `autotune.closedloop` for the simulation).
+    setpoint_weight: b of the setpoint step (None: spec.setpoint_weight, else 1); only the
+    setpoint-step figures depend on it."""
+    ts = loop_period(model, spec)
+    b = _weight(spec, setpoint_weight)
+    mg = robust.loop_margins(model, gains, spec.n, ts)
+    stable = robust.is_stable(model, gains, spec.n, ts)
+    t_end, t_cap = _spans(model, gains, ts)
+    lim = spec.output_limit
+    settings = PidSettings(gains, ts, spec.n, b, spec.tracking_time, -lim, lim)
     u_lim = lim if math.isfinite(lim) else None
     run = simulate_closed_loop(model, settings, t_end, spec.step_size)
     if stable and np.all(np.isfinite(run.y)):
@@ -129,13 +217,14 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec) -> dict[str, fl
     if stable and gains.ki == 0.0:
         iae = math.inf  # no integral action: a load step leaves an offset, the IAE grows without end
     elif stable:
-        load = simulate_closed_loop(model, PidSettings(gains, ts, spec.n, spec.setpoint_weight),
+        load = simulate_closed_loop(model, PidSettings(gains, ts, spec.n, b),
                                     t_cap, 0.0, load_step=1.0)  # linear: cheap at any length
         iae = float(np.sum(0.5 * (np.abs(load.y[1:]) + np.abs(load.y[:-1])) * ts))
     return {"ms": mg.ms, "gain_margin": mg.gain_margin, "phase_margin_deg": mg.phase_margin_deg,
             "stable": stable, "overshoot": overshoot, "rise_time": rise, "settling_time": settle,
             "iae_load": iae, "peak_output": peak, "time_saturated": tsat, "ts": ts,
-            "t_end": float(run.t[-1]), "t_end_load": t_cap, "ts_assumed": spec.ts is None}
+            "t_end": float(run.t[-1]), "t_end_load": t_cap, "ts_assumed": spec.ts is None,
+            "setpoint_weight": b}
 
 
 def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:
@@ -203,6 +292,8 @@ def propose(ku: float | None, tu: float | None, model: DelayedTF,
     integrator+lag+dead time, higher orders by the half rule), the robust optimum and every
     prediction. Without a robust optimum (no stable PI meets the Ms target, e.g. an unstable
     model) the default falls back to the rule with the largest ki within the target.
+    Each proposal's setpoint weight b is spec.setpoint_weight when given, else chosen by
+    `choose_setpoint_weight`; its predicted figures are computed with that b.
     """
     spec = DesignSpec() if spec is None else spec
     src = f"max ki subject to Ms <= {spec.ms_target:g} (Astrom-Panagopoulos-Hagglund 1998)"
@@ -216,7 +307,9 @@ def propose(ku: float | None, tu: float | None, model: DelayedTF,
     except ValueError:
         pass  # e.g. an open-loop unstable model: the rules are still offered
     designs += _rule_designs(ku, tu, model, spec)
-    preds = [predict(model, g, spec) for _, g, _ in designs]
+    weights = [choose_setpoint_weight(model, g, spec) if spec.setpoint_weight is None
+               else float(spec.setpoint_weight) for _, g, _ in designs]
+    preds = [predict(model, g, spec, b) for (_, g, _), b in zip(designs, weights, strict=True)]
     if default is None and designs:
         # fallback: the largest ki among stable proposals within the Ms target, else the
         # stable proposal with the lowest Ms (common practice, no source)
@@ -225,5 +318,5 @@ def propose(ku: float | None, tu: float | None, model: DelayedTF,
         pick = (max(within, key=lambda i: designs[i][1].ki) if within else
                 min(ok, key=lambda i: float(preds[i]["ms"])) if ok else 0)
         default = designs[pick][0]
-    return [Proposal(name, g, pred, violations(pred, spec), name == default, source)
-            for (name, g, source), pred in zip(designs, preds, strict=True)]
+    return [Proposal(name, g, pred, violations(pred, spec), name == default, source, b)
+            for (name, g, source), pred, b in zip(designs, preds, weights, strict=True)]

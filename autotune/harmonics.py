@@ -35,10 +35,14 @@ def fourier_coefficients(t: np.ndarray, y: np.ndarray, u: np.ndarray, w: float, 
     Y = (1/n) sum y[n] e^{-j w t_n}; U = (1/n) sum u[n] e^{-j w t_n} (1 - e^{-j w ts})/(j w ts),
     the exact coefficient of the piecewise-constant output over the window.
     """
-    e = np.exp(-1j * w * (t - t[0]))
+    ph = w * (t - t[0])
+    c, s = np.cos(ph), np.sin(ph)
     n = t.size
     hold = (1 - np.exp(-1j * w * ts)) / (1j * w * ts)
-    return complex(np.dot(y, e) / n), complex(np.dot(u, e) / n * hold)
+    # element-wise products and sums, not BLAS dot: threaded BLAS stalls on a busy machine
+    yk = complex(float(np.sum(y * c)), -float(np.sum(y * s))) / n
+    uk = complex(float(np.sum(u * c)), -float(np.sum(u * s))) / n
+    return yk, complex(uk * hold)
 
 
 def fourier_points(t: np.ndarray, y: np.ndarray, u: np.ndarray, w: float, ts: float,

@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import linalg, optimize, signal, special
 
-from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
+from autotune.lti import DelayedTF, _zoh, fopdt, integrator_lag, sopdt
 
 CANDIDATES = ("fopdt", "integrator_lag", "sopdt", "lag_n")
 _N_NONLINEAR = {"fopdt": 2, "sopdt": 3, "integrator_lag": 2, "sopdt_zero": 3, "lag_n": 2}
@@ -50,10 +50,7 @@ def discrete_coefficients(tf: DelayedTF, dt: float) -> tuple[np.ndarray, np.ndar
     """
     a_c, b_c, c_c, d_c = signal.tf2ss(tf.num, tf.den)
     n = a_c.shape[0]
-    m, frac = divmod(tf.delay, dt)
-    m = int(m)
-    if frac > dt * (1 - 1e-9):
-        m, frac = m + 1, 0.0
+    m, frac = _delay_ticks(tf.delay, dt)
     d0 = float(d_c[0, 0]) if d_c.size else 0.0
     if n == 0:
         b = np.array([0.0, d0]) if frac > 0 else np.array([d0])
@@ -79,13 +76,20 @@ def discrete_coefficients(tf: DelayedTF, dt: float) -> tuple[np.ndarray, np.ndar
     return b, a_poly, m
 
 
-def _zoh(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
-    n = a.shape[0]
-    block = np.zeros((n + 1, n + 1))
-    block[:n, :n] = a * h
-    block[:n, n:] = b * h
-    e = linalg.expm(block)
-    return e[:n, :n], e[:n, n:]
+def _delay_ticks(delay: float, dt: float) -> tuple[int, float]:
+    """Dead time (s) as m whole ticks of dt (s) plus a fraction frac in [0, dt) seconds."""
+    m, frac = divmod(delay, dt)
+    m = int(m)
+    if frac > dt * (1 - 1e-9):
+        m, frac = m + 1, 0.0
+    return m, frac
+
+
+def _shift(u: np.ndarray, m: int) -> np.ndarray:
+    """u delayed by m ticks (zeros before the record starts)."""
+    if not m:
+        return u
+    return np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
 
 
 def _zoh_equal_lags(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]:
@@ -114,9 +118,7 @@ def sampled_response(tf: DelayedTF, u: np.ndarray, dt: float) -> np.ndarray:
     """
     u = np.asarray(u, dtype=float)
     b, a, m = discrete_coefficients(tf, dt)
-    if m:
-        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
-    return signal.lfilter(b, a, u)
+    return signal.lfilter(b, a, _shift(u, m))
 
 
 def modal_response(poles: Sequence[float], residues: Sequence[float], delay: float,
@@ -127,13 +129,8 @@ def modal_response(poles: Sequence[float], residues: Sequence[float], delay: flo
     `sampled_response`, one first-order difference equation per mode, no matrix exponential:
     the fast path of the model fit. From rest; u in output units, dt and delay in seconds.
     """
-    u = np.asarray(u, dtype=float)
-    m, frac = divmod(delay, dt)
-    m = int(m)
-    if frac > dt * (1 - 1e-9):
-        m, frac = m + 1, 0.0
-    if m:
-        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
+    m, frac = _delay_ticks(delay, dt)
+    u = _shift(np.asarray(u, dtype=float), m)
     h2 = dt - frac
     y = np.zeros(u.size)
     for p, r in zip(poles, residues, strict=True):
@@ -172,12 +169,8 @@ def cascade_states(time_constants: Sequence[float], delay: float, u: np.ndarray,
         if i:
             a[i, i - 1] = 1.0 / tc
     b[0, 0] = 1.0 / time_constants[0]
-    m, frac = divmod(delay, dt)
-    m = int(m)
-    if frac > dt * (1 - 1e-9):
-        m, frac = m + 1, 0.0
-    if m:
-        u = np.concatenate([np.zeros(min(m, u.size)), u[: max(u.size - m, 0)]])
+    m, frac = _delay_ticks(delay, dt)
+    u = _shift(u, m)
     u_early = np.concatenate([[0.0], u[:-1]])
     zoh = _zoh_equal_lags if len(set(time_constants)) == 1 else _zoh
     phi1, gam1 = zoh(a, b, frac) if frac > 0 else (np.eye(n), np.zeros((n, 1)))

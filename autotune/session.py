@@ -216,12 +216,14 @@ class TuneRun:
 
     def _hold(self, run: PoweredRun, output: float, duration: float,
               until: Callable[[Any], bool] | None = None) -> list[Any]:
-        """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples.
+        """Hold `output` for `duration` device seconds (or until `until(sample)`); the samples
+        from the first one showing the output applied on (all are recorded).
 
-        The clock starts at the first sample showing the output applied: samples queued before
-        the command (a slow request before it, a backlog in the port) do not count, and a
-        command lost on a noisy line is sent again with each sample until the device shows it
-        (for at most one second of wall clock, or `duration` of it, whichever is longer).
+        The clock starts at the first sample received after the command that shows the output
+        applied: samples queued before the command (a slow request before it, a backlog) do
+        not count, and a command lost on a noisy line is sent again with each sample until the
+        device shows it (for at most one second of wall clock, or `duration` of it, whichever
+        is longer).
         """
         import time as _time
 
@@ -235,13 +237,14 @@ class TuneRun:
         t0: float | None = None
         while True:
             rec = run.next_sample()
-            got.append(rec)
             if t0 is None:
-                if rec.output != want and _time.monotonic() < give_up:
-                    if rec.received_at >= sent_at:
+                fresh = rec.received_at >= sent_at
+                if (rec.output != want or not fresh) and _time.monotonic() < give_up:
+                    if fresh:
                         run.set_output(output)
                     continue
                 t0 = rec.t
+            got.append(rec)
             if until is not None and until(rec):
                 break
             if rec.t - t0 >= duration:

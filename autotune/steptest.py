@@ -575,6 +575,7 @@ class StepOutcome:
             "predicted": dict(self.candidate.predicted),
             "proposal": self.candidate.name,
             "gains": {"kp": g.kp, "ki": g.ki, "kd": g.kd},
+            "setpoint_weight": self.pid.setpoint_weight,
             "loop": self.loop,
             "ts": self.pid.ts,
             "size": self.plan.size,
@@ -683,6 +684,10 @@ def run_step(
     Device loop: SetPid (starts the device PID at the start value), SetSetpoint at each change.
     Host loop: autotune.pid.DiscretePid computes the output for every sample, sent with
     SetOutput (the device applies it at its next tick). SetOffset drives the load test in both.
+    With a setpoint weight b < 1 and a start value r0 != 0 the proportional term at rest would
+    be kp (b - 1) r0: the loop starts bumplessly with kp (1 - b) r0 added once (device loop: to
+    the SetPid bias; host loop: to the integral's initial state), so the step acts in deviation
+    from the start value, as predicted.
 
     `on_update(StepProgress)` is called at every event and about ten times a second (device
     time). Returns the StepOutcome; raises StepEnded (carrying the runner's RunEnded and the
@@ -702,6 +707,8 @@ def run_step(
     ts = settings.ts if settings.ts is not None else float(run.info.tick)
     pid_settings = settings.pid_settings(candidate.gains, ts)
     start = float(run.pv_start if run.pv_start is not None else run.last_sample.pv)
+    # output units: cancels kp (b - 1) start, the setpoint weight's term at rest
+    bumpless = candidate.gains.kp * (1.0 - settings.setpoint_weight) * start
     exp = StepExperiment(settings.plan, start)
     outcome = StepOutcome(candidate, pid_settings, loop, settings.plan, start)
     g = candidate.gains
@@ -710,7 +717,7 @@ def run_step(
     run.set_phase(Phase.STEP, f"step {settings.plan.size:+g} with {candidate.name} "
                   f"(kp {g.kp:.4g}, ki {g.ki:.4g}, kd {g.kd:.4g}), {loop} loop")
     run.event("step_start", {"proposal": candidate.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
-                             "loop": loop, "size": settings.plan.size, "start_value": start,
+                             "setpoint_weight": settings.setpoint_weight, "loop": loop, "size": settings.plan.size, "start_value": start,
                              "ts": ts, "load_offset": settings.plan.load_offset})
     sp_cmd, off_cmd = start, 0.0
     off_applied = 0.0
@@ -723,10 +730,11 @@ def run_step(
         if loop == "device":
             run.request(SetPid(axis, g.kp, g.ki, g.kd, settings.setpoint_weight,
                                settings.deriv_filter_n, settings.tracking_time or 0.0,
-                               start, settings.bias))
+                               start, settings.bias + bumpless))
             run.powered = True
         else:
             host_pid = DiscretePid(pid_settings)
+            host_pid.reset(integral=bumpless)
         while True:
             rec = run.next_sample()
             if loop == "device":

@@ -276,8 +276,15 @@ class Server:
                 return
             if self.faults is not None:
                 data = self.faults.incoming(data)
-            for frame in self.decoder.feed(data):
+            frames = self.decoder.feed(data)
+            for frame in frames:
                 self._enqueue(self.device.handle_frame(frame), now)
+            if frames:
+                # The host was heard at simulated time `now`, which is ahead of the tick counter
+                # while the loop catches up after the process was descheduled: those catch-up
+                # ticks are not host silence, so the watchdog counts from `now`.
+                heard_k = int(now / self.device.period)
+                self.device.last_rx_k = max(self.device.last_rx_k, heard_k)
 
     def run(self) -> int:
         """Serve until stopped or a disconnect fault; returns the exit code."""

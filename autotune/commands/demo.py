@@ -27,7 +27,6 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "safety.output_limit": 40.0,
         "safety.pv_window": 3.0,
         "relay.target_amplitude": 0.4,
-        "design.max_overshoot": 60.0,
         "design.step_size": 1.0,
         "step.size": 1.0,
     },

@@ -74,8 +74,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "has settled, output units (default: 0, no load test)")
     p.add_argument("--filter-n", type=float, metavar="N", default=10.0,
                    help="derivative filter: Tf = Td/N (default: 10)")
-    p.add_argument("--setpoint-weight", type=float, metavar="B", default=1.0,
-                   help="setpoint weight of the proportional term, 0..1 (default: 1)")
+    p.add_argument("--setpoint-weight", type=float, metavar="B", default=None,
+                   help="setpoint weight b of the proportional term (kp (b sp - pv)), 0..1 "
+                        "(default: the proposal's b with --from-result, else 1)")
     p.add_argument("--tracking-time", type=float, metavar="S",
                    help="back-calculation anti-windup tracking time, s (default: clamping)")
     p.add_argument("--max-overshoot", type=float, metavar="P",
@@ -202,6 +203,13 @@ def step_size(cfg: Config, args: argparse.Namespace) -> float:
     return float(cfg.relay.target_amplitude)
 
 
+def setpoint_weight(args: argparse.Namespace, choice: Choice) -> float:
+    """b of the step: --setpoint-weight, else the proposal's (--from-result), else 1."""
+    if getattr(args, "setpoint_weight", None) is not None:
+        return float(args.setpoint_weight)
+    return float(choice.pid_extra.get("setpoint_weight", 1.0))
+
+
 def _overrides(args: argparse.Namespace) -> dict[str, object]:
     return {
         "connection.port": args.port,
@@ -274,7 +282,7 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
         settings, note = settings_from_config(
             cfg, loop, size=size, load_offset=args.load_offset, spec=spec,
             deriv_filter_n=choice.pid_extra.get("deriv_filter_n", args.filter_n),
-            setpoint_weight=choice.pid_extra.get("setpoint_weight", args.setpoint_weight),
+            setpoint_weight=setpoint_weight(args, choice),
             tracking_time=choice.pid_extra.get("tracking_time", args.tracking_time),
         )
         if note:
@@ -296,7 +304,8 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
                                "loop": loop}})
         for attempt, (name, gains, predicted) in enumerate(tries):
             run.say(f"step {size:+g} PV units with {name}: kp {gains.kp:.4g}, ki {gains.ki:.4g}"
-                    f"/s, kd {gains.kd:.4g} s ({loop} loop); abort: Space, Esc, q, Ctrl-C")
+                    f"/s, kd {gains.kd:.4g} s, b {settings.setpoint_weight:.3g} ({loop} loop); "
+                    "abort: Space, Esc, q, Ctrl-C")
             cand = StepCandidate(name, gains, predicted)
             try:
                 outcome = run_step(run, cand, settings)
@@ -410,6 +419,9 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
                         exit_code=EXIT_USAGE)
     if args.retries < 0:
         raise UserError("--retries must be >= 0", exit_code=EXIT_USAGE)
+    if args.setpoint_weight is not None and not 0.0 <= args.setpoint_weight <= 1.0:
+        raise UserError(f"--setpoint-weight must lie between 0 and 1, got "
+                        f"{args.setpoint_weight:g}", exit_code=EXIT_USAGE)
     choice = choose_gains(args)
     spec = StepSpec(
         max_overshoot=args.max_overshoot if args.max_overshoot is not None

@@ -139,7 +139,7 @@ def run(args: argparse.Namespace) -> int:
             print(f"plain describing function: Ku = {kc:.4g}, Tu = {tc:.4g} s")
         for prop in res.get("proposals", []) or []:
             print(f"  {prop['name']:<12} kp {prop['kp']:.4g}  ki {prop['ki']:.4g}/s  "
-                  f"kd {prop['kd']:.4g} s")
+                  f"kd {prop['kd']:.4g} s  b {float(prop.get('setpoint_weight', 1.0)):.2f}")
         for note in res.get("notes", []) or []:
             print(f"note: {note}")
     if outcome.session_path is not None:

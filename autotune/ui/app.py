@@ -550,7 +550,8 @@ class BenchJob:
             if self.model is not None:
                 with contextlib.suppress(Exception):
                     predicted = {k: v for k, v in predict(self.model, gains,
-                                                          self.design_spec()).items()
+                                                          self.design_spec(),
+                                                          row.setpoint_weight).items()
                                  if isinstance(v, (int, float)) and not isinstance(v, bool)}
         return StepCandidate(name, gains, predicted)
 
@@ -569,6 +570,7 @@ class BenchJob:
                         timeout=max(cfg.step.duration, min_record), min_record=min_record,
                         **band)
         return StepSettings(plan=plan, loop=self.loop_mode, output_limit=cfg.safety.output_limit,
+                            setpoint_weight=row.setpoint_weight,
                             spec=StepSpec(cfg.design.max_overshoot, cfg.design.max_settling_time,
                                           0.0))
 
@@ -784,6 +786,8 @@ class _DictProposal:
                           if isinstance(v, (int, float)) and not isinstance(v, bool)}
         self.violations = list(d.get("violations") or [])
         self.default = bool(d.get("default", False))
+        b = d.get("setpoint_weight", 1.0)
+        self.setpoint_weight = float(b) if isinstance(b, (int, float)) else 1.0
 
 
 def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,

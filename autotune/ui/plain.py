@@ -114,7 +114,7 @@ def proposals_lines(view: ProposalsView) -> list[str]:
              + (f", model {view.model}" if view.model else ""),
              f"Ms target {view.ms_target:.2f}, detune x{view.detune:.2f}"
              + (f", spec {view.spec}" if view.spec else ""),
-             f"{'#':>2}  {'design':<12}{'kp':>10}{'ki /s':>10}{'kd s':>10}{'Ms':>7}"
+             f"{'#':>2}  {'design':<12}{'kp':>10}{'ki /s':>10}{'kd s':>10}{'b':>6}{'Ms':>7}"
              f"{'GM':>7}{'PM deg':>8}{'OS %':>7}{'tr s':>8}{'ts s':>8}{'u peak':>8}  flags"]
     for i, r in enumerate(view.rows):
         p = r.predicted
@@ -123,13 +123,14 @@ def proposals_lines(view: ProposalsView) -> list[str]:
             "! " + "; ".join(r.violations) if r.violations else "")
         lines.append(
             f"{i + 1:>2}{mark} {r.name:<12}{fmt(r.kp):>10}{fmt(r.ki):>10}{fmt(r.kd):>10}"
+            f"{r.setpoint_weight:>6.2f}"
             f"{fmt(p.get('ms'), 3):>7}{fmt(p.get('gain_margin'), 3):>7}"
             f"{fmt(p.get('phase_margin_deg'), 3):>8}{fmt(p.get('overshoot'), 3):>7}"
             f"{fmt(p.get('rise_time'), 3):>8}{fmt(p.get('settling_time'), 3):>8}"
             f"{fmt(p.get('peak_output'), 3):>8}  {flags}".rstrip())
     if view.rows:
         sel = view.rows[min(max(view.selected, 0), len(view.rows) - 1)]
-        lines.append(f"chosen: {sel.name}")
+        lines.append(f"chosen: {sel.name} (setpoint weight b {sel.setpoint_weight:.2f})")
     if view.message:
         lines.append(view.message)
     return lines

@@ -165,9 +165,10 @@ def proposals_table(view: ProposalsView, width: int = MIN_WIDTH) -> Table:
     table.add_column("design", no_wrap=True, min_width=12)
     for name in ("kp", "ki /s", "kd s"):
         table.add_column(name, justify="right", no_wrap=True, min_width=6)
+    table.add_column("b", justify="right", no_wrap=True, min_width=4)  # setpoint weight
     for _, title, _ in figures:
         table.add_column(title, justify="right", no_wrap=True, min_width=4)
-    used = 2 + 12 + 3 * 6 + sum(5 for _ in figures) + 2 * (len(figures) + 5)
+    used = 2 + 12 + 3 * 6 + 4 + sum(5 for _ in figures) + 2 * (len(figures) + 6)
     table.add_column("flags", no_wrap=True, overflow="ellipsis",
                      max_width=max(6, width - used - 2))
     for i, row in enumerate(view.rows):
@@ -179,7 +180,8 @@ def proposals_table(view: ProposalsView, width: int = MIN_WIDTH) -> Table:
             flags.append("✗ " + "; ".join(row.violations), style=f"bold {theme.BAD}")
         else:
             flags.append("✓", style=theme.OK)
-        cells = [str(i + 1) if i < 9 else "", mark, fmt(row.kp), fmt(row.ki), fmt(row.kd)]
+        cells = [str(i + 1) if i < 9 else "", mark, fmt(row.kp), fmt(row.ki), fmt(row.kd),
+                 f"{row.setpoint_weight:.2f}"]
         cells += [_figure(dict(row.predicted), key, d) for key, _, d in figures]
         table.add_row(*cells, flags, style=theme.SELECTED if i == view.selected else None)
     return table
@@ -218,7 +220,8 @@ def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = 
         f = view.detune
         chosen = Text()
         chosen.append(f"chosen {sel.name}", style="bold")
-        chosen.append(f"  kp {fmt(sel.kp * f)}  ki {fmt(sel.ki * f)} /s  kd {fmt(sel.kd * f)} s")
+        chosen.append(f"  kp {fmt(sel.kp * f)}  ki {fmt(sel.ki * f)} /s  kd {fmt(sel.kd * f)} s"
+                      f"  b {sel.setpoint_weight:.2f}")
         if f != 1.0:
             chosen.append(f"  (×{f:.2f})", style=theme.MUTED)
         parts.append(chosen)

@@ -64,6 +64,7 @@ class ProposalRow:
     predicted: Mapping[str, float] = field(default_factory=dict)
     violations: tuple[str, ...] = ()
     default: bool = False
+    setpoint_weight: float = 1.0  # b: the proportional term acts on b sp - pv
 
     @classmethod
     def of(cls, proposal: ProposalLike) -> ProposalRow:
@@ -77,6 +78,7 @@ class ProposalRow:
             predicted=dict(proposal.predicted),
             violations=tuple(proposal.violations),
             default=bool(proposal.default),
+            setpoint_weight=float(getattr(proposal, "setpoint_weight", 1.0)),
         )
 
 

@@ -214,7 +214,7 @@ def host_silent_row(speed: float) -> tuple[str, str, str, str, str]:
     if not faults:
         return ("host silent (watchdog 250 ms)", "no fault", "-", "-", "-")
     f = faults[0]
-    z = [r.t for r in recs if r.output == 0.0]
+    z = [r.t for r in recs if r.output == 0.0 and r.t >= f.t - TICK / 2]
     return ("host silent (watchdog 250 ms)", ticks(f.t - last.t),
             ticks(z[0] - last.t if z else None), f"device fault {f.name}",
             "(no session: plain Link)")

@@ -41,11 +41,12 @@ def test_stuck_sensor_stops_with_no_response(tmp_path: Path) -> None:
 
 def test_spikes_cause_no_false_switches(tmp_path: Path) -> None:
     # one-sample spikes of 1.0 PV units on 1% of the ticks; the relay confirms a switch over
-    # two samples, so a spike neither switches it nor trips the window (5 > 1.0 + swing)
+    # two samples, so a spike neither switches it nor trips the window (5 > 1.0 + swing);
+    # the target stays well above what the spikes add to the noise the rest check measures
     outcome, tr, s = run_faulty(
         tmp_path, "spike_rate=0.01,spike_size=1.0,seed=3",
         {"connection": {"loop": "host"},
-         "relay": {"target_amplitude": 1.0, "confirm_samples": 2, "max_cycles": 10,
+         "relay": {"target_amplitude": 1.5, "confirm_samples": 2, "max_cycles": 10,
                    "min_cycles": 10}})
     assert outcome.reason in ("converged", "max_cycles"), (outcome.reason, outcome.message)
     relay = s.phase_mask("relay")
