@@ -78,7 +78,8 @@ def _median3(x: np.ndarray) -> np.ndarray:
 class RestReport:
     """noise_std (PV units), drift (PV units/s), resolution (PV units; 0 when no step was seen),
     mean (PV units), suggested_hysteresis (PV units), output_mean (output units), duration (s),
-    samples, ok and message (fails when the PV window is narrower than the noise)."""
+    samples, ok and message (fails when the PV window is narrower than the noise), and
+    drift_stderr (PV units/s): the standard error of the drift slope."""
 
     noise_std: float
     drift: float
@@ -90,6 +91,17 @@ class RestReport:
     samples: int = 0
     ok: bool = True
     message: str = ""
+    drift_stderr: float = 0.0
+
+    @property
+    def significant_drift(self) -> float:
+        """The drift (PV units/s) where it stands above three standard errors, else 0.
+
+        A short or noisy rest gives a slope that is mostly noise; extrapolating it over the
+        direction pulse could fake a wrong direction, so only a real drift (a load on an
+        integrating loop) is taken out (3 sigma: common practice, no source).
+        """
+        return self.drift if abs(self.drift) > 3.0 * self.drift_stderr else 0.0
 
     def as_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -134,6 +146,10 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
         slope, noise = 0.0, float(np.std(pa, ddof=1))
     res = smallest_step(pa)
     hyst = max(3.0 * noise, 2.0 * res)
+    # slope standard error; quantisation counts as noise of at least resolution / sqrt(12)
+    spread = float(np.sum(tc**2))
+    noise_eff = max(noise, res / math.sqrt(12.0))
+    drift_se = noise_eff / math.sqrt(spread) if spread > 0 else float("inf")
     ok, msg = True, ""
     if pv_window is not None and 6.0 * noise >= pv_window:
         ok = False
@@ -141,7 +157,8 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
                " widen the window or reduce the sensor noise")
     return RestReport(noise_std=noise, drift=float(slope), resolution=res, mean=float(pa.mean()),
                       suggested_hysteresis=hyst, output_mean=float(np.mean(oa)),
-                      duration=span, samples=int(ta.size), ok=ok, message=msg)
+                      duration=span, samples=int(ta.size), ok=ok, message=msg,
+                      drift_stderr=drift_se)
 
 
 # ---------------------------------------------------------------------------------- direction

@@ -292,7 +292,7 @@ class TuneRun:
                         DIRECTION_MIN_FRACTION * cfg.relay.target_amplitude)
         # the drift seen at rest (a load on an integrating loop) is taken out, so that the
         # pulse's own effect decides the direction
-        drift = self.sign * rest.drift
+        drift = self.sign * rest.significant_drift
         t_mid = float(np.mean(self._rest_t))
 
         def detrend(t: Any, y: Any) -> Any:
@@ -358,7 +358,7 @@ class TuneRun:
         level_max = max(min(3.0 * level_min, 0.3 * cfg.safety.pv_window / ratio),
                         1.5 * level_min)
         noise = rest.noise_std
-        drift = self.sign * rest.drift
+        drift = self.sign * rest.significant_drift
         run.set_phase(Phase.PRECHECK_BREAKAWAY, f"output ramps at {rate_a:g}/s and "
                       f"{-rate_b:g}/s, up to {max_step:g}")
 

@@ -191,6 +191,25 @@ def test_cycles_from_switch_instants_survive_noise():
         assert abs(c.asymmetry) < 0.1
 
 
+@pytest.mark.parametrize("seed", range(6))
+def test_steady_cycles_on_a_quantised_noisy_pv_are_all_kept(seed):
+    # mast-pan-like integrating loop (0.9 e^{-0.06 s} / (s (0.25 s + 1)), 10 ms tick), PV
+    # noise 0.03 and resolution 0.088 on a swing of about +/-0.5: after the first cycle from
+    # rest the relay cycles differ only by switching jitter and quantisation, so every one of
+    # them is steady and must be kept (tolerances from autotune.relay.measurement_tolerances;
+    # common practice, no source). A tolerance from the later cycles' own spread drops some.
+    res, noise, eps = 0.087890625, 0.03, 0.176
+    rec = run_relay([0.9], [0.25, 1.0, 0.0], 0.06, ts=0.01, amplitude=3.2, hysteresis=eps,
+                    noise=noise, resolution=res, n_cycles=10, period_guess=1.3, seed=seed)
+    every = extract_cycles(rec.t, rec.pv, rec.out, drop_transient=0, tick=1e9)  # none dropped
+    kept = extract_cycles(rec.t, rec.pv, rec.out, tick=0.01, noise_std=noise, resolution=res,
+                          hysteresis=eps)
+    assert [c.index for c in kept] == [c.index for c in every[1:]]
+    an = analyse_relay(rec.t, rec.pv, rec.out, rec.settings, ts=0.01, noise_std=noise)
+    assert an.cycles_used == len(every) - 1  # resolution taken from the record's PV steps
+    assert an.converged
+
+
 def test_amplitude_change_cycles_are_dropped():
     num, den, lag = BATCH["fopdt T=1"]
     r1 = run_relay(num, den, lag, ts=0.03, amplitude=0.5, n_cycles=4, period_guess=3.0)

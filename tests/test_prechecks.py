@@ -267,3 +267,16 @@ def test_deadband_from_two_ramps_noise_free_exact_and_zero() -> None:
         tb, yb = _ramp(10.0, 0, -1, *args, stop=1.2)
         rep = deadband_from_two_ramps(ta, ya, 5.0, tb, yb, 10.0, level_min=0.1, level_max=0.5)
         assert rep.deadband == pytest.approx(db, abs=0.02)
+
+
+def test_significant_drift_ignores_a_slope_that_is_only_noise() -> None:
+    # Statistics (least-squares slope standard error = sigma / sqrt(sum (t - tmean)^2)); a 3-sigma
+    # test is common practice, no source. Ten noisy samples with no trend: the slope is noise.
+    rng = np.random.default_rng(7)
+    t = np.arange(10) * 0.1
+    noisy = assess_rest(t, rng.normal(0.0, 0.05, t.size), np.zeros(t.size))
+    assert abs(noisy.drift) > 0.0
+    assert noisy.significant_drift == 0.0
+    # A real drift of 0.5 PV units/s (a load on an integrating loop) stands far above the noise.
+    drifting = assess_rest(t, 0.5 * t + rng.normal(0.0, 0.005, t.size), np.zeros(t.size))
+    assert drifting.significant_drift == pytest.approx(0.5, rel=0.05)

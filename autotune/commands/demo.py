@@ -35,7 +35,6 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "safety.output_limit": 90.0,
         "safety.pv_window": 25.0,
         "relay.target_amplitude": 2.5,
-        "design.max_overshoot": 60.0,
         "design.step_size": 12.0,
         "step.size": 12.0,
         "step.duration": 20.0,
