@@ -414,6 +414,12 @@ class TuneRun:
         if deadband is None:
             detail["method"] = "first_motion"
             deadband = bound.deadband
+        elif 0.0 < deadband <= 3.0 * two.spread:
+            # not distinguishable from no dead zone (3 x the spread over the ramp levels:
+            # common practice, no source): correcting for it would only add its noise
+            detail["measured"] = deadband
+            detail["note"] = "below 3 x its spread: taken as no dead zone"
+            deadband = 0.0
         detail["deadband"] = deadband
         self.deadband = deadband or 0.0
         self.precheck_results["breakaway"] = detail

@@ -61,6 +61,14 @@ def session_inputs(session: Any) -> dict[str, Any]:
     if not mask.any():
         mask = np.ones(session.t.shape, dtype=bool)
     ok = mask & np.isfinite(session.t) & np.isfinite(session.pv) & np.isfinite(session.out)
+    # The live run analyses from the first sample that carries the relay's state (the board
+    # reports it only once in relay mode); the samples before it were recorded while the start
+    # request was in flight and would look like rest.
+    state = session.extra.get("state")
+    if state is not None and state.dtype.kind == "f":
+        with_state = np.flatnonzero(ok & np.isfinite(state))
+        if with_state.size:
+            ok &= np.arange(ok.size) >= with_state[0]
     t, y, u = session.t[ok], sign * session.pv[ok], session.out[ok]
     sp = session.sp[ok]
     events = [e for e in session.events
@@ -78,15 +86,18 @@ def session_inputs(session: Any) -> dict[str, Any]:
                          hysteresis=hyst if hyst is not None else 0.0,
                          asymmetry=_finite(src.get("asymmetry")) or 0.0)
     tick = _finite(_get(header, "device", "tick"))
-    rest = session.phase_mask("precheck:rest")
+    # noise: the rest precheck's own figure, as the live run uses it
     noise = None
-    if rest.sum() >= 10:
-        pv_rest = session.pv[rest]
-        pv_rest = pv_rest[np.isfinite(pv_rest)]
-        if pv_rest.size >= 10:
-            k = np.arange(pv_rest.size)
-            resid = pv_rest - np.polyval(np.polyfit(k, pv_rest, 1), k)
-            noise = float(np.std(resid))
+    for e in session.events:
+        det = e.get("detail")
+        if e.get("kind") == "precheck" and e.get("check") == "rest" and isinstance(det, dict):
+            noise = _finite(det.get("noise_std"))
+    if noise is None:
+        rest = session.phase_mask("precheck:rest") & np.isfinite(session.pv)
+        if rest.sum() >= 3:
+            from autotune.prechecks import assess_rest
+
+            noise = assess_rest(session.t[rest], session.pv[rest], session.out[rest]).noise_std
     limit = _finite(_get(header, "config", "safety", "output_limit"))
     deadband = 0.0
     for e in session.events:

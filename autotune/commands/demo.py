@@ -31,6 +31,7 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "step.size": 1.0,
     },
     "mast-pan": {
+        "prechecks.breakaway": True,  # the pan drive has a dead zone: measure it first
         "safety.watchdog": 1.0,
         "safety.output_limit": 90.0,
         "safety.pv_window": 25.0,
