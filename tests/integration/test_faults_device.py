@@ -111,7 +111,12 @@ def test_runaway_device_limits_trip_with_a_slow_host(mock_device, open_link) -> 
         recs.append(rec)
         if rec.fault_latched and len(recs) > 3:
             break
+    # the Fault frame follows the tick's Sample on the wire: give the reader a moment for it
     faults = link.poll_faults()
+    until = time.monotonic() + 1.0
+    while not faults and time.monotonic() < until:
+        time.sleep(0.01)
+        faults = link.poll_faults()
     assert [f.code for f in faults][:1] == [FaultCode.PV_WINDOW]
     pv = np.array([r.pv for r in recs])
     out = np.array([r.output for r in recs])
