@@ -228,4 +228,7 @@ def code_block(rec: GainsRecord) -> str:
         "//   u = clamp(v, -U_MAX, U_MAX);   e = sp - pv",
         f"//   I += KI_TS*e   ({aw});  pv_prev = pv",
     ]
+    if rec.setpoint_weight != 1.0:
+        lines.append("// on engaging at setpoint sp0: I = KP*(1 - B)*sp0 (no bump; B < 1 otherwise "
+                     "kicks the output by KP*(B - 1)*sp0)")
     return "\n".join(lines)

@@ -16,6 +16,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
 
+from autotune.commands.options import (
+    add_connection_options,
+    add_safety_options,
+    add_sim_options,
+    common_overrides,
+)
 from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_overrides
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
 from autotune.pid import PidGains
@@ -37,12 +43,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "Exit codes: 0 the step meets the spec, 1 it does not / limit / fault, 2 usage or\n"
         "configuration, 3 aborted, 4 link lost, 5 zero output not confirmed."
     )
-    p.add_argument("--port", metavar="URL|sim",
-                   help="serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, "
-                        "or 'sim' for the built-in simulated board (default: connection.port)")
-    p.add_argument("--config", metavar="FILE", help="TOML config file (default: built-in "
-                   "defaults)")
-    p.add_argument("--axis", type=int, metavar="N", help="axis index on the board (default: 0)")
+    add_connection_options(p)
     p.add_argument("--kp", type=float, help="proportional gain, output units per PV unit")
     p.add_argument("--ki", type=float, help="integral gain, output units per (PV unit s) "
                    "(default 0)")
@@ -58,11 +59,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "to at most 60%% of the PV window")
     p.add_argument("--loop", choices=("host", "device"),
                    help="where the PID runs (default: device when the board offers it)")
-    p.add_argument("--output-limit", type=float, metavar="U",
-                   help=f"largest |output|, output units (default: {_S.output_limit:g})")
-    p.add_argument("--pv-window", type=float, metavar="W",
-                   help=f"the PV may move at most W from its start value, PV units "
-                        f"(default: {_S.pv_window:g})")
+    add_safety_options(p)
     p.add_argument("--hold", type=float, metavar="S",
                    help=f"hold the start value this long before the step, s "
                         f"(default: {_ST.settle_time:g})")
@@ -105,13 +102,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", metavar="DIR",
                    help="directory for session.jsonl, result.json and gains.toml (default: "
                         "./autotune-sessions/step-YYYYmmdd-HHMMSS)")
-    p.add_argument("--plant", metavar="NAME",
-                   help="for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file")
-    p.add_argument("--speed", type=float, metavar="X",
-                   help="for --port sim: simulated time runs X times faster (default: 1)")
-    p.add_argument("--faults", metavar="SPEC", help="for --port sim: fault injection spec")
-    p.add_argument("--seed", type=int, metavar="N", help="for --port sim: noise seed")
-
+    add_sim_options(p)
 
 # ---------------------------------------------------------------------- gains and predictions
 @dataclass
@@ -212,13 +203,7 @@ def setpoint_weight(args: argparse.Namespace, choice: Choice) -> float:
 
 def _overrides(args: argparse.Namespace) -> dict[str, object]:
     return {
-        "connection.port": args.port,
-        "connection.axis": args.axis,
-        "connection.loop": args.loop,
-        "connection.plant": args.plant,
-        "connection.speed": args.speed,
-        "safety.output_limit": args.output_limit,
-        "safety.pv_window": args.pv_window,
+        **common_overrides(args),
         "step.settle_time": args.hold,
         "step.duration": args.timeout,
     }

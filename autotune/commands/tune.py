@@ -8,6 +8,12 @@ import time
 from pathlib import Path
 from typing import Any, TextIO
 
+from autotune.commands.options import (
+    add_connection_options,
+    add_safety_options,
+    add_sim_options,
+    common_overrides,
+)
 from autotune.config import (
     Config,
     ConnectionConfig,
@@ -34,14 +40,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "within the spec), 1 limit/fault/failed check, no convergence or a step off the spec,\n"
         "2 usage or configuration, 3 aborted, 4 link lost, 5 zero output not confirmed."
     )
-    p.add_argument("--port", metavar="URL|sim",
-                   help="serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, "
-                        "or 'sim' for the built-in simulated board (default: connection.port "
-                        "of the config; required if that is not set)")
-    p.add_argument("--config", metavar="FILE", help="TOML config file (default: none, "
-                   "built-in defaults)")
-    p.add_argument("--axis", type=int, metavar="N",
-                   help=f"axis index on the board (default: {_C.axis})")
+    add_connection_options(p)
     p.add_argument("--yes", action="store_true",
                    help="do not ask for confirmation (for scripts; the cautions still apply)")
     p.add_argument("--out", metavar="DIR",
@@ -50,11 +49,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--loop", choices=("host", "device"),
                    help="where the relay runs: on the board (device) or here (host) (default: "
                         "device when the board offers it and sign is +1, else host)")
-    p.add_argument("--output-limit", type=float, metavar="U",
-                   help=f"largest |output|, output units (default: {_S.output_limit:g})")
-    p.add_argument("--pv-window", type=float, metavar="W",
-                   help=f"the PV may move at most W from its start value, PV units "
-                        f"(default: {_S.pv_window:g})")
+    add_safety_options(p)
     p.add_argument("--target-amplitude", type=float, metavar="A",
                    help=f"PV oscillation peak amplitude to aim for, PV units "
                         f"(default: {_R.target_amplitude:g})")
@@ -68,17 +63,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help=f"stop the relay after N cycles (default: {_R.max_cycles})")
     p.add_argument("--max-time", type=float, metavar="S",
                    help=f"stop the relay after S seconds (default: {_R.max_time:g})")
-    p.add_argument("--plant", metavar="NAME",
-                   help=f"for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file "
-                        f"(default: {_C.plant})")
-    p.add_argument("--speed", type=float, metavar="X",
-                   help=f"for --port sim: simulated time runs X times faster; with another "
-                        f"port: the speed that simulated device was started with, so host "
-                        f"timeouts and the heartbeat scale with it (default: {_C.speed:g})")
-    p.add_argument("--faults", metavar="SPEC", help="for --port sim: fault injection spec "
-                   "passed to the simulated board (default: none)")
-    p.add_argument("--seed", type=int, metavar="N",
-                   help="for --port sim: noise seed (default: the plant's)")
+    add_sim_options(p)
     p.add_argument("--csv", action="store_true",
                    help="also write the samples as session.csv next to session.jsonl")
     p.add_argument("--no-step", action="store_true",
@@ -89,13 +74,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def _overrides(args: argparse.Namespace) -> dict[str, object]:
     return {
-        "connection.port": args.port,
-        "connection.axis": args.axis,
-        "connection.loop": args.loop,
-        "connection.plant": args.plant,
-        "connection.speed": args.speed,
-        "safety.output_limit": args.output_limit,
-        "safety.pv_window": args.pv_window,
+        **common_overrides(args),
         "relay.target_amplitude": args.target_amplitude,
         "relay.start_amplitude": args.amplitude,
         "relay.hysteresis": args.hysteresis,

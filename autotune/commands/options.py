@@ -1,0 +1,58 @@
+"""Options shared by the verbs that power a motor (`tune`, `step`): one definition each."""
+
+from __future__ import annotations
+
+import argparse
+
+from autotune.config import ConnectionConfig, SafetyConfig
+
+PORT_HELP = ("serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, or 'sim' "
+             "for the built-in simulated board (default: connection.port of the config)")
+
+_S, _C = SafetyConfig(), ConnectionConfig()
+
+
+def add_connection_options(p: argparse.ArgumentParser) -> None:
+    """--port, --config and --axis."""
+    p.add_argument("--port", metavar="URL|sim", help=PORT_HELP)
+    p.add_argument("--config", metavar="FILE",
+                   help="TOML config file (default: none, built-in defaults)")
+    p.add_argument("--axis", type=int, metavar="N",
+                   help=f"axis index on the board (default: {_C.axis})")
+
+
+def add_safety_options(p: argparse.ArgumentParser) -> None:
+    """The safety essentials of the command-line contract: --output-limit and --pv-window."""
+    p.add_argument("--output-limit", type=float, metavar="U",
+                   help=f"largest |output|, output units (default: {_S.output_limit:g})")
+    p.add_argument("--pv-window", type=float, metavar="W",
+                   help=f"the PV may move at most W from its start value, PV units "
+                        f"(default: {_S.pv_window:g})")
+
+
+def add_sim_options(p: argparse.ArgumentParser) -> None:
+    """--plant, --speed, --faults and --seed for the built-in simulated board (`--port sim`)."""
+    p.add_argument("--plant", metavar="NAME",
+                   help=f"for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file "
+                        f"(default: {_C.plant})")
+    p.add_argument("--speed", type=float, metavar="X",
+                   help=f"for --port sim: simulated time runs X times faster; with another "
+                        f"port: the speed that simulated device was started with, so host "
+                        f"timeouts and the heartbeat scale with it (default: {_C.speed:g})")
+    p.add_argument("--faults", metavar="SPEC", help="for --port sim: fault injection spec "
+                   "passed to the simulated board (default: none)")
+    p.add_argument("--seed", type=int, metavar="N",
+                   help="for --port sim: noise seed (default: the plant's)")
+
+
+def common_overrides(args: argparse.Namespace) -> dict[str, object]:
+    """Config overrides ("section.key": value) from the options above (None: not given)."""
+    return {
+        "connection.port": args.port,
+        "connection.axis": args.axis,
+        "connection.loop": args.loop,
+        "connection.plant": args.plant,
+        "connection.speed": args.speed,
+        "safety.output_limit": args.output_limit,
+        "safety.pv_window": args.pv_window,
+    }
