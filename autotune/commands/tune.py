@@ -66,6 +66,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add_sim_options(p)
     p.add_argument("--csv", action="store_true",
                    help="also write the samples as session.csv next to session.jsonl")
+    p.add_argument("--view", choices=("auto", "screen", "lines"), default="auto",
+                   help="screen: the full-screen bench view; lines: one plain line per event "
+                        "(default auto: the bench view when both stdin and stdout are terminals "
+                        "and neither --csv, --faults nor --no-step is given)")
     p.add_argument("--no-step", action="store_true",
                    help="do not offer the confirmation step after the proposals (default: with "
                         "--yes the step runs with the default proposal; otherwise you are asked "
@@ -102,6 +106,8 @@ def run(args: argparse.Namespace) -> int:
         raise UserError("no port given: use --port URL (or --port sim), or set "
                         "connection.port in the config")
     out_dir = Path(args.out) if args.out else default_out_dir("tune")
+    if _bench_view(args):
+        return _run_bench_view(cfg, args, port, out_dir)
     options = RunOptions(port=port, yes=args.yes, out_dir=out_dir, plant=cfg.connection.plant,
                          speed=cfg.connection.speed, faults=args.faults, seed=args.seed,
                          verb="tune")
@@ -131,6 +137,36 @@ def run(args: argparse.Namespace) -> int:
     if res is not None and res.get("proposals") and not args.no_step:
         return confirmation_step(cfg, args, res, out_dir, outcome.result_path)
     return outcome.exit_code
+
+
+def _bench_view(args: argparse.Namespace) -> bool:
+    """Whether this run uses the full-screen bench view (see --view)."""
+    if args.view == "lines":
+        return False
+    if args.view == "screen":
+        return True
+    return (sys.stdin.isatty() and sys.stdout.isatty() and not args.csv and not args.faults
+            and not args.no_step)
+
+
+def _run_bench_view(cfg: Config, args: argparse.Namespace, port: str, out_dir: Path) -> int:
+    """The whole job (start screen, relay, proposals, step, accept) in the bench view."""
+    from autotune.simdevice import SIM
+    from autotune.ui.app import JobSettings, run_job
+
+    if args.csv or args.faults or args.no_step:
+        raise UserError("--csv, --faults and --no-step work with --view lines only")
+    simulated = port == SIM
+    out_dir.mkdir(parents=True, exist_ok=True)
+    settings = JobSettings(port=port, out_dir=out_dir, yes=args.yes, label=port,
+                           simulated=simulated, speed=cfg.connection.speed,
+                           plant=cfg.connection.plant, seed=args.seed,
+                           device=f"simulated {cfg.connection.plant} board" if simulated
+                           else port)
+    result = run_job(cfg, settings)
+    if result.exit_code != EXIT_OK:
+        print(f"autotune tune: {result.message}", file=sys.stderr)
+    return result.exit_code
 
 
 def confirmation_step(cfg: Config, args: argparse.Namespace, res: dict[str, Any],

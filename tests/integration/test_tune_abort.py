@@ -67,7 +67,7 @@ def env() -> dict[str, str]:
 def test_space_aborts_and_device_reports_zero_within_two_ticks(tmp_path: Path) -> None:
     out = tmp_path / "run"
     args = ["--port", "sim", "--plant", str(write_plant(tmp_path)), "--speed", "1",
-            "--config", str(write_config(tmp_path)), "--out", str(out)]
+            "--config", str(write_config(tmp_path)), "--out", str(out), "--view", "lines"]
     child = pexpect.spawn(CMD[0], CMD[1:] + args, cwd=str(tmp_path), env=env(), timeout=30,
                           encoding="utf-8")
     try:
