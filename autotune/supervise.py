@@ -23,8 +23,10 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
+
+from autotune.safety import Violation
 
 __all__ = [
     "LinkCounters",
@@ -38,24 +40,16 @@ __all__ = [
 
 
 @dataclass(frozen=True)
-class SupervisorFault:
+class SupervisorFault(Violation):
     """A fault found by a detector: `which` ("link_quality", "no_response", "device_reset"),
     the measured `value` and the `limit` it broke (units of that detector), device time `t` (s),
-    and a one-line `message` for the operator."""
-
-    which: str
-    value: float
-    limit: float
-    t: float
-    message: str
+    and a one-line `message` for the operator. Same record as a limit Violation; only the end
+    reason differs."""
 
     @property
     def reason(self) -> str:
         """End reason for result.json / session.jsonl."""
         return f"fault:{self.which}"
-
-    def as_dict(self) -> dict[str, Any]:
-        return {**asdict(self), "reason": self.reason}
 
 
 @dataclass(frozen=True)
