@@ -38,6 +38,7 @@ from types import FrameType, TracebackType
 from typing import Any, TextIO
 
 from autotune import __version__
+from autotune.cautions import CAUTION_ITEMS, CAUTION_TITLE
 from autotune.config import Config, check_against_device
 from autotune.errors import (
     EXIT_ABORTED,
@@ -54,15 +55,7 @@ from autotune.safety import SafetyGuard, SafetyLimits
 from autotune.simdevice import SIM, SimDevice, start_sim_device
 from autotune.supervise import LinkCounters, LinkQualityMonitor, ResetMonitor, Supervisor
 
-CAUTIONS = (
-    "This run powers a motor. Before you go on:",
-    "  - the robot is on blocks (wheels or joints free to move without going anywhere),",
-    "  - the area around it is clear of people and things,",
-    "  - hands, hair, loose clothing and cables are away from moving parts,",
-    "  - a physical power cut-off (emergency stop or supply switch) is within your reach.",
-    "The software abort (Space, Esc, q or Ctrl-C) is no substitute for that cut-off.",
-    "Follow your local safety codes and licensed practice for machinery.",
-)
+CAUTIONS = (CAUTION_TITLE, *(f"  - {item}" for item in CAUTION_ITEMS))
 
 CUT_POWER = (
     "THE DEVICE DID NOT CONFIRM ZERO OUTPUT. CUT THE MOTOR POWER NOW "
@@ -113,6 +106,7 @@ class RunOptions:
     stdout: TextIO | None = None
     verb: str = "tune"
     keys: bool = True  # watch abort keys when stdin is a terminal
+    cautions_shown: bool = False  # a start screen shows the cautions before `confirm` asks
 
 
 @dataclass
@@ -281,9 +275,11 @@ class PoweredRun:
         return info
 
     def confirm(self) -> None:
-        """Print the cautions; ask unless --yes (refuse when there is nobody to ask)."""
-        for line in CAUTIONS:
-            self.say(line)
+        """Print the cautions (unless a start screen showed them); ask unless --yes (refuse
+        when there is nobody to ask)."""
+        if not self.options.cautions_shown:
+            for line in CAUTIONS:
+                self.say(line)
         if self.options.yes:
             self.say("--yes given: going ahead without asking.")
             return

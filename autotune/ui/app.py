@@ -312,7 +312,7 @@ class BenchJob:
         st = self.settings
         return RunOptions(port=st.port, yes=False, out_dir=out_dir, plant=st.plant,
                           speed=st.speed, seed=st.seed, stdin=_ConfirmGate(self),
-                          stdout=self.sink, verb=verb, keys=False)
+                          stdout=self.sink, verb=verb, keys=False, cautions_shown=True)
 
     def start_view(self) -> StartView:
         """The start screen's view. It comes before the port is opened (nothing is opened

@@ -12,14 +12,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
-CAUTIONS: tuple[str, ...] = (
-    "The robot is on blocks: wheels and joints turn freely, it goes nowhere.",
-    "The area is clear of people, tools and loose cables.",
-    "Hands away from wheels, belts, gears and joints while powered.",
-    "A physical power cut-off is within your reach, and you know which it is.",
-    "The software stop keys are no substitute for that cut-off.",
-    "Follow your local safety codes and licensed electrical practice.",
-)
+from autotune.cautions import CAUTION_ITEMS
+
+CAUTIONS: tuple[str, ...] = tuple(item[0].upper() + item[1:] + "." for item in CAUTION_ITEMS)
 
 
 @dataclass(frozen=True)

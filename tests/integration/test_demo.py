@@ -50,7 +50,7 @@ def test_interactive_demo_start_relay_choose_step_accept(tmp_path: Path) -> None
         # the start screen: the cautions, then the confirmation key
         child.expect("before the motor moves")
         child.expect("The robot is on blocks")
-        child.expect("The software stop keys are no substitute for that cut-off.")
+        child.expect("are no substitute for that cut-off")
         child.send("y")
         # the live relay view reaches convergence
         child.expect("relay \\d+/\\d+")
