@@ -309,8 +309,15 @@ def classic_estimate(cycles: Sequence[Cycle], amplitude_d: float | None = None,
         raise AnalysisError("no complete relay cycle")
     a = float(np.mean([c.amplitude_pp for c in cycles])) / 2
     d = float(np.mean([c.amplitude_d for c in cycles])) if amplitude_d is None else amplitude_d
-    g = describing_function_point(d, a, min(hysteresis, 0.999 * a))
-    return 1.0 / abs(g), float(np.mean([c.period for c in cycles]))
+    return classic_ultimate_gain(d, a, hysteresis), float(np.mean([c.period for c in cycles]))
+
+
+def classic_ultimate_gain(amplitude_d: float, a: float, hysteresis: float = 0.0) -> float:
+    """Plain describing-function Ku = 4 d / (pi a) (output units per PV unit) of one
+    oscillation: d the relay half-step, a half the PV peak-to-peak (NaN when a <= 0)."""
+    if a <= 0:
+        return math.nan
+    return 1.0 / abs(describing_function_point(amplitude_d, a, min(hysteresis, 0.999 * a)))
 
 
 # ---------------------------------------------------------------------------- noise

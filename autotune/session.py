@@ -21,15 +21,15 @@ cannot invert its output, so such a loop runs in host loop.
 
 from __future__ import annotations
 
-import math
 import sys
-from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from collections.abc import Callable, Mapping
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
 
+from autotune import analysis
 from autotune import prechecks as pre
 from autotune.config import Config, check_against_noise
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
@@ -549,11 +549,9 @@ class TuneRun:
         for ev in events:
             if ev.kind == "cycle":
                 c = ev.detail
-                a = 0.5 * c["amplitude_pp"]
-                d = c["amplitude_d"]
                 # plain describing function, live figure only (the analysis refines it)
-                ku = 4.0 * d / (math.pi * math.sqrt(max(a * a - self.hysteresis ** 2, 1e-300)))\
-                    if a > 0 else math.nan
+                ku = analysis.classic_ultimate_gain(c["amplitude_d"], 0.5 * c["amplitude_pp"],
+                                                    self.hysteresis or 0.0)
                 self.estimates.append(CycleEstimate(c["index"], c["period"], c["amplitude_pp"],
                                                     ku, c["period"]))
                 run.snapshot_extra.update(cycle=len(exp.cycles), estimates=tuple(self.estimates))
@@ -597,13 +595,6 @@ class TuneRun:
             self._classic_only(result, exp)
             return result
         run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles")
-        try:
-            from autotune import analysis
-        except ImportError:
-            result["notes"].append("analysis module not available: only the relay figures "
-                                   "are reported")
-            self._classic_only(result, exp)
-            return result
         if self.deadband > 0:
             # the plant sees a relay of d - deadband: the dead zone taken out of the output
             # (continuous dead zone u - sign(u) deadband) before the analysis
@@ -625,72 +616,61 @@ class TuneRun:
             result["notes"].append(f"analysis failed: {exc}")
             self._classic_only(result, exp)
             return result
-        fields_ = analysis.result_fields(an) if hasattr(analysis, "result_fields") else {
-            "ultimate_gain": an.ku, "ultimate_period": an.tu,
-            "ultimate_gain_classic": an.ku_classic, "ultimate_period_classic": an.tu_classic,
-            "uncertainty": an.uncertainty,
-            "model": {"kind": an.model.kind, "params": an.model.params},
-            "cycles_used": an.cycles_used,
-        }
-        result.update(fields_)
+        result.update(analysis.result_fields(an))
         result["end_reason"] = run.outcome.reason
         if self.deadband > 0:
             # the contract's `relay` holds the settings as used; the analysis saw d - deadband
             result["relay"] = {**result.get("relay", {}), "amplitude": exp.settings.amplitude,
                                "bias": exp.settings.bias,
                                "effective_amplitude": exp.settings.amplitude - self.deadband}
-        for w in getattr(an, "warnings", []) or []:
+        for w in an.warnings:
             result["notes"].append(str(w))
         run.set_phase(Phase.PROPOSALS, "designing gains")
-        try:
-            from autotune import design
-        except ImportError:
-            result["proposals"] = []
-            result["notes"].append("design module not available: no gain proposals")
-            return result
-        try:
-            spec_kw: dict[str, Any] = {
-                "ms_target": cfg.design.ms_target,
-                "max_overshoot": cfg.design.max_overshoot,
-                "max_settling_time": cfg.design.max_settling_time,
-                "step_size": cfg.design.step_size or cfg.relay.target_amplitude,
-                "output_limit": cfg.safety.output_limit,
-                "ts": info.tick,
-            }
-            import dataclasses
-
-            names = {f.name for f in dataclasses.fields(design.DesignSpec)}
-            spec = design.DesignSpec(**{k: v for k, v in spec_kw.items() if k in names})
-            model_tf = an.model.tf if an.model is not None else None
-            props = design.propose(an.ku, an.tu, model_tf, spec)
-            result["proposals"] = [self._proposal_dict(p) for p in props]
-        except Exception as exc:  # noqa: BLE001
-            result["proposals"] = []
-            result["notes"].append(f"design failed: {exc}")
+        result["proposals"] = propose_gains(an, asdict(cfg.design), cfg.safety.output_limit,
+                                            cfg.relay.target_amplitude, info.tick,
+                                            result["notes"])
         if self.sign == -1:
             result["notes"].append("sign = -1: gains are for the sign-normalised loop; the "
                                    "controller must act on -error (or negate the gains)")
         return result
 
-    @staticmethod
-    def _proposal_dict(p: Any) -> dict[str, Any]:
-        if hasattr(p, "as_dict"):
-            return p.as_dict()
-        g = p.gains
-        return {"name": p.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
-                "predicted": dict(p.predicted), "violations": list(getattr(p, "violations", [])),
-                "default": bool(getattr(p, "default", False))}
-
     def _classic_only(self, result: dict[str, Any], exp: RelayExperiment) -> None:
         """Plain describing-function figures from the last settled cycles (no model)."""
         cyc = exp.settled_cycles[-3:] or exp.cycles[-3:]
-        a = float(np.mean([c.amplitude for c in cyc]))
-        d = float(np.mean([c.amplitude_d for c in cyc]))
-        p = float(np.mean([c.period for c in cyc]))
-        eps = exp.settings.hysteresis
-        ku = 4.0 * d / (math.pi * math.sqrt(max(a * a - eps * eps, 1e-300)))
-        result.update(ultimate_gain_classic=ku, ultimate_period_classic=p, cycles_used=len(cyc),
-                      proposals=[])
+        result.update(cycles_used=len(cyc), proposals=[])
+        if cyc:
+            ku, tu = analysis.classic_estimate(cyc, hysteresis=exp.settings.hysteresis)
+            result.update(ultimate_gain_classic=ku, ultimate_period_classic=tu)
+
+
+def propose_gains(an: analysis.RelayAnalysis, design_cfg: Mapping[str, Any],
+                  output_limit: float | None, target_amplitude: float | None,
+                  ts: float | None, notes: list[str]) -> list[dict[str, Any]]:
+    """The result.json `proposals` for an analysis, live and offline alike.
+
+    design_cfg: the config's [design] table (ms_target, max_overshoot (%), max_settling_time
+    (s), step_size (PV units; None = the relay's target amplitude)); output_limit in output
+    units; ts the loop period (s). A design failure is reported in `notes`, not raised: the
+    analysis itself stands.
+    """
+    from autotune import design
+
+    kw: dict[str, Any] = {
+        "ms_target": design_cfg.get("ms_target"),
+        "max_overshoot": design_cfg.get("max_overshoot"),
+        "max_settling_time": design_cfg.get("max_settling_time"),
+        "step_size": design_cfg.get("step_size") or target_amplitude,
+        "output_limit": output_limit,
+        "ts": ts,
+    }
+    optional = ("max_overshoot", "max_settling_time", "ts")
+    spec = design.DesignSpec(**{k: v for k, v in kw.items() if v is not None or k in optional})
+    try:
+        props = design.propose(an.ku, an.tu, an.model.tf, spec)
+    except Exception as exc:  # noqa: BLE001 - report, the analysis itself stands
+        notes.append(f"design failed: {exc}")
+        return []
+    return [p.as_dict() for p in props]
 
 
 def run_tune(cfg: Config, options: RunOptions, *,

@@ -140,7 +140,13 @@ def run(args: argparse.Namespace) -> int:
                               "dead zone (u - sign(u) deadband); --deadband 0 turns it off"}
     result["end_reason"] = session.reason or "cut-off"
     result["notes"] = list(session.warnings)
-    result["proposals"] = _proposals(an, session.header, result["notes"])
+    from autotune.session import propose_gains
+
+    header = session.header
+    result["proposals"] = propose_gains(
+        an, _get(header, "config", "design") or {},
+        _finite(_get(header, "config", "safety", "output_limit")),
+        _finite(_get(header, "config", "relay", "target_amplitude")), an.ts, result["notes"])
     out = Path(args.json) if args.json else Path(args.session).with_name("result.json")
     write_result(out, result)
     unc = an.uncertainty
@@ -157,30 +163,3 @@ def run(args: argparse.Namespace) -> int:
         print(f"warning: {w}")
     print(f"wrote {out}")
     return EXIT_OK
-
-
-def _proposals(an: Any, header: dict[str, Any], notes: list[str]) -> list[dict[str, Any]]:
-    """Gain proposals from autotune.design when it is available (empty list otherwise)."""
-    try:
-        from autotune import design
-    except ImportError:
-        notes.append("design module not available: no gain proposals")
-        return []
-    try:
-        names = {f.name for f in dataclasses.fields(design.DesignSpec)}
-        kw = {"ts": an.ts,
-              "output_limit": _finite(_get(header, "config", "safety", "output_limit")),
-              "step_size": _finite(_get(header, "config", "relay", "target_amplitude"))}
-        spec = design.DesignSpec(**{k: v for k, v in kw.items() if k in names and v is not None})
-        props = design.propose(an.ku, an.tu, an.model.tf, spec)
-    except Exception as exc:  # noqa: BLE001 - report, the analysis itself stands
-        notes.append(f"design failed: {exc}")
-        return []
-    out = []
-    for p in props:
-        if hasattr(p, "as_dict"):
-            out.append(p.as_dict())
-        else:
-            out.append({"name": p.name, "kp": p.gains.kp, "ki": p.gains.ki, "kd": p.gains.kd,
-                        "predicted": dict(p.predicted)})
-    return out
