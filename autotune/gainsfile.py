@@ -6,7 +6,7 @@ anti-windup and setpoint-weight settings, where the gains came from and the meas
 
 Units: gains in output units per PV unit, `ki` per second, `kd` in seconds (parallel form
 u = kp e + ki ∫e dt + kd de/dt); Ti, Td, Tf, Tt and the loop period in seconds; per-tick values
-for a loop that runs once every `period` seconds (see autotune.pid.DiscretePid).
+for a loop that runs once every `period` seconds (see autotune.core.pid.DiscretePid).
 
 Layout (all tables always present unless marked optional):
     format = "autotune-gains"; version = 1
@@ -33,7 +33,7 @@ from typing import Any
 
 import tomli_w
 
-from autotune.pid import PidGains, PidSettings, filter_time, per_tick, to_standard
+from autotune.core.pid import PidGains, PidSettings, filter_time, per_tick, to_standard
 
 FORMAT = "autotune-gains"
 VERSION = 1
@@ -232,3 +232,28 @@ def code_block(rec: GainsRecord) -> str:
         lines.append("// on engaging at setpoint sp0: I = KP*(1 - B)*sp0 (no bump; B < 1 otherwise "
                      "kicks the output by KP*(B - 1)*sp0)")
     return "\n".join(lines)
+
+
+def record_from_outcome(outcome: Any, session: str | None = None,
+                    device: dict[str, Any] | None = None,
+                    tool_version: str | None = None) -> GainsRecord:
+    """The GainsRecord of a step outcome (autotune.core.steptest.StepOutcome): the gains as
+    run, with the measured and predicted figures."""
+    dev = device or {}
+    sf = outcome.step_field()
+    measured: dict[str, Any] = {k: sf.get(k) for k in (
+        "overshoot", "rise_time", "settling_time", "steady_state_error", "iae",
+        "peak_output", "time_saturated", "settle_band")}
+    if outcome.load is not None:
+        measured["load"] = outcome.load.to_dict()
+    lim = outcome.pid.out_max
+    return GainsRecord.from_settings(
+        outcome.pid, loop_mode=outcome.loop, axis=int(dev.get("axis", 0)),
+        output_limit=lim if math.isfinite(lim) else None,
+        origin={"session": session, "proposal": outcome.candidate.name,
+                "device": dev.get("name"), "firmware": dev.get("firmware"),
+                "tool_version": tool_version},
+        measured=measured,
+        predicted={k: v for k, v in outcome.candidate.predicted.items()
+                   if isinstance(v, int | float) and not isinstance(v, bool)},
+    )

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from autotune.relay import Relay, RelaySettings
+from autotune.core.relay import Relay, RelaySettings
 from mock_device.plant import LtiPlant, Sensor
 
 
@@ -42,7 +42,7 @@ def run_relay(num, den, delay: float, *, ts: float, amplitude: float = 1.0,
         duration = n_cycles * period_guess
     settings = RelaySettings(centre=centre, bias=bias, amplitude=amplitude,
                              hysteresis=hysteresis)
-    relay = Relay(settings, output_limit)  # autotune.relay: hysteresis on e = centre - pv
+    relay = Relay(settings, output_limit)  # autotune.core.relay: hysteresis on e = centre - pv
     plant = LtiPlant(num, den, delay, max_step=ts)
     sensor = Sensor(noise=noise, resolution=resolution, offset=centre,
                     rng=np.random.default_rng(seed))

@@ -1,4 +1,4 @@
-"""Tests for autotune.analysis: cycles, classic and refined ultimate point, warnings.
+"""Tests for autotune.core.analysis: cycles, classic and refined ultimate point, warnings.
 
 Truth: Ku and Tu of the continuous plant from python-control's exact frequency response with
 the dead time applied exactly (tests/relaysim.true_ultimate). Documented choice (see the
@@ -14,7 +14,7 @@ import control  # python-control: describing functions, frequency responses
 import numpy as np
 import pytest
 
-from autotune.analysis import (
+from autotune.core.analysis import (
     AnalysisError,
     analyse_relay,
     classic_estimate,
@@ -196,7 +196,7 @@ def test_steady_cycles_on_a_quantised_noisy_pv_are_all_kept(seed):
     # mast-pan-like integrating loop (0.9 e^{-0.06 s} / (s (0.25 s + 1)), 10 ms tick), PV
     # noise 0.03 and resolution 0.088 on a swing of about +/-0.5: after the first cycle from
     # rest the relay cycles differ only by switching jitter and quantisation, so every one of
-    # them is steady and must be kept (tolerances from autotune.relay.measurement_tolerances;
+    # them is steady and must be kept (tolerances from autotune.core.relay.measurement_tolerances;
     # common practice, no source). A tolerance from the later cycles' own spread drops some.
     res, noise, eps = 0.087890625, 0.03, 0.176
     rec = run_relay([0.9], [0.25, 1.0, 0.0], 0.06, ts=0.01, amplitude=3.2, hysteresis=eps,
@@ -230,7 +230,7 @@ def test_converged_cycles_and_cycles_to_converge():
     n = cycles_to_converge(cyc)
     assert n is not None and 2 <= n <= len(cyc)
 
-    class Fig:  # autotune.relay.CycleFigures has period and amplitude_pp
+    class Fig:  # autotune.core.relay.CycleFigures has period and amplitude_pp
         def __init__(self, p, a):
             self.period, self.amplitude_pp = p, a
 

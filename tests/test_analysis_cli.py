@@ -7,8 +7,8 @@ import json
 import numpy as np
 import pytest
 
-from autotune.analysis import analyse_relay
 from autotune.cli import main
+from autotune.core.analysis import analyse_relay
 from autotune.recorder import SessionWriter
 from tests.relaysim import batch_run
 

@@ -1,4 +1,4 @@
-"""The confirmation-step pieces shared by `tune` and `step` (autotune.confirm): proposal picking
+"""The confirmation-step pieces shared by `tune` and `step` (autotune.job.attempts): proposal picking
 by name or number, the line-mode prompts inside `tune` (no motion in these tests)."""
 
 from __future__ import annotations
@@ -9,7 +9,7 @@ from pathlib import Path
 
 from autotune.commands.tune import confirmation_step
 from autotune.config import Config
-from autotune.confirm import pick_interactively, proposal_choice, step_namespace
+from autotune.job.attempts import pick_interactively, proposal_choice, step_namespace
 
 POOL = [{"name": "zn-pi", "kp": 2.0, "ki": 1.0, "kd": 0.0, "predicted": {"overshoot": 30.0}},
         {"name": "robust-pid", "kp": 1.5, "ki": 0.5, "kd": 0.1, "default": True,

@@ -13,8 +13,8 @@ import numpy as np
 from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
-from autotune.relay import Relay, RelayExperiment, RelayPlan, RelaySettings
-from autotune.safety import SafetyGuard, SafetyLimits
+from autotune.core.relay import Relay, RelayExperiment, RelayPlan, RelaySettings
+from autotune.core.safety import SafetyGuard, SafetyLimits
 
 finite = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False, allow_infinity=False)
 any_pv = st.one_of(finite, finite, finite, st.sampled_from([math.nan, math.inf, -math.inf]))

@@ -1,4 +1,4 @@
-"""Tests for autotune.rules, autotune.robust and autotune.design.
+"""Tests for autotune.core.rules, autotune.core.robust and autotune.core.design.
 
 Outside references: the published tuning tables (worked examples below; the tables are quoted
 from memory of the cited papers), python-control 0.10 (control.stability_margins, control.pade,
@@ -14,9 +14,9 @@ import control  # python-control, the outside reference for margins and step fig
 import numpy as np
 import pytest
 
-from autotune import design, robust, rules
-from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
-from autotune.pid import PidGains, filter_time, per_tick, to_standard
+from autotune.core import design, robust, rules
+from autotune.core.lti import DelayedTF, fopdt, integrator_lag, sopdt
+from autotune.core.pid import PidGains, filter_time, per_tick, to_standard
 
 # ------------------------------------------------------------------ tables, worked examples
 

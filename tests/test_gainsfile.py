@@ -10,6 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from autotune.core.pid import PidGains, PidSettings, per_tick
 from autotune.gainsfile import (
     GainsFileError,
     GainsRecord,
@@ -18,7 +19,6 @@ from autotune.gainsfile import (
     to_document,
     write_gains_file,
 )
-from autotune.pid import PidGains, PidSettings, per_tick
 
 
 def _record(**kw: object) -> GainsRecord:

@@ -6,7 +6,7 @@ import control as ct
 import numpy as np
 import pytest
 
-from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
+from autotune.core.lti import DelayedTF, fopdt, integrator_lag, sopdt
 
 PLANTS = [
     fopdt(1.0, 1.0, 0.5),

@@ -1,4 +1,4 @@
-"""Tests for autotune.metrics.step_metrics.
+"""Tests for autotune.core.metrics.step_metrics.
 
 Outside references: python-control 0.10 control.step_info on the same arrays (it takes the
 first sample at or beyond a level, so its times are compared within one sample period), and
@@ -13,7 +13,7 @@ import control  # python-control, the outside reference for step-response figure
 import numpy as np
 import pytest
 
-from autotune.metrics import step_metrics
+from autotune.core.metrics import step_metrics
 
 
 def _second_order(t: np.ndarray, zeta: float, wn: float) -> np.ndarray:

@@ -1,4 +1,4 @@
-"""Tests for autotune.model: exact sampled responses and the low-order model fit."""
+"""Tests for autotune.core.model: exact sampled responses and the low-order model fit."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import control  # python-control: the outside reference for sampled (ZOH) respon
 import numpy as np
 import pytest
 
-from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
-from autotune.model import (
+from autotune.core.lti import DelayedTF, fopdt, integrator_lag, sopdt
+from autotune.core.model import (
     _modes,
     cascade_response,
     fit_models,

@@ -1,4 +1,4 @@
-"""Tests for autotune.pid (gain forms, DiscretePid) and autotune.closedloop.
+"""Tests for autotune.core.pid (gain forms, DiscretePid) and autotune.core.closedloop.
 
 Outside references: python-control 0.10 (control.sample_system, control.forced_response,
 control.feedback) for the sampled and continuous closed loops; analytic results otherwise.
@@ -14,10 +14,10 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from autotune.closedloop import simulate_closed_loop
-from autotune.lti import DelayedTF, sopdt
-from autotune.metrics import step_metrics
-from autotune.pid import (
+from autotune.core.closedloop import simulate_closed_loop
+from autotune.core.lti import DelayedTF, sopdt
+from autotune.core.metrics import step_metrics
+from autotune.core.pid import (
     DiscretePid,
     PidGains,
     PidSettings,

@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from autotune.lti import DelayedTF, fopdt
-from autotune.prechecks import (
+from autotune.core.lti import DelayedTF, fopdt
+from autotune.core.prechecks import (
     MSG_NO_RESPONSE,
     MSG_SIGN_DISAGREE,
     PrecheckFailed,
@@ -247,7 +247,7 @@ def test_deadband_from_two_ramps_integrating_with_lag_and_delay(seed: int) -> No
     """mast-pan-like loop, dead zone 3: the estimate is within 0.3 (10%) of the truth, where the
     first-motion reading is an upper bound well above it. Exact in the noise-free limit
     (analytic: the two ramp responses are time-shifted copies past the dead zone)."""
-    from autotune.prechecks import assess_breakaway, deadband_from_two_ramps
+    from autotune.core.prechecks import assess_breakaway, deadband_from_two_ramps
 
     args = ([0.9], [0.25, 1.0, 0.0], 0.06, 3.0, 0.03, 360 / 4096)
     ta, ya = _ramp(5.0, seed, +1, *args, stop=1.0)
@@ -259,7 +259,7 @@ def test_deadband_from_two_ramps_integrating_with_lag_and_delay(seed: int) -> No
 
 
 def test_deadband_from_two_ramps_noise_free_exact_and_zero() -> None:
-    from autotune.prechecks import deadband_from_two_ramps
+    from autotune.core.prechecks import deadband_from_two_ramps
 
     for db in (0.0, 2.0):
         args = ([0.25], [0.048, 0.68, 1.0], 0.05, db, 0.0, 0.0)

@@ -8,8 +8,8 @@ import math
 import numpy as np
 import pytest
 
-from autotune.lti import fopdt
-from autotune.relay import (
+from autotune.core.lti import fopdt
+from autotune.core.relay import (
     CycleFigures,
     Relay,
     RelayExperiment,
@@ -19,7 +19,7 @@ from autotune.relay import (
     clamp,
     default_converged,
 )
-from autotune.safety import SafetyGuard, SafetyLimits
+from autotune.core.safety import SafetyGuard, SafetyLimits
 
 
 # ---------------------------------------------------------------------------------- helpers
@@ -168,7 +168,7 @@ def test_relay_starts_low_at_or_above_centre_and_clamps() -> None:
 
 # ---------------------------------------------------------------------------------- the plant
 def test_fopdt_helper_matches_lti_simulation() -> None:
-    """The test plant agrees with autotune.lti's exact ZOH simulation of the same FOPDT."""
+    """The test plant agrees with autotune.core.lti's exact ZOH simulation of the same FOPDT."""
     dt = 0.01
     rng = np.random.default_rng(1)
     u = rng.uniform(-1, 1, 300)
@@ -515,7 +515,7 @@ def test_experiment_argument_checks() -> None:
 def _mast_like(seed: int, load: float = 0.0):
     """Integrating loop 0.9/(s (0.25 s + 1)) e^{-0.06 s} behind a 3-unit dead zone, PV noise
     0.03 and quantisation 360/4096 (the mast-pan scenario), host loop at a 10 ms tick."""
-    from autotune.relay import steady_converged
+    from autotune.core.relay import steady_converged
     from mock_device.plant import Actuator, LtiPlant, Sensor
 
     dt, noise, res, d0 = 0.01, 0.03, 360 / 4096, 9.0
@@ -561,7 +561,7 @@ def test_bias_balances_a_real_load_on_noisy_pv(seed: int) -> None:
 
 
 def test_switch_jitter_and_tolerances() -> None:
-    from autotune.relay import measurement_tolerances, steady_converged, switch_jitter
+    from autotune.core.relay import measurement_tolerances, steady_converged, switch_jitter
 
     # analytic: sinusoid of peak a, period P crossing zero has slope 2 pi a / P
     sd = switch_jitter(1.0, 2 * math.pi, 0.0, noise_std=0.1)

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from autotune.safety import LIMIT_NAMES, SafetyGuard, SafetyLimits, Violation
+from autotune.core.safety import LIMIT_NAMES, SafetyGuard, SafetyLimits, Violation
 
 LIMITS = SafetyLimits(output_limit=50.0, pv_window=2.0, pv_rate_limit=10.0, max_duration=30.0,
                       max_sample_gap=0.1)

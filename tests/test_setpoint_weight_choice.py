@@ -7,7 +7,7 @@ import json
 from pathlib import Path
 
 from autotune.commands.step import add_arguments, choose_gains, setpoint_weight
-from autotune.confirm import proposal_choice, step_namespace
+from autotune.job.attempts import proposal_choice, step_namespace
 
 
 def test_b_is_the_proposals_unless_given(tmp_path: Path) -> None:

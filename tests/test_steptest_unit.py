@@ -15,8 +15,8 @@ import control
 import numpy as np
 import pytest
 
-from autotune.pid import DiscretePid, PidGains, PidSettings, per_tick
-from autotune.steptest import (
+from autotune.core.pid import DiscretePid, PidGains, PidSettings, per_tick
+from autotune.core.steptest import (
     StepExperiment,
     StepPhase,
     StepPlan,
@@ -35,7 +35,7 @@ def pid_transfer_functions(settings: PidSettings) -> tuple[control.TransferFunct
                                                            control.TransferFunction]:
     """(Cr, Cy) of DiscretePid without saturation: U = Cr R - Cy Y (discrete, dt = ts).
 
-    From the difference equations in autotune.pid.DiscretePid: I[k+1] = I[k] + ki ts e[k]
+    From the difference equations in autotune.core.pid.DiscretePid: I[k+1] = I[k] + ki ts e[k]
     -> ki_ts / (z - 1); D[k] = ad D[k-1] - bd (y[k] - y[k-1]) -> -bd (z - 1)/(z - ad);
     P = kp (b r - y).
     """
@@ -248,7 +248,7 @@ def test_noise_widens_the_settling_band() -> None:
 
 def test_settings_from_config_keeps_the_step_inside_the_window() -> None:
     from autotune.config import load_config, with_overrides
-    from autotune.steptest import settings_from_config
+    from autotune.core.steptest import settings_from_config
 
     cfg = with_overrides(load_config(None), {"safety.pv_window": 5.0, "step.duration": 7.0,
                                              "step.settle_time": 0.4})

@@ -11,9 +11,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from autotune.relay import RelayExperiment, RelayPlan, RelaySettings
-from autotune.safety import SafetyGuard, SafetyLimits
-from autotune.supervise import (
+from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
+from autotune.core.safety import SafetyGuard, SafetyLimits
+from autotune.core.supervise import (
     LinkCounters,
     LinkQualityMonitor,
     ResetMonitor,

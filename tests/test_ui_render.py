@@ -12,12 +12,12 @@ import re
 import pytest
 from rich.console import Console
 
-from autotune.progress import CycleEstimate, LimitGauge, LinkHealth, Phase, RunSnapshot
+from autotune.core.progress import CycleEstimate, LimitGauge, LinkHealth, Phase, RunSnapshot
+from autotune.core.verdict import StepSpec, compare, judge
 from autotune.ui import plain, screens
 from autotune.ui.chart import BRAILLE_BASE, BrailleChart, Series, nice_range, rasterise
 from autotune.ui.views import CAUTIONS, FinishView, ProposalRow, ProposalsView, StartView, StepView
 from autotune.ui.widgets import estimate_changes, limit_bar
-from autotune.verdict import StepSpec, compare, judge
 
 SIZES = [(80, 24), (100, 30), (140, 45)]
 ESC = "\x1b"

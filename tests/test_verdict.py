@@ -6,9 +6,9 @@ import math
 
 import pytest
 
-from autotune.metrics import StepMetrics
-from autotune.pid import PidGains
-from autotune.verdict import (
+from autotune.core.metrics import StepMetrics
+from autotune.core.pid import PidGains
+from autotune.core.verdict import (
     DEFAULT_DETUNE,
     Action,
     StepSpec,

@@ -95,7 +95,7 @@ def session_inputs(session: Any) -> dict[str, Any]:
     if noise is None:
         rest = session.phase_mask("precheck:rest") & np.isfinite(session.pv)
         if rest.sum() >= 3:
-            from autotune.prechecks import assess_rest
+            from autotune.core.prechecks import assess_rest
 
             noise = assess_rest(session.t[rest], session.pv[rest], session.out[rest]).noise_std
     limit = _finite(_get(header, "config", "safety", "output_limit"))
@@ -110,7 +110,7 @@ def session_inputs(session: Any) -> dict[str, Any]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from autotune import analysis
+    from autotune.core import analysis
     from autotune.recorder import read_session, write_result
 
     session = read_session(args.session)
@@ -140,7 +140,7 @@ def run(args: argparse.Namespace) -> int:
                               "dead zone (u - sign(u) deadband); --deadband 0 turns it off"}
     result["end_reason"] = session.reason or "cut-off"
     result["notes"] = list(session.warnings)
-    from autotune.session import propose_gains
+    from autotune.job.tune import propose_gains
 
     header = session.header
     result["proposals"] = propose_gains(

@@ -1,6 +1,6 @@
 """`autotune step`: prove PID gains on the loop with one setpoint step (powers the motor).
 
-Loads the gains into the board (device PID) or runs autotune.pid on the host, holds the start
+Loads the gains into the board (device PID) or runs autotune.core.pid on the host, holds the start
 value, steps the setpoint, records until the PV settles (or a timeout), optionally applies a load
 offset, returns to the start value; then compares the measured figures with the predicted ones,
 judges them on the spec, and offers: accept (writes a gains file), detune, another proposal,
@@ -23,9 +23,9 @@ from autotune.commands.options import (
     common_overrides,
 )
 from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_overrides
+from autotune.core.pid import PidGains
+from autotune.core.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
-from autotune.pid import PidGains
-from autotune.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
 
 HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
 
@@ -224,7 +224,7 @@ class Batch:
 def _predict(choice: Choice, gains: PidGains, settings: Any, ts: float, loop: str,
              size: float, timeout: float) -> dict[str, Any]:
     """Predicted figures for detuned/edited gains from the tune result's model, if any."""
-    from autotune.steptest import model_from_dict, predict_step
+    from autotune.core.steptest import model_from_dict, predict_step
 
     if choice.model is None:
         return {}
@@ -241,8 +241,9 @@ def _predict(choice: Choice, gains: PidGains, settings: Any, ts: float, loop: st
 def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Path,
               spec: StepSpec, stdout: TextIO, retries: int) -> Batch:
     """Connect, confirm, arm, run the step (and automatic detuned repeats), stop."""
-    from autotune.runner_base import PoweredRun, RunOptions
-    from autotune.steptest import StepCandidate, StepEnded, run_step, settings_from_config
+    from autotune.core.steptest import StepCandidate, settings_from_config
+    from autotune.job.powered import PoweredRun, RunOptions
+    from autotune.job.step import StepEnded, run_step
 
     options = RunOptions(port=str(cfg.connection.port), yes=args.yes, out_dir=out_dir,
                          plant=cfg.connection.plant, speed=cfg.connection.speed,
@@ -365,9 +366,10 @@ def accept(outcome: Any, path: Path, session: Path | None, stdout: TextIO,
            device: dict[str, Any]) -> Path:
     """Write the gains file for `outcome` and print the code-ready block."""
     from autotune import __version__
-    from autotune.gainsfile import code_block, write_gains_file
+    from autotune.gainsfile import code_block, record_from_outcome, write_gains_file
 
-    rec = outcome.gains_record(None if session is None else str(session), device, __version__)
+    rec = record_from_outcome(outcome, None if session is None else str(session), device,
+                              __version__)
     p = write_gains_file(path, rec)
     print(f"gains written to {p}", file=stdout)
     print(code_block(rec), file=stdout)
@@ -376,7 +378,7 @@ def accept(outcome: Any, path: Path, session: Path | None, stdout: TextIO,
 
 def store_later(cfg: Config, args: argparse.Namespace, gains: PidGains, stdout: TextIO) -> bool:
     """Connect again (no motion, so no cautions) and store the gains on the board."""
-    from autotune.runner_base import PoweredRun, RunOptions
+    from autotune.job.powered import PoweredRun, RunOptions
 
     options = RunOptions(port=str(cfg.connection.port), yes=True, out_dir=None,
                          plant=cfg.connection.plant, speed=cfg.connection.speed,
@@ -416,7 +418,7 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
         max_time_saturated=args.max_saturation,
     )
     out_root = Path(args.out) if args.out else default_out_dir("step")
-    from autotune.confirm import run_attempts
+    from autotune.job.attempts import run_attempts
 
     res = run_attempts(cfg, args, choice, spec, out_root, stdout, stdin)
     write_outputs(out_root, res.outcomes, res.end_reason, res.gains_file, res.sessions)

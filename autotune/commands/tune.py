@@ -24,7 +24,7 @@ from autotune.config import (
     with_overrides,
 )
 from autotune.errors import EXIT_OK, UserError
-from autotune.runner_base import RunOptions
+from autotune.job.powered import RunOptions
 
 HELP = "run the relay experiment on one loop and propose PID gains (powers the motor)"
 
@@ -98,7 +98,7 @@ def default_out_dir(verb: str) -> Path:
 
 
 def run(args: argparse.Namespace) -> int:
-    from autotune.session import LinePrinter, run_tune
+    from autotune.job.tune import LinePrinter, run_tune
 
     cfg = with_overrides(load_config(args.config), _overrides(args))
     port = cfg.connection.port
@@ -174,10 +174,11 @@ def confirmation_step(cfg: Config, args: argparse.Namespace, res: dict[str, Any]
                       stdout: TextIO | None = None, stdin: Any = None) -> int:
     """The confirmation step after the proposals (line mode): with --yes the default proposal,
     else the operator picks one (name or number; Enter: the default) and confirms; then the
-    same attempt loop as `autotune step` (autotune.confirm.run_attempts) in OUT/step. Adds
+    same attempt loop as `autotune step` (autotune.job.attempts.run_attempts) in OUT/step. Adds
     `step`, `step_attempts`, `step_end_reason` and `gains_file` to result.json. Returns 0 when
     the step was skipped or accepted / meets the spec, else the step's exit code."""
-    from autotune.confirm import (
+    from autotune.core.verdict import StepSpec
+    from autotune.job.attempts import (
         ask,
         pick_interactively,
         proposal_choice,
@@ -185,7 +186,6 @@ def confirmation_step(cfg: Config, args: argparse.Namespace, res: dict[str, Any]
         step_namespace,
     )
     from autotune.recorder import write_result
-    from autotune.verdict import StepSpec
 
     stdout = stdout if stdout is not None else sys.stdout
     stdin = stdin if stdin is not None else sys.stdin

@@ -5,8 +5,8 @@ a terminal) and the single key thread (`KeyRouter`, built on `autotune.keys.Abor
 keys are handled first, in the key thread, by whatever stop the current stage installed; other
 keys go to a queue the screens read.
 
-`BenchJob` runs start screen -> relay (autotune.session.TuneRun) -> proposals -> confirmation
-step (autotune.steptest.run_step on a fresh autotune.runner_base.PoweredRun) -> accept (gains
+`BenchJob` runs start screen -> relay (autotune.job.tune.TuneRun) -> proposals -> confirmation
+step (autotune.job.step.run_step on a fresh autotune.job.powered.PoweredRun) -> accept (gains
 file) -> finish. The motor is stopped between stages: every powered stage is its own `with`
 block, so its stop path runs before a screen waits for the operator.
 """
@@ -28,9 +28,9 @@ from typing import Any
 from rich.console import Console, RenderableType
 from rich.live import Live
 
+from autotune.core.progress import RunSnapshot
 from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_OK, UserError
 from autotune.keys import AbortKeys
-from autotune.progress import RunSnapshot
 from autotune.ui import plain, screens
 from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
 
@@ -307,7 +307,7 @@ class BenchJob:
         self.term.line(line)
 
     def run_options(self, out_dir: Path, verb: str) -> Any:
-        from autotune.runner_base import RunOptions
+        from autotune.job.powered import RunOptions
 
         st = self.settings
         return RunOptions(port=st.port, yes=False, out_dir=out_dir, plant=st.plant,
@@ -372,7 +372,7 @@ class BenchJob:
         return True
 
     def run_relay(self) -> int:
-        from autotune.session import TuneRun
+        from autotune.job.tune import TuneRun
 
         out_dir = self.settings.out_dir
         self.tune = TuneRun(self.cfg, self.run_options(out_dir, "demo"),
@@ -395,7 +395,7 @@ class BenchJob:
 
     # ---------------------------------------------------------------- stage 2: proposals
     def design_spec(self, ms_target: float | None = None) -> Any:
-        from autotune.design import DesignSpec
+        from autotune.core.design import DesignSpec
 
         cfg = self.cfg
         tick = getattr(self.info, "tick", None) if self.info is not None else None
@@ -409,7 +409,7 @@ class BenchJob:
         )
 
     def step_size(self) -> float:
-        from autotune.steptest import fit_step_to_window
+        from autotune.core.steptest import fit_step_to_window
 
         cfg = self.cfg
         size = cfg.step.size or cfg.design.step_size or cfg.relay.target_amplitude
@@ -417,14 +417,14 @@ class BenchJob:
         return float(size)
 
     def load_proposals(self) -> None:
-        from autotune.steptest import model_from_dict
+        from autotune.core.steptest import model_from_dict
 
         res = self.result or {}
         self.rows = [ProposalRow.of(_DictProposal(p)) for p in res.get("proposals") or []]
         self.model = model_from_dict(res["model"]) if res.get("model") else None
         m = res.get("model") or {}
         if self.model is None and all(k in m for k in ("num", "den", "delay")):
-            from autotune.lti import DelayedTF
+            from autotune.core.lti import DelayedTF
 
             with contextlib.suppress(Exception):  # any kind that states its transfer function
                 self.model = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m["delay"]))
@@ -432,7 +432,7 @@ class BenchJob:
 
     def redesign(self) -> str:
         """Proposals again for the current Ms target (on the fitted model)."""
-        from autotune.design import propose
+        from autotune.core.design import propose
 
         res = self.result or {}
         if self.model is None:
@@ -536,9 +536,9 @@ class BenchJob:
     # ---------------------------------------------------------------- stage 3: the step
     def candidate(self) -> Any:
         """The chosen proposal, detuned, with its predicted figures (recomputed if detuned)."""
-        from autotune.design import predict
-        from autotune.pid import PidGains
-        from autotune.steptest import StepCandidate
+        from autotune.core.design import predict
+        from autotune.core.pid import PidGains
+        from autotune.core.steptest import StepCandidate
 
         row = self.rows[self.selected]
         gains = PidGains(row.kp, row.ki, row.kd)
@@ -556,8 +556,8 @@ class BenchJob:
         return StepCandidate(name, gains, predicted)
 
     def step_settings(self) -> Any:
-        from autotune.steptest import StepPlan, StepSettings
-        from autotune.verdict import StepSpec
+        from autotune.core.steptest import StepPlan, StepSettings
+        from autotune.core.verdict import StepSpec
 
         cfg = self.cfg
         row = self.rows[self.selected]
@@ -575,8 +575,8 @@ class BenchJob:
                                           0.0))
 
     def run_one_step(self) -> StepAttempt:
-        from autotune.runner_base import PoweredRun, RunEnded
-        from autotune.steptest import StepEnded, run_step
+        from autotune.job.powered import PoweredRun, RunEnded
+        from autotune.job.step import StepEnded, run_step
 
         k = len(self.attempts) + 1
         out_dir = self.settings.out_dir / f"step-{k}"
@@ -644,8 +644,8 @@ class BenchJob:
         """The model's response to the same step, from the step instant (s, PV units)."""
         if self.model is None or t_end <= 0:
             return (), ()
-        from autotune.closedloop import simulate_closed_loop
-        from autotune.lti import DelayedTF
+        from autotune.core.closedloop import simulate_closed_loop
+        from autotune.core.lti import DelayedTF
 
         try:
             plant = self.model
@@ -777,7 +777,7 @@ class _DictProposal:
     """A result.json proposal entry read like a design.Proposal (for ProposalRow.of)."""
 
     def __init__(self, d: dict[str, Any]) -> None:
-        from autotune.pid import PidGains
+        from autotune.core.pid import PidGains
 
         self.name = str(d.get("name", "?"))
         self.gains = PidGains(float(d.get("kp", 0.0)), float(d.get("ki", 0.0)),

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
-from autotune.progress import Phase, RunSnapshot
+from autotune.core.progress import Phase, RunSnapshot
 from autotune.ui.views import FinishView, ProposalsView, StartView, StepView
 from autotune.ui.widgets import LIMIT_LABELS, estimate_changes, fmt, phase_label
 

@@ -16,7 +16,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from autotune.progress import RunSnapshot
+from autotune.core.progress import RunSnapshot
 from autotune.ui import theme
 from autotune.ui.chart import BrailleChart, Series
 from autotune.ui.views import FinishView, ProposalsView, StartView, StepView

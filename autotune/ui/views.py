@@ -1,6 +1,6 @@
 """What each screen other than the live run is drawn from: plain, immutable values.
 
-The live run is drawn from `autotune.progress.RunSnapshot`; the start, proposals, step-result and
+The live run is drawn from `autotune.core.progress.RunSnapshot`; the start, proposals, step-result and
 finish screens from the views here. They hold only what is shown, so a renderer is a pure function
 of one of them. Units: seconds, PV units, output units; gains in parallel form (output units per PV
 unit, ki per second, kd in seconds).
@@ -39,7 +39,7 @@ class GainsLike(Protocol):
 
 
 class ProposalLike(Protocol):
-    """What the proposals screen reads from a design proposal (autotune.design.Proposal)."""
+    """What the proposals screen reads from a design proposal (autotune.core.design.Proposal)."""
 
     name: str
     gains: GainsLike
@@ -97,7 +97,7 @@ class ProposalsView:
 class StepView:
     """The step-result screen: the recorded response, the prediction, figures and verdict.
 
-    `rows` are `autotune.verdict.FigureRow`s and `verdict` an `autotune.verdict.Verdict` (or
+    `rows` are `autotune.core.verdict.FigureRow`s and `verdict` an `autotune.core.verdict.Verdict` (or
     None when the step was stopped before figures could be taken).
     """
 

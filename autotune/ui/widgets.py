@@ -13,7 +13,7 @@ from rich.padding import Padding
 from rich.table import Table
 from rich.text import Text
 
-from autotune.progress import CycleEstimate, LimitGauge, LinkHealth, Phase, RunSnapshot
+from autotune.core.progress import CycleEstimate, LimitGauge, LinkHealth, Phase, RunSnapshot
 from autotune.ui import theme
 from autotune.ui.chart import BrailleChart, Series
 

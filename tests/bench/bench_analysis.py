@@ -19,7 +19,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
 import numpy as np  # noqa: E402
 
-from autotune.analysis import analyse_relay, cycles_to_converge, extract_cycles  # noqa: E402
+from autotune.core.analysis import analyse_relay, cycles_to_converge, extract_cycles  # noqa: E402
 from tests.relaysim import BATCH, batch_run  # noqa: E402
 
 NOISE_LEVELS = (0.0, 0.02, 0.05)

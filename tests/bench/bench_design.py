@@ -7,7 +7,7 @@ paper (from memory): FOPDT e^-s/(1+sT), SOPDT e^-s/(1+sT)^2, 1/(s+1)^n, four-pol
 non-minimum phase (1-as)/(s+1)^3.
 
 For each plant: a simulated relay experiment (tests/relaysim.py, no noise) analysed by
-autotune.analysis.analyse_relay gives Ku, Tu and the fitted model (autotune.model.fit_models);
+autotune.core.analysis.analyse_relay gives Ku, Tu and the fitted model (autotune.core.model.fit_models);
 if that path fails for a plant, the "identified" model is instead the best FOPDT/SOPDT/
 integrator-lag least-squares fit of the true frequency response around and below the ultimate
 frequency plus the static gain (marked "fr-fit" in the table; --fr-fit forces it). All proposals are designed from the identified model
@@ -33,8 +33,8 @@ from scipy import optimize
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from autotune import design, robust  # noqa: E402
-from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt  # noqa: E402
+from autotune.core import design, robust  # noqa: E402
+from autotune.core.lti import DelayedTF, fopdt, integrator_lag, sopdt  # noqa: E402
 
 
 def batch() -> list[tuple[str, DelayedTF]]:
@@ -60,7 +60,7 @@ def batch() -> list[tuple[str, DelayedTF]]:
 
 def identify_relay(plant: DelayedTF) -> tuple[float, float, DelayedTF, str]:
     """Ku, Tu and model from a simulated relay run through the project's analysis."""
-    from autotune.analysis import analyse_relay
+    from autotune.core.analysis import analyse_relay
     from tests.relaysim import run_relay
 
     ku, tu = plant.ultimate_point()

@@ -30,9 +30,9 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from autotune.config import config_from_dict  # noqa: E402
+from autotune.job.powered import PoweredRun, RunOptions  # noqa: E402
+from autotune.job.tune import TuneRun  # noqa: E402
 from autotune.recorder import read_session  # noqa: E402
-from autotune.runner_base import PoweredRun, RunOptions  # noqa: E402
-from autotune.session import TuneRun  # noqa: E402
 
 TICK = 0.01  # s
 

@@ -15,9 +15,9 @@ import numpy as np
 
 from autotune.config import config_from_dict
 from autotune.errors import EXIT_LINK
+from autotune.job.powered import RunOptions
+from autotune.job.tune import TuneOutcome, TuneRun
 from autotune.recorder import Session, read_session
-from autotune.runner_base import RunOptions
-from autotune.session import TuneOutcome, TuneRun
 
 SPEED = 20.0
 TICK = 0.01  # s, the cart-wheel scenario's device tick

@@ -1,5 +1,5 @@
 """The proposal's setpoint weight b on the mock device (real pty): measured overshoot of the
-setpoint step against the design's prediction (autotune.design, on the same plant).
+setpoint step against the design's prediction (autotune.core.design, on the same plant).
 
 Reference: the design's prediction is itself checked against python-control's control.step_info
 on the same sampled loop with b (tests/test_design.py); here the board's PID with b must follow.
@@ -11,11 +11,12 @@ from pathlib import Path
 
 import pytest
 
-from autotune import design
 from autotune.config import load_config, with_overrides
-from autotune.lti import sopdt
-from autotune.runner_base import PoweredRun, RunOptions
-from autotune.steptest import StepCandidate, StepPlan, StepSettings, run_step
+from autotune.core import design
+from autotune.core.lti import sopdt
+from autotune.core.steptest import StepCandidate, StepPlan, StepSettings
+from autotune.job.powered import PoweredRun, RunOptions
+from autotune.job.step import run_step
 
 TICK = 0.01
 PLANT_TOML = f"""
@@ -35,7 +36,7 @@ period = {TICK}
 
 
 # offset: the PV at rest (PV units); with b < 1 the loop must start without a bump
-# (kp (b - 1) sp at rest is cancelled once, see autotune.steptest.run_step)
+# (kp (b - 1) sp at rest is cancelled once, see autotune.job.step.run_step)
 @pytest.mark.parametrize(("loop", "offset"), [("device", 0.0), ("host", 0.0), ("device", 2.0),
                                               ("host", -2.0)])
 def test_measured_overshoot_with_the_proposals_b_matches_the_prediction(

@@ -23,10 +23,10 @@ from typing import Any
 import numpy as np
 
 from autotune.config import config_from_dict
-from autotune.progress import Phase
+from autotune.core.progress import Phase
+from autotune.job.powered import RunOptions
+from autotune.job.tune import TuneRun
 from autotune.recorder import read_session
-from autotune.runner_base import RunOptions
-from autotune.session import TuneRun
 
 SOAK_SECONDS = float(os.environ.get("AUTOTUNE_SOAK_SECONDS", "3600"))
 SPEED = float(os.environ.get("AUTOTUNE_SOAK_SPEED", "100"))

@@ -12,8 +12,8 @@ import numpy as np
 import pexpect
 import pytest
 
+from autotune.core.pid import PidGains
 from autotune.gainsfile import read_gains_file
-from autotune.pid import PidGains
 from autotune.recorder import read_session
 from tests.integration.test_step_loop import PLANT_TOML, TICK
 

@@ -1,4 +1,4 @@
-"""Confirmation step on the mock device process over a real pty (through autotune.runner_base).
+"""Confirmation step on the mock device process over a real pty (through autotune.job.powered).
 
 Reference: python-control's simulation of the same sampled closed loop (plant sampled with a
 zero-order hold by control.sample_system, dead time as whole ticks, the discrete PID as discrete
@@ -13,17 +13,16 @@ import numpy as np
 import pytest
 
 from autotune.config import load_config, with_overrides
-from autotune.pid import PidGains
-from autotune.recorder import read_session
-from autotune.runner_base import PoweredRun, RunOptions
-from autotune.steptest import (
+from autotune.core.pid import PidGains
+from autotune.core.steptest import (
     StepCandidate,
-    StepEnded,
     StepPhase,
     StepPlan,
     StepSettings,
-    run_step,
 )
+from autotune.job.powered import PoweredRun, RunOptions
+from autotune.job.step import StepEnded, run_step
+from autotune.recorder import read_session
 from tests.test_steptest_unit import reference_step
 
 SPEED = 5.0

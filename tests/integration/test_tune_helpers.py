@@ -7,9 +7,9 @@ from dataclasses import dataclass
 
 import pytest
 
+from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
 from autotune.errors import UserError
-from autotune.progress import CycleEstimate, Phase, RunSnapshot
-from autotune.session import LinePrinter, choose_loop, steady_cycles
+from autotune.job.tune import LinePrinter, choose_loop, steady_cycles
 
 
 def test_choose_loop() -> None:

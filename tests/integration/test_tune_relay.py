@@ -13,9 +13,9 @@ import pytest
 
 from autotune.config import config_from_dict
 from autotune.errors import EXIT_FAILED, EXIT_OK
+from autotune.job.powered import RunOptions
+from autotune.job.tune import TuneOutcome, run_tune
 from autotune.recorder import read_result, read_session
-from autotune.runner_base import RunOptions
-from autotune.session import TuneOutcome, run_tune
 
 TICK = 0.01  # s, the mock device's default period
 

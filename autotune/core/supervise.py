@@ -26,7 +26,7 @@ from collections import deque
 from dataclasses import dataclass
 from typing import Any
 
-from autotune.safety import Violation
+from autotune.core.safety import Violation
 
 __all__ = [
     "LinkCounters",

@@ -23,7 +23,7 @@ import math
 from dataclasses import asdict, dataclass
 from typing import Any
 
-from autotune.progress import LimitGauge
+from autotune.core.progress import LimitGauge
 
 __all__ = ["LIMIT_NAMES", "SafetyGuard", "SafetyLimits", "Violation"]
 

@@ -4,7 +4,7 @@ The PID runs every ts seconds: at tick k it reads y(k ts), computes u[k] and hol
 [k ts, (k+1) ts) (zero-order hold). The plant response at the ticks is exact (dead time,
 including a fraction of a tick, included). Two equivalent evaluations: while the output stays
 inside its limits the loop is linear and is solved at once as a difference equation built from
-the plant's exact ZOH form (`autotune.model.discrete_coefficients`) and the PID's transfer
+the plant's exact ZOH form (`autotune.core.model.discrete_coefficients`) and the PID's transfer
 functions; otherwise `DiscretePid` runs tick by tick against the same exact ZOH difference
 equation of the plant.
 Units: seconds, PV units, output units; the loop starts at rest (y = 0, u = bias).
@@ -17,9 +17,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-from autotune.lti import DelayedTF
-from autotune.model import discrete_coefficients
-from autotune.pid import DiscretePid, PidSettings, per_tick
+from autotune.core.lti import DelayedTF
+from autotune.core.model import discrete_coefficients
+from autotune.core.pid import DiscretePid, PidSettings, per_tick
 
 
 @dataclass(frozen=True)

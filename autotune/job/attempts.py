@@ -15,8 +15,8 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from autotune.config import Config
+from autotune.core.pid import PidGains
 from autotune.errors import EXIT_FAILED, EXIT_OK
-from autotune.pid import PidGains
 
 __all__ = ["AttemptsResult", "ask", "pick_interactively", "proposal_choice", "run_attempts",
            "step_namespace"]
@@ -73,7 +73,7 @@ def step_namespace(**overrides: Any) -> argparse.Namespace:
     """The `autotune step` options with their defaults (for running the step from another
     verb); keyword arguments replace values."""
     from autotune.commands.step import DEFAULT_MAX_SATURATION
-    from autotune.verdict import DEFAULT_DETUNE
+    from autotune.core.verdict import DEFAULT_DETUNE
 
     ns = argparse.Namespace(size=None, load_offset=0.0, filter_n=10.0, setpoint_weight=None,
                             tracking_time=None, max_overshoot=None, max_settling_time=None,
@@ -96,7 +96,7 @@ def run_attempts(cfg: Config, args: argparse.Namespace, choice: Any, spec: Any,
     result.json (`autotune.commands.step.write_outputs` or its own).
     """
     from autotune.commands.step import accept, describe, run_batch, store_later
-    from autotune.verdict import detune
+    from autotune.core.verdict import detune
 
     res = AttemptsResult(EXIT_FAILED, "unknown")
     n_batch = 0

@@ -14,7 +14,7 @@ setpoint: peak deviation, recovery time) -> UNLOAD (offset removed) -> RETURN (s
 start value) -> DONE.
 
 The I/O part (`run_step`) lives at the end of this module and drives a protocol Link through the
-session scaffolding in autotune.session; it is the only part that touches a port.
+session scaffolding in autotune.job.tune; it is the only part that touches a port.
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from autotune.metrics import StepMetrics, step_metrics
+from autotune.core.metrics import StepMetrics, step_metrics
 
 DEFAULT_WINDOW_FRACTION = 0.6  # step at most this fraction of the PV window (common practice, no source)
 DEFAULT_SETTLE_BAND = 0.02  # settling band, fraction of the step size (2% band, as step_info)
@@ -347,7 +347,7 @@ def step_figures(
     Time is counted from the first sample with the new setpoint in effect (s); the initial value
     is the setpoint before the step and the target the setpoint after it (PV units); saturation is
     counted against `output_limit` (output units). `band` (PV units, half-width) widens the
-    settling band beyond 2% of the step (None: 2%). See autotune.metrics.step_metrics.
+    settling band beyond 2% of the step (None: 2%). See autotune.core.metrics.step_metrics.
     """
     ta, ya, ua = (np.asarray(a, dtype=float) for a in (t, pv, out))
     sl = _slice(ta, segment.t_start, segment.t_end)
@@ -410,7 +410,7 @@ def model_from_dict(model: dict[str, Any]) -> Any:
     fopdt (gain, time_constant, delay), sopdt (gain, t1, t2, delay), integrator_lag
     (velocity_gain, time_constant, delay).
     """
-    from autotune.lti import DelayedTF, fopdt, integrator_lag, sopdt
+    from autotune.core.lti import DelayedTF, fopdt, integrator_lag, sopdt
 
     try:
         if "num" in model and "den" in model:
@@ -432,10 +432,10 @@ def model_from_dict(model: dict[str, Any]) -> Any:
 def predict_step(plant: Any, settings: Any, size: float, t_end: float,
                  extra_ticks: int = 0) -> dict[str, float]:
     """Predicted step figures of `settings` (PidSettings) on `plant` (DelayedTF) for a setpoint
-    step of `size` PV units, over `t_end` s (autotune.closedloop; `extra_ticks` of loop latency,
+    step of `size` PV units, over `t_end` s (autotune.core.closedloop; `extra_ticks` of loop latency,
     e.g. 1 in host loop, added as dead time)."""
-    from autotune.closedloop import simulate_closed_loop
-    from autotune.lti import DelayedTF
+    from autotune.core.closedloop import simulate_closed_loop
+    from autotune.core.lti import DelayedTF
 
     ts = settings.ts
     if extra_ticks:
@@ -446,13 +446,12 @@ def predict_step(plant: Any, settings: Any, size: float, t_end: float,
     return {k: v for k, v in m.as_dict().items() if math.isfinite(v)}
 
 
-# ---------------------------------------------------------------------- the I/O part
 @dataclass(frozen=True)
 class StepCandidate:
     """Gains to try: a name (proposal name or "manual"), parallel gains, predicted figures."""
 
     name: str
-    gains: Any  # autotune.pid.PidGains
+    gains: Any  # autotune.core.pid.PidGains
     predicted: dict[str, Any] = field(default_factory=dict)
 
 
@@ -460,7 +459,7 @@ class StepCandidate:
 class StepSettings:
     """How to run the step on the device.
 
-    loop: "device" (the board runs the PID: SetPid, SetSetpoint) or "host" (autotune.pid on the
+    loop: "device" (the board runs the PID: SetPid, SetSetpoint) or "host" (autotune.core.pid on the
     host, SetOutput every sample); output_limit: output units (PID limits; saturation counted
     against it); deriv_filter_n, setpoint_weight, tracking_time (s, None = clamping), bias
     (output units): PID settings; spec: the verdict's limits; ts: loop period (s), None = the
@@ -474,11 +473,11 @@ class StepSettings:
     setpoint_weight: float = 1.0
     tracking_time: float | None = None
     bias: float = 0.0
-    spec: Any = None  # autotune.verdict.StepSpec; None = no limits
+    spec: Any = None  # autotune.core.verdict.StepSpec; None = no limits
     ts: float | None = None
 
     def pid_settings(self, gains: Any, ts: float) -> Any:
-        from autotune.pid import PidSettings
+        from autotune.core.pid import PidSettings
 
         return PidSettings(gains, ts, self.deriv_filter_n, self.setpoint_weight,
                            self.tracking_time, -self.output_limit, self.output_limit, self.bias)
@@ -593,44 +592,10 @@ class StepOutcome:
         return out
 
 
-    def gains_record(self, session: str | None = None, device: dict[str, Any] | None = None,
-                     tool_version: str | None = None) -> Any:
-        """autotune.gainsfile.GainsRecord of these gains as run, with the measured figures."""
-        from autotune.gainsfile import GainsRecord
-
-        dev = device or {}
-        sf = self.step_field()
-        measured: dict[str, Any] = {k: sf.get(k) for k in (
-            "overshoot", "rise_time", "settling_time", "steady_state_error", "iae",
-            "peak_output", "time_saturated", "settle_band")}
-        if self.load is not None:
-            measured["load"] = self.load.to_dict()
-        lim = self.pid.out_max
-        return GainsRecord.from_settings(
-            self.pid, loop_mode=self.loop, axis=int(dev.get("axis", 0)),
-            output_limit=lim if math.isfinite(lim) else None,
-            origin={"session": session, "proposal": self.candidate.name,
-                    "device": dev.get("name"), "firmware": dev.get("firmware"),
-                    "tool_version": tool_version},
-            measured=measured,
-            predicted={k: v for k, v in self.candidate.predicted.items()
-                       if isinstance(v, int | float) and not isinstance(v, bool)},
-        )
-
-
-class StepEnded(Exception):  # noqa: N818 (wraps the runner's RunEnded with the partial outcome)
-    """Raised by `run_step` when the run stopped during the step: `.ended` is the runner's
-    RunEnded (re-raise it so the stop path records it), `.outcome` the figures so far."""
-
-    def __init__(self, ended: BaseException, outcome: StepOutcome) -> None:
-        super().__init__(str(ended))
-        self.ended = ended
-        self.outcome = outcome
-
 
 def finish_outcome(o: StepOutcome, exp: StepExperiment) -> StepOutcome:
     """Fill metrics, load figures, comparison and verdict from the recorded arrays (pure)."""
-    from autotune.verdict import compare
+    from autotune.core.verdict import compare
 
     o.segments = list(exp.segments)
     seg = exp.segment(StepPhase.STEP)
@@ -654,140 +619,9 @@ def finish_outcome(o: StepOutcome, exp: StepExperiment) -> StepOutcome:
     return o
 
 
-def _judge(o: StepOutcome, spec: Any) -> None:
-    from autotune.verdict import StepSpec, judge
+def judge_outcome(o: StepOutcome, spec: Any) -> None:
+    from autotune.core.verdict import StepSpec, judge
 
     if o.metrics is None:
         return
     o.verdict = judge(o.metrics, spec if spec is not None else StepSpec(), settled=o.settled)
-
-
-def _clamp(u: float, limit: float) -> float:
-    return min(max(u, -limit), limit)
-
-
-def run_step(
-    run: Any,
-    candidate: Any,
-    settings: StepSettings,
-    on_update: Any = None,
-) -> StepOutcome:
-    """Run one confirmation step on an armed autotune.runner_base.PoweredRun.
-
-    `candidate`: a StepCandidate or anything with `.name`, `.gains` (PidGains) and `.predicted`
-    (e.g. autotune.design.Proposal). The loop is closed at the PV start value (`run.pv_start`),
-    held, stepped by `settings.plan.size`, optionally disturbed by an output offset, and brought
-    back. When this returns, a device-loop PID keeps holding the start value; a host loop leaves
-    the output at `settings.bias` (nobody closes the loop any more). Call again with other gains
-    or leave the `with` block promptly: the stop path zeroes the output.
-
-    Device loop: SetPid (starts the device PID at the start value), SetSetpoint at each change.
-    Host loop: autotune.pid.DiscretePid computes the output for every sample, sent with
-    SetOutput (the device applies it at its next tick). SetOffset drives the load test in both.
-    With a setpoint weight b < 1 and a start value r0 != 0 the proportional term at rest would
-    be kp (b - 1) r0: the loop starts bumplessly with kp (1 - b) r0 added once (device loop: to
-    the SetPid bias; host loop: to the integral's initial state), so the step acts in deviation
-    from the start value, as predicted.
-
-    `on_update(StepProgress)` is called at every event and about ten times a second (device
-    time). Returns the StepOutcome; raises StepEnded (carrying the runner's RunEnded and the
-    partial outcome) when the run stops during the step: limit, fault, abort key, lost link.
-    """
-    from autotune.pid import DiscretePid
-    from autotune.progress import Phase
-    from autotune.runner_base import RunEnded
-    from protocol.messages import SetOffset, SetPid, SetSetpoint
-
-    if not isinstance(candidate, StepCandidate):
-        candidate = StepCandidate(str(candidate.name), candidate.gains,
-                                  dict(getattr(candidate, "predicted", {}) or {}))
-    loop = settings.loop
-    if loop not in ("device", "host"):
-        raise ValueError(f"loop must be 'device' or 'host', got {loop!r}")
-    ts = settings.ts if settings.ts is not None else float(run.info.tick)
-    pid_settings = settings.pid_settings(candidate.gains, ts)
-    start = float(run.pv_start if run.pv_start is not None else run.last_sample.pv)
-    # output units: cancels kp (b - 1) start, the setpoint weight's term at rest
-    bumpless = candidate.gains.kp * (1.0 - settings.setpoint_weight) * start
-    exp = StepExperiment(settings.plan, start)
-    outcome = StepOutcome(candidate, pid_settings, loop, settings.plan, start)
-    g = candidate.gains
-    axis = run.axis
-    run.loop_mode = loop
-    run.set_phase(Phase.STEP, f"step {settings.plan.size:+g} with {candidate.name} "
-                  f"(kp {g.kp:.4g}, ki {g.ki:.4g}, kd {g.kd:.4g}), {loop} loop")
-    run.event("step_start", {"proposal": candidate.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
-                             "setpoint_weight": settings.setpoint_weight, "loop": loop, "size": settings.plan.size, "start_value": start,
-                             "ts": ts, "load_offset": settings.plan.load_offset})
-    sp_cmd, off_cmd = start, 0.0
-    off_applied = 0.0
-    host_pid: DiscretePid | None = None
-    sent: float | None = None  # host loop: output + offset expected at the next sample
-    run.sample_extra(step=StepPhase.HOLD.value, offset=0.0)
-    run.sp_value = start
-    last_report = -math.inf
-    try:
-        if loop == "device":
-            run.request(SetPid(axis, g.kp, g.ki, g.kd, settings.setpoint_weight,
-                               settings.deriv_filter_n, settings.tracking_time or 0.0,
-                               start, settings.bias + bumpless))
-            run.powered = True
-        else:
-            host_pid = DiscretePid(pid_settings)
-            host_pid.reset(integral=bumpless)
-        while True:
-            rec = run.next_sample()
-            if loop == "device":
-                sp_applied = float(rec.setpoint) if rec.mode == 3 else sp_cmd
-            else:
-                sp_applied = sp_cmd
-            outcome.t.append(rec.t)
-            outcome.pv.append(rec.pv)
-            outcome.out.append(rec.output)
-            outcome.sp.append(sp_applied)
-            u = None
-            if host_pid is not None:
-                if sent is not None and abs(rec.output - sent) > 1e-5 * max(1.0, abs(sent)):
-                    outcome.late_outputs += 1  # the device applied an older output this tick
-                u = host_pid.update(sp_cmd, rec.pv)
-            cmd = exp.update(rec.t, rec.pv, sp_applied, off_applied)
-            for ev in cmd.events:
-                run.event(f"step:{ev.kind}", ev.detail, step_phase=cmd.phase.value)
-            if host_pid is not None and u is not None:
-                run.set_output(u)
-                sent = _clamp(u + off_applied, settings.output_limit)
-            if cmd.setpoint != sp_cmd:
-                sp_cmd = cmd.setpoint
-                if loop == "device":
-                    run.request(SetSetpoint(axis, sp_cmd))
-                run.sp_value = sp_cmd
-            if cmd.offset != off_cmd:
-                off_cmd = cmd.offset
-                run.request(SetOffset(axis, off_cmd))
-                off_applied = off_cmd
-                if u is not None:
-                    sent = _clamp(u + off_applied, settings.output_limit)
-            run.sample_extra(step=cmd.phase.value, offset=off_cmd)
-            if on_update is not None and (cmd.events or rec.t - last_report >= 0.1):
-                last_report = rec.t
-                on_update(StepProgress(cmd.phase, rec.t, rec.pv, sp_applied, rec.output,
-                                       exp.elapsed(rec.t), cmd.events))
-            if cmd.done:
-                break
-        if host_pid is not None:
-            # Nobody computes the loop once this returns: hold the operating-point output.
-            run.set_output(settings.bias)
-    except RunEnded as exc:
-        outcome.end_reason = exc.reason
-        outcome.message = exc.message
-        finish_outcome(outcome, exp)
-        _judge(outcome, settings.spec)
-        raise StepEnded(exc, outcome) from None
-    if exp.failure is not None:
-        outcome.end_reason, outcome.message = "not_applied", exp.failure
-    finish_outcome(outcome, exp)
-    _judge(outcome, settings.spec)
-    run.event("step_done", {"settled": outcome.settled,
-                            "figures": None if outcome.metrics is None else
-                            outcome.metrics.as_dict()})
-    return outcome

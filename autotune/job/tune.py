@@ -1,7 +1,7 @@
 """The `tune` runner: prechecks, then a bounded relay experiment, then analysis and proposals.
 
 Wires the pure core (prechecks, relay, safety, analysis, design) to a `protocol.Link` through
-`autotune.runner_base.PoweredRun` (connection, cautions, limits, recording, the stop path).
+`autotune.job.powered.PoweredRun` (connection, cautions, limits, recording, the stop path).
 
 Phases (all durations in device time, seconds):
   rest       output held at the bias for `prechecks.rest_time`: noise, drift, resolution;
@@ -12,7 +12,7 @@ Phases (all durations in device time, seconds):
   relay      host loop (the relay runs here, one SetOutput per sample) or device loop
              (StartRelay on the board; the host follows, supervises and sends new settings)
 Then the device is stopped (always, through the single stop path) and the recorded relay
-samples go to `autotune.analysis.analyse_relay` and `autotune.design.propose`.
+samples go to `autotune.core.analysis.analyse_relay` and `autotune.core.design.propose`.
 
 Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
 -centre, so it works with a loop whose positive output raises its PV. The device-side relay
@@ -29,14 +29,14 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from autotune import analysis
-from autotune import prechecks as pre
 from autotune.config import Config, check_against_noise
+from autotune.core import analysis
+from autotune.core import prechecks as pre
+from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
+from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
-from autotune.progress import CycleEstimate, Phase, RunSnapshot
+from autotune.job.powered import PoweredRun, RunEnded, RunOptions
 from autotune.recorder import export_csv, read_session, write_result
-from autotune.relay import RelayExperiment, RelayPlan, RelaySettings
-from autotune.runner_base import PoweredRun, RunEnded, RunOptions
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
 """End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
@@ -102,10 +102,10 @@ def choose_loop(requested: str, has_device_relay: bool, has_host_loop: bool,
 def steady_cycles(cycles: list[Any], tol: float, *, min_cycles: int = 4, tick: float = 0.0,
                   noise_std: float = 0.0, resolution: float = 0.0,
                   hysteresis: float = 0.0) -> bool:
-    """Has the relay oscillation settled? See autotune.relay.steady_converged (tick s, noise and
+    """Has the relay oscillation settled? See autotune.core.relay.steady_converged (tick s, noise and
     resolution PV units: the tolerance widens to the switching jitter and peak-reading error
     they cause)."""
-    from autotune.relay import steady_converged
+    from autotune.core.relay import steady_converged
 
     return steady_converged(cycles, tol, min_cycles=min_cycles, hysteresis=hysteresis,
                             tick=tick, noise_std=noise_std, resolution=resolution)
@@ -227,7 +227,7 @@ class TuneRun:
         """
         import time as _time
 
-        from autotune.runner_base import float32
+        from autotune.job.powered import float32
 
         sent_at = _time.monotonic()
         give_up = sent_at + max(1.0, run.wall(duration))
@@ -325,7 +325,7 @@ class TuneRun:
             # from now on an output step of `size` or more must move the PV out of its noise
             # band within twice the time the pulse needed (at least pulse_timeout), else
             # fault:no_response (issue 8: stuck sensor)
-            from autotune.supervise import noise_band
+            from autotune.core.supervise import noise_band
 
             took = recs[-1].t - t_pulse if recs else cfg.prechecks.pulse_timeout
             run.supervisor.expect_response(
@@ -653,7 +653,7 @@ def propose_gains(an: analysis.RelayAnalysis, design_cfg: Mapping[str, Any],
     units; ts the loop period (s). A design failure is reported in `notes`, not raised: the
     analysis itself stands.
     """
-    from autotune import design
+    from autotune.core import design
 
     kw: dict[str, Any] = {
         "ms_target": design_cfg.get("ms_target"),

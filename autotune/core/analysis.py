@@ -8,8 +8,8 @@ What is computed (see `analyse_relay`):
 - cycles from the relay's own switch instants (output changes), transient cycles dropped;
 - the classic describing-function figures (Åström and Hägglund 1984): identified point
   G(j w) = (pi a / 4 d) exp(j(-pi + arcsin(eps / a))), Ku = 4 d / (pi a), Tu = the period;
-- Fourier points G(j k w), k = 1, 3, 5 (autotune.harmonics), the plant's exact response;
-- a low-order model fitted to the sampled record (autotune.model); Ku, Tu at phase -180 deg
+- Fourier points G(j k w), k = 1, 3, 5 (autotune.core.harmonics), the plant's exact response;
+- a low-order model fitted to the sampled record (autotune.core.model); Ku, Tu at phase -180 deg
   of the fitted model, cross-checked against the Fourier points.
 
 Delays in the figures (`delays_included`): the refined `ku`, `tu` and the model are those of the
@@ -28,11 +28,11 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from autotune.harmonics import FourierPoint, fourier_coefficients, fourier_points
-from autotune.lti import DelayedTF
-from autotune.model import CANDIDATES, FittedModel, fit_models
-from autotune.prechecks import smallest_step
-from autotune.relay import measurement_tolerances, steady_converged
+from autotune.core.harmonics import FourierPoint, fourier_coefficients, fourier_points
+from autotune.core.lti import DelayedTF
+from autotune.core.model import CANDIDATES, FittedModel, fit_models
+from autotune.core.prechecks import smallest_step
+from autotune.core.relay import measurement_tolerances, steady_converged
 
 DELAYS_INCLUDED = "plant"
 FIT_SAMPLES = 3000  # records longer than this ...
@@ -48,7 +48,7 @@ class AnalysisError(ValueError):
 
 
 class RelaySettingsLike(Protocol):
-    """What the analysis reads from autotune.relay.RelaySettings (duck-typed)."""
+    """What the analysis reads from autotune.core.relay.RelaySettings (duck-typed)."""
 
     centre: float
     bias: float
@@ -151,7 +151,7 @@ def _raw_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, ups: np.ndarray,
     pp = _segment_reduce(np.maximum, y, i0, i1) - _segment_reduce(np.minimum, y, i0, i1)
     hi = _levels(u, i0, i_d)
     lo = _levels(u, i_d, i1)
-    # first harmonic of each cycle's PV at its own frequency (autotune.harmonics'
+    # first harmonic of each cycle's PV at its own frequency (autotune.core.harmonics'
     # coefficient, vectorised over the cycles)
     cid = np.repeat(np.arange(js.size), (i1 - i0))
     samp = np.concatenate([np.arange(a, b) for a, b in zip(i0, i1, strict=True)]) \
@@ -241,7 +241,7 @@ def steady_tolerances(period: float, amplitude_pp: float, *, tick: float = 0.0,
     """Relative (period, amplitude) differences steady cycles can show from measurement alone.
 
     period (s), amplitude_pp (PV units, peak to peak), tick (s), noise_std, resolution,
-    hysteresis (PV units). autotune.relay.measurement_tolerances (switching jitter of the
+    hysteresis (PV units). autotune.core.relay.measurement_tolerances (switching jitter of the
     period; peak-reading error of the amplitude); the amplitude tolerance is at least the
     period's, since the jitter that moves a switch moves the swing with it (for an integrating
     plant the swing grows in proportion to the half-period; common practice, no source).
@@ -257,7 +257,7 @@ def steady_tolerances(period: float, amplitude_pp: float, *, tick: float = 0.0,
 def converged_cycles(cycles: Sequence[Any], tol: float = 0.02) -> bool:
     """True when the last two cycles agree within `tol` (relative) in period and amplitude.
 
-    Takes this module's Cycle or autotune.relay's CycleFigures (anything with `period` and
+    Takes this module's Cycle or autotune.core.relay's CycleFigures (anything with `period` and
     `amplitude_h1` or `amplitude_pp`); the first-harmonic amplitude is used when present
     (robust to noise).
     """

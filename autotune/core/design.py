@@ -2,8 +2,8 @@
 
 Pure functions. Gains are output units per PV unit, `ki` per second, `kd` in seconds (parallel
 form); the model is a `DelayedTF` with positive gain (the runner applies the loop sign).
-Tuning tables live in `autotune.rules`, the robust optimum and the loop analysis in
-`autotune.robust`, the sampled closed-loop simulation in `autotune.closedloop`.
+Tuning tables live in `autotune.core.rules`, the robust optimum and the loop analysis in
+`autotune.core.robust`, the sampled closed-loop simulation in `autotune.core.closedloop`.
 
 Default proposal (documented choice): "robust-pid", unless the derivative buys less than 10 %
 more integral gain than "robust-pi" (derivative does not help), or the PID's high-frequency
@@ -29,11 +29,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from autotune import robust, rules
-from autotune.closedloop import simulate_closed_loop
-from autotune.lti import DelayedTF
-from autotune.metrics import step_metrics
-from autotune.pid import PidGains, PidSettings, per_tick, to_standard
+from autotune.core import robust, rules
+from autotune.core.closedloop import simulate_closed_loop
+from autotune.core.lti import DelayedTF
+from autotune.core.metrics import step_metrics
+from autotune.core.pid import PidGains, PidSettings, per_tick, to_standard
 
 
 @dataclass(frozen=True)
@@ -189,7 +189,7 @@ def choose_setpoint_weight(model: DelayedTF, gains: PidGains, spec: DesignSpec,
 def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec,
             setpoint_weight: float | None = None) -> dict[str, float | bool]:
     """Predicted figures of `gains` on `model` with the discrete PID at the loop period and its
-    ZOH (see `autotune.robust` for the loop, `autotune.closedloop` for the simulation).
+    ZOH (see `autotune.core.robust` for the loop, `autotune.core.closedloop` for the simulation).
     setpoint_weight: b of the setpoint step (None: spec.setpoint_weight, else 1); only the
     setpoint-step figures depend on it."""
     ts = loop_period(model, spec)

@@ -1,4 +1,4 @@
-"""Published PID tuning rules (pure). Gains in the parallel form of `autotune.pid.PidGains`.
+"""Published PID tuning rules (pure). Gains in the parallel form of `autotune.core.pid.PidGains`.
 
 Ku in output units per PV unit, Tu in seconds; model gains K in PV units per output unit,
 velocity gains Kv in PV units per (output unit s), times in seconds. Table values are quoted
@@ -13,8 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from autotune.lti import DelayedTF
-from autotune.pid import PidGains, from_series, from_standard
+from autotune.core.lti import DelayedTF
+from autotune.core.pid import PidGains, from_series, from_standard
 
 # ---------------------------------------------------------------- from Ku, Tu
 

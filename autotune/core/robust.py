@@ -22,8 +22,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
-from autotune.lti import DelayedTF
-from autotune.pid import PidGains, filter_time
+from autotune.core.lti import DelayedTF
+from autotune.core.pid import PidGains, filter_time
 
 # ---------------------------------------------------------------- frequency responses
 

@@ -40,6 +40,9 @@ from typing import Any, TextIO
 from autotune import __version__
 from autotune.cautions import CAUTION_ITEMS, CAUTION_TITLE
 from autotune.config import Config, check_against_device
+from autotune.core.progress import LimitGauge, LinkHealth, Phase, RunSnapshot
+from autotune.core.safety import SafetyGuard, SafetyLimits
+from autotune.core.supervise import LinkCounters, LinkQualityMonitor, ResetMonitor, Supervisor
 from autotune.errors import (
     EXIT_ABORTED,
     EXIT_FAILED,
@@ -49,11 +52,8 @@ from autotune.errors import (
     EXIT_USAGE,
     UserError,
 )
-from autotune.progress import LimitGauge, LinkHealth, Phase, RunSnapshot
 from autotune.recorder import SessionWriter
-from autotune.safety import SafetyGuard, SafetyLimits
 from autotune.simdevice import SIM, SimDevice, start_sim_device
-from autotune.supervise import LinkCounters, LinkQualityMonitor, ResetMonitor, Supervisor
 
 CAUTIONS = (CAUTION_TITLE, *(f"  - {item}" for item in CAUTION_ITEMS))
 
@@ -564,7 +564,7 @@ class PoweredRun:
         return rec
 
     def _supervise(self, rec: Any) -> None:
-        """Feed the supervisor (autotune.supervise); a fault it finds ends the run."""
+        """Feed the supervisor (autotune.core.supervise); a fault it finds ends the run."""
         sup = self.supervisor
         assert sup is not None
         pong = self.link.last_pong

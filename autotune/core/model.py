@@ -4,9 +4,9 @@ The fit models the *sampled* experiment exactly: the recorded output `u[k]` (out
 held over [t_k, t_k + ts) (zero-order hold, as the device applies it) and the recorded PV
 `y[k]` (PV units) is the plant output sampled at t_k. The fitted transfer function is therefore
 the continuous plant itself; the hold's delay (about ts/2) is *not* part of it (see
-`autotune.analysis`, `delays_included`).
+`autotune.core.analysis`, `delays_included`).
 
-Candidates (tried in this order; DelayedTF constructors in autotune.lti where they exist):
+Candidates (tried in this order; DelayedTF constructors in autotune.core.lti where they exist):
   "fopdt"          K exp(-L s) / (T s + 1)
   "integrator_lag" Kv exp(-L s) / (s (T s + 1))
   "sopdt"          K exp(-L s) / ((T1 s + 1)(T2 s + 1))
@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import linalg, optimize, signal, special
 
-from autotune.lti import DelayedTF, _zoh, fopdt, integrator_lag, sopdt
+from autotune.core.lti import DelayedTF, _zoh, fopdt, integrator_lag, sopdt
 
 CANDIDATES = ("fopdt", "integrator_lag", "sopdt", "lag_n")
 _N_NONLINEAR = {"fopdt": 2, "sopdt": 3, "integrator_lag": 2, "sopdt_zero": 3, "lag_n": 2}

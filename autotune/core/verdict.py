@@ -1,6 +1,6 @@
 """Verdict on a confirmation step: measured figures beside the predicted ones, judged on a spec.
 
-Pure module (no I/O, no clock). Figures use the units of autotune.metrics.StepMetrics:
+Pure module (no I/O, no clock). Figures use the units of autotune.core.metrics.StepMetrics:
 overshoot in percent of the step size, rise/settling/saturated times in seconds, IAE in
 PV units x seconds, peak output in output units. Gains are parallel form (output units per PV
 unit, ki per second, kd in seconds).
@@ -194,7 +194,7 @@ def detune_factor_ok(factor: float) -> bool:
 
 
 def detune(gains: Any, factor: float = DEFAULT_DETUNE) -> Any:
-    """The same gains (a dataclass with kp, ki, kd, e.g. autotune.pid.PidGains) times `factor`."""
+    """The same gains (a dataclass with kp, ki, kd, e.g. autotune.core.pid.PidGains) times `factor`."""
     if not detune_factor_ok(factor):
         raise ValueError(f"detune factor must lie between 0 and 1, got {factor!r}")
     return dataclasses.replace(

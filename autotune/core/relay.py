@@ -31,7 +31,7 @@ from dataclasses import asdict, dataclass, field, replace
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from autotune.safety import SafetyGuard, Violation
+    from autotune.core.safety import SafetyGuard, Violation
 
 __all__ = [
     "CycleFigures",
@@ -309,7 +309,7 @@ def steady_converged(cycles: Sequence[CycleFigures], tol: float = 0.02, *, min_c
     the last two cycles agree with those of the two before within `tol` (relative), widened to
     what the tick, PV noise and PV resolution can resolve (`measurement_tolerances`; common
     practice, no source). The means of pairs are compared through
-    autotune.analysis.converged_cycles when it is available, with the wider of the two
+    autotune.core.analysis.converged_cycles when it is available, with the wider of the two
     tolerances applied to each quantity in turn.
     """
     if len(cycles) < max(min_cycles, 4):
