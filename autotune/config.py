@@ -171,11 +171,22 @@ class StepConfig:
     size: setpoint step (PV units); None = the design step size.
     duration: how long the response is recorded after the step (s).
     settle_time: how long to hold the setpoint before the step (s).
+    deriv_filter_n: derivative filter of hand-given gains, Tf = Td / N (a proposal brings its
+        own).
+    max_saturation: longest time the output may sit at its limit during the step (s).
+    load_offset: load-disturbance test: output offset added once the step has settled
+        (output units); 0 = no load test.
+    retries: unattended (--yes): after a step that misses the spec, this many gentler
+        designs are tried in turn before the job gives up.
     """
 
     size: float | None = None
     duration: float = 5.0
     settle_time: float = 1.0
+    deriv_filter_n: float = 10.0
+    max_saturation: float = 0.25
+    load_offset: float = 0.0
+    retries: int = 2
 
 
 @dataclass(frozen=True)
@@ -417,6 +428,10 @@ def validate(cfg: Config, source: str | None = None) -> None:
     _positive(src, "step.size", st.size, optional=True)
     _positive(src, "step.duration", st.duration)
     _positive(src, "step.settle_time", st.settle_time, allow_zero=True)
+    _positive(src, "step.deriv_filter_n", st.deriv_filter_n)
+    _positive(src, "step.max_saturation", st.max_saturation, allow_zero=True)
+    if st.retries < 0:
+        raise ConfigError(src, "step.retries", f"must be >= 0, got {st.retries}")
 
     # Combinations that cannot work.
     if abs(r.bias) >= s.output_limit:

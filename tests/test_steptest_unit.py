@@ -275,34 +275,3 @@ def test_inside_the_band_at_the_timeout_counts_as_settled() -> None:
     # The automatic hold (as long as the transient, 0.3 s) does not fit before the timeout,
     # but the PV has been in the band for 0.2 s >= min_hold when it comes.
     assert seg.settled and seg.t_end - seg.t_start == pytest.approx(0.5, abs=1.5 * TS)
-
-
-def test_gains_from_a_tune_result(tmp_path) -> None:  # type: ignore[no-untyped-def]
-    import argparse
-    import json
-
-    from autotune.commands.step import add_arguments, choose_gains
-    from autotune.errors import UserError
-
-    res = {"proposals": [{"name": "a", "kp": 1.0, "ki": 2.0, "kd": 0.0, "predicted": {"overshoot": 3.0}},
-                         {"name": "b", "kp": 4.0, "ki": 5.0, "kd": 0.5, "default": True}]}
-    path = tmp_path / "result.json"
-    path.write_text(json.dumps(res))
-    parser = argparse.ArgumentParser()
-    add_arguments(parser)
-
-    def choose(*argv: str):  # type: ignore[no-untyped-def]
-        return choose_gains(parser.parse_args(list(argv)))
-
-    c = choose("--from-result", str(path))
-    assert c.name == "b" and c.gains == PidGains(4.0, 5.0, 0.5)  # the default proposal
-    c = choose("--from-result", str(path), "--proposal", "a")
-    assert c.name == "a" and c.predicted == {"overshoot": 3.0} and len(c.pool) == 2
-    c = choose("--from-result", str(path), "--proposal", "a", "--kd", "0.1")
-    assert c.gains == PidGains(1.0, 2.0, 0.1) and c.name == "a (edited)" and c.predicted == {}
-    c = choose("--kp", "3")
-    assert c.gains == PidGains(3.0, 0.0, 0.0) and c.name == "manual"
-    with pytest.raises(UserError, match="no proposal named 'zz'"):
-        choose("--from-result", str(path), "--proposal", "zz")
-    with pytest.raises(UserError, match="no gains given"):
-        choose()

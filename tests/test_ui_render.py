@@ -16,7 +16,15 @@ from autotune.core.progress import CycleEstimate, LimitGauge, LinkHealth, Phase,
 from autotune.core.verdict import StepSpec, compare, judge
 from autotune.ui import plain, screens
 from autotune.ui.chart import BRAILLE_BASE, BrailleChart, Series, nice_range, rasterise
-from autotune.ui.views import CAUTIONS, FinishView, ProposalRow, ProposalsView, StartView, StepView
+from autotune.ui.views import (
+    CAUTIONS,
+    ConfirmView,
+    FinishView,
+    ProposalRow,
+    ProposalsView,
+    StartView,
+    StepView,
+)
 from autotune.ui.widgets import estimate_changes, limit_bar
 
 SIZES = [(80, 24), (100, 30), (140, 45)]
@@ -79,7 +87,7 @@ def proposals_view(selected: int = 10) -> ProposalsView:
         viol = ("overshoot 22% > 20%",) if name.startswith("zn") else ()
         rows.append(ProposalRow(name, 10.0 + i, 20.0 + i, 0.1 * (i % 3), pred, viol,
                                 name == "robust-pi"))
-    return ProposalsView(tuple(rows), selected=selected, ms_target=1.4, detune=1.0, ku=127.4,
+    return ProposalsView(tuple(rows), selected=selected, ms_target=1.4, ku=127.4,
                          tu=0.9, model="fopdt K 2 T 0.5 s L 0.05 s", spec="overshoot <= 20 %")
 
 
@@ -255,22 +263,28 @@ def test_proposals_screen_lists_every_design(width: int, height: int) -> None:
     assert "◆" in default_line
     zn_line = next(ln for ln in lines if " zn-pi " in ln)
     assert "✗" in zn_line
-    assert "Ms target 1.40" in text and "×1.00" in text
+    assert "Ms target 1.40" in text
     assert "chosen robust-pi" in text
     assert "Ku 127.4" in text and "Tu 0.9 s" in text
     if width >= 120:
         assert "GM" in text and "PM" in text and "IAE" in text
 
 
-def test_proposals_screen_applies_the_detune_factor_to_the_chosen_gains() -> None:
+def test_proposals_screen_shows_the_chosen_gains_and_its_violations() -> None:
     view = proposals_view(selected=0)
-    from dataclasses import replace
-
-    view = replace(view, detune=0.5)
     text = render(screens.proposals_screen(view), 80)
-    # zn-p: kp 10, ki 20, kd 0 -> x0.5
-    assert "chosen zn-p  kp 5  ki 10 /s  kd 0 s" in text
+    # zn-p: kp 10, ki 20, kd 0, as designed (a detune is a new design, not a factor)
+    assert "chosen zn-p  kp 10  ki 20 /s  kd 0 s" in text
     assert "overshoot 22% > 20%" in text  # the chosen one's violations in full
+    assert "Enter" not in lines_of(text)[1]  # Enter never starts a step
+
+
+def test_confirm_screen_names_the_action_and_the_one_key() -> None:
+    text = render(screens.confirm_screen(ConfirmView("run the confirmation step with zn-p: kp "
+                                                     "10 (powers the motor)")), 80)
+    assert "run the confirmation step with zn-p" in text
+    assert " Y " in text and "powers the motor" in text
+    assert "The robot is on blocks" in text
 
 
 @pytest.mark.parametrize("width,height", SIZES)

@@ -11,7 +11,12 @@ import argparse
 import sys
 from pathlib import Path
 
+from autotune.commands.options import default_out_dir
+from autotune.config import Config, config_from_dict, load_config, with_overrides
 from autotune.errors import UserError
+from autotune.job.requests import BoardRequest, JobRequest
+from autotune.simdevice import SIM
+from autotune.ui.app import Terminal, run_job
 
 HELP = "run the whole tuning job against the built-in simulated board (no hardware needed)"
 
@@ -42,19 +47,15 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
     },
 }
 
-# The pan axis's 3 % dead zone makes any loop with integral action hunt slowly by about 2.5 % of
-# a 12 degree step (stick-slip), so the demo counts it settled in a 5 % band (common practice
-# for geared axes with friction, no source); the figures still use the 2 % band.
-SETTLE_BAND: dict[str, float] = {"mast-pan": 0.05}
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.formatter_class = argparse.RawDescriptionHelpFormatter
     p.epilog = (
         "Keys: Space, Esc, q or Ctrl-C stop the motor on every screen; the start screen waits\n"
-        "for Y. On the gain choices: 1-9 or Tab choose, m/M lower/raise the Ms target, d/D\n"
-        "lower/raise the detune factor, Enter runs the step. On the step result: a accept,\n"
-        "d detune, o other proposal, r repeat. Exit codes as for `tune`; 0 once gains are\n"
+        "for Y. On the gain choices: 1-9 or Tab choose, m/M lower/raise the Ms target, s asks\n"
+        "to run the step with the chosen gains, Y then powers the motor (Enter never does).\n"
+        "On the step result: a accept, d detune (a gentler design), o other proposal,\n"
+        "r repeat (each asks for Y again). Exit codes as for `tune`; 0 once gains are\n"
         "accepted and written."
     )
     p.add_argument("--plant", choices=PLANTS, default="cart-wheel",
@@ -74,10 +75,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, metavar="N", help="noise seed of the simulated board")
 
 
-def build_config(args: argparse.Namespace) -> object:
+def build_config(args: argparse.Namespace) -> Config:
     """The demo's config: the scenario's settings, then the config file, then the options."""
-    from autotune.config import config_from_dict, load_config, with_overrides
-
     overrides: dict[str, object] = dict(DEMO_CONFIG[args.plant])
     cfg = load_config(args.config) if args.config else config_from_dict({}, "<demo>")
     if args.config:
@@ -90,23 +89,15 @@ def build_config(args: argparse.Namespace) -> object:
 
 
 def run(args: argparse.Namespace) -> int:
-    from autotune.commands.tune import default_out_dir
-    from autotune.simdevice import SIM
-    from autotune.ui.app import JobSettings, run_job
-
     if not args.speed > 0:
         raise UserError("--speed must be a positive number")
     cfg = build_config(args)
-    out_dir = Path(args.out) if args.out else default_out_dir("demo")
-    out_dir.mkdir(parents=True, exist_ok=True)
-    # port "sim": each powered stage starts the simulated board (autotune.simdevice, a
-    # `python -m mock_device` process on a pty) in the background and ends it with the stage.
-    settings = JobSettings(port=SIM, out_dir=out_dir, yes=args.yes,
-                           label="a pty (started after Y)", simulated=True,
-                           device=f"simulated {args.plant} board",
-                           settle_band=SETTLE_BAND.get(args.plant),
-                           speed=args.speed, plant=args.plant, seed=args.seed)
-    result = run_job(cfg, settings)
-    if result.exit_code != 0:
-        print(f"autotune demo: {result.message}", file=sys.stderr)
-    return result.exit_code
+    out = Path(args.out) if args.out else default_out_dir("demo")
+    # port "sim": the job starts the simulated board (autotune.simdevice, a `python -m
+    # mock_device` process on a pty) in the background and ends it with the job
+    req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None, args.seed),
+                     out_dir=out, verb="demo", yes=args.yes)
+    outcome = run_job(req, term=Terminal(stdin=sys.stdin))
+    if outcome.exit_code != 0:
+        print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
+    return outcome.exit_code

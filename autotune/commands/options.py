@@ -1,10 +1,15 @@
-"""Options shared by the verbs that power a motor (`tune`, `step`): one definition each."""
+"""Options shared by the verbs that power a motor (`tune`, `step`, `demo`): one definition
+each, and the terminal they choose."""
 
 from __future__ import annotations
 
 import argparse
+import sys
+import time
+from pathlib import Path
 
 from autotune.config import ConnectionConfig, SafetyConfig
+from autotune.ui.app import Terminal
 
 PORT_HELP = ("serial port: a device path, socket://HOST:PORT, rfc2217://..., loop://, or 'sim' "
              "for the built-in simulated board (default: connection.port of the config)")
@@ -56,3 +61,28 @@ def common_overrides(args: argparse.Namespace) -> dict[str, object]:
         "safety.output_limit": args.output_limit,
         "safety.pv_window": args.pv_window,
     }
+
+
+def add_view_options(p: argparse.ArgumentParser) -> None:
+    """--view: the full screen or plain lines."""
+    p.add_argument("--view", choices=("auto", "screen", "lines"), default="auto",
+                   help="screen: the full-screen bench view; lines: plain lines (default auto: "
+                        "the bench view when stdout is a terminal)")
+
+
+def terminal_for(args: argparse.Namespace) -> Terminal:
+    """The terminal of a powered verb: full screens unless --view lines (or stdout is not a
+    terminal); keys whenever stdin is a terminal."""
+    view = getattr(args, "view", "auto")
+    rich = None if view == "auto" else view == "screen"
+    return Terminal(stdin=sys.stdin, rich=rich)
+
+
+def default_out_dir(verb: str) -> Path:
+    """./autotune-sessions/<verb>-YYYYmmdd-HHMMSS (made unique with a suffix)."""
+    base = Path("autotune-sessions") / f"{verb}-{time.strftime('%Y%m%d-%H%M%S')}"
+    p, n = base, 1
+    while p.exists():
+        n += 1
+        p = base.with_name(f"{base.name}-{n}")
+    return p

@@ -22,6 +22,7 @@ class Phase(StrEnum):
     ANALYSIS = "analysis"
     PROPOSALS = "proposals"
     STEP = "step"
+    WAITING = "waiting"  # between powered stages: the motor is unpowered, the operator decides
     STOPPING = "stopping"
     DONE = "done"
 

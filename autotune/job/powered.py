@@ -31,7 +31,7 @@ import sys
 import threading
 import time
 from collections import deque
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType, TracebackType
@@ -175,8 +175,13 @@ class PoweredRun:
     def __init__(self, cfg: Config, options: RunOptions, *,
                  header_extra: dict[str, Any] | None = None,
                  on_update: Callable[[RunSnapshot], None] | None = None,
-                 say: Callable[[str], None] | None = None) -> None:
+                 say: Callable[[str], None] | None = None,
+                 confirm: Callable[[Any], None] | None = None) -> None:
         self.cfg = cfg
+        self._confirm = confirm
+        """Called with the device info after the handshake, before anything is powered: shows
+        the cautions and raises UserError (EXIT_ABORTED) unless the operator confirms. None:
+        the built-in line prompt (`confirm`), before the port is opened."""
         self.options = options
         self.axis = cfg.connection.axis
         self.header_extra = dict(header_extra or {})
@@ -234,8 +239,12 @@ class PoweredRun:
     # ------------------------------------------------------------------ connection
     def __enter__(self) -> PoweredRun:
         try:
-            self.confirm()  # cautions first; nothing is opened before the operator agrees
-            self.connect()
+            if self._confirm is None:
+                self.confirm()  # cautions first; nothing is opened before the operator agrees
+                self.connect()
+            else:
+                self.connect()  # the handshake powers nothing; the start screen names the board
+                self._confirm(self.info)
         except BaseException:
             self._teardown()
             raise
@@ -304,6 +313,86 @@ class PoweredRun:
     def arm(self, phase_header: dict[str, Any] | None = None) -> None:
         """Stream on, measure the PV start value at zero output, load the limits and verify
         them by read-back, open the session file, start the key watcher and the guard."""
+        first = self._load_limits()
+        self.supervisor = Supervisor(
+            LinkQualityMonitor(self.cfg.safety.max_frame_loss, self.cfg.safety.frame_loss_window),
+            ResetMonitor(self.info.boot_id),
+        )
+        self._open_session(phase_header or {})
+        self.armed = True
+        self._start_abort_watch()
+        for r in first:
+            self._record(r, "connect")
+
+    def halt(self, message: str) -> StopOutcome:
+        """Stop the motor between stages and confirm zero output; the connection, the session
+        and the heartbeat stay (the operator may take their time: nothing is powered).
+
+        A pending stop request (an abort key, a host limit) is settled here: once zero output
+        is confirmed the run may be armed again with `rearm`. Raises RunEnded when zero output
+        is not confirmed: the job must end, and the stop path tells the operator to cut the
+        power.
+        """
+        stop = self.stop_device()
+        req = self._stop_req
+        self.event("halted", message, confirmed=stop.confirmed, attempts=stop.attempts,
+                   t_zero=stop.t_zero, after=None if req is None else req.reason)
+        if not stop.confirmed:
+            raise RunEnded("stop_unconfirmed", f"{message}: {stop.message}", EXIT_UNSAFE)
+        with self._stop_lock:
+            self._stop_req = None
+        self.powered = False
+        self.armed = False
+        self.guard = None  # nothing powered: the next stage arms a new guard
+        self.phase = Phase.DONE
+        self.snapshot_extra["stopped"] = True
+        self.publish(force=True)
+        return stop
+
+    @contextlib.contextmanager
+    def idle(self) -> Iterator[None]:
+        """While halted (nothing powered) and the main thread waits for the operator: a thread
+        keeps recording the samples (phase "waiting"), so the session shows what the axis did
+        meanwhile (a loaded axis moves)."""
+        done = threading.Event()
+
+        def record() -> None:
+            while not done.is_set():
+                try:
+                    rec = self.link.next_sample(timeout=0.1)
+                except Exception:  # noqa: BLE001 (the next stage meets a lost link itself)
+                    return
+                if rec is not None and rec.axis == self.axis:
+                    self.last_sample = rec
+                    self._record(rec, "waiting")
+
+        th = threading.Thread(target=record, name="idle-recorder", daemon=True)
+        th.start()
+        try:
+            yield
+        finally:
+            done.set()
+            th.join(timeout=2.0)
+
+    def rearm(self) -> None:
+        """Before powering again after `halt`: the samples that came meanwhile are recorded
+        (phase "waiting"), the PV start value is measured again at zero output and the limits
+        are loaded around it and read back (the PV window now centres on where the PV is)."""
+        for rec in self.link.drain_samples():
+            if rec.axis == self.axis:
+                self.last_sample = rec
+                self._record(rec, "waiting")
+        first = self._load_limits()
+        for r in first:
+            self._record(r, "connect")
+        self.armed = True
+        self.snapshot_extra["stopped"] = False
+        self.event("rearmed", {"pv_start": self.pv_start, "limits": self.limits_readback})
+
+    def _load_limits(self) -> list[Any]:
+        """Stream on, the PV start value from five samples at zero output (a fault latched
+        before is cleared and said), the limits loaded around it and verified by read-back, a
+        new host guard. Returns those samples. UserError when the board does not comply."""
         from protocol.errors import LinkError, NakError
         from protocol.messages import ClearFault, GetLimits, Limits, SetLimits, Stream
 
@@ -377,15 +466,7 @@ class PoweredRun:
             self.pv_start,
             self.t_start,
         )
-        self.supervisor = Supervisor(
-            LinkQualityMonitor(s.max_frame_loss, s.frame_loss_window),
-            ResetMonitor(self.info.boot_id),
-        )
-        self._open_session(phase_header or {})
-        self.armed = True
-        self._start_abort_watch()
-        for r in first:
-            self._record(r, "connect")
+        return first
 
     def _open_session(self, extra: dict[str, Any]) -> None:
         if self.options.out_dir is None:

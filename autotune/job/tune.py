@@ -1,7 +1,8 @@
-"""The `tune` runner: prechecks, then a bounded relay experiment, then analysis and proposals.
+"""The identification stages of a job: prechecks, a bounded relay experiment, analysis.
 
-Wires the pure core (prechecks, relay, safety, analysis, design) to a `protocol.Link` through
-`autotune.job.powered.PoweredRun` (connection, cautions, limits, recording, the stop path).
+Wires the pure core (prechecks, relay, safety, analysis, design) to an armed
+`autotune.job.powered.PoweredRun` (limits, recording, the stop path); autotune.job.job runs the
+stages in order.
 
 Phases (all durations in device time, seconds):
   rest       output held at the bias for `prechecks.rest_time`: noise, drift, resolution;
@@ -11,8 +12,9 @@ Phases (all durations in device time, seconds):
   breakaway  (optional) a slow output ramp measures the deadband; the relay starts above it
   relay      host loop (the relay runs here, one SetOutput per sample) or device loop
              (StartRelay on the board; the host follows, supervises and sends new settings)
-Then the device is stopped (always, through the single stop path) and the recorded relay
-samples go to `autotune.core.analysis.analyse_relay` and `autotune.core.design.propose`.
+The relay ends with the output held at its balanced bias (the motor still powered, so a loaded
+axis does not drop); the recorded relay samples go to `autotune.core.analysis.analyse_relay`
+and `autotune.core.design.propose`.
 
 Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
 -centre, so it works with a loop whose positive output raises its PV. The device-side relay
@@ -21,22 +23,19 @@ cannot invert its output, so such a loop runs in host loop.
 
 from __future__ import annotations
 
-import sys
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, field, replace
-from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 
 import numpy as np
 
 from autotune.config import Config, check_against_noise
 from autotune.core import analysis
 from autotune.core import prechecks as pre
-from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
+from autotune.core.progress import CycleEstimate, Phase
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
-from autotune.job.powered import PoweredRun, RunEnded, RunOptions
-from autotune.recorder import export_csv, read_session, write_result
+from autotune.job.powered import PoweredRun, RunEnded
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
 """End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
@@ -59,20 +58,6 @@ class Arrays:
 
     def np(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         return np.array(self.t), np.array(self.pv), np.array(self.out)
-
-
-@dataclass
-class TuneOutcome:
-    """What `run_tune` returns: exit code, end reason, the result dict (None when the run
-    stopped before the relay produced cycles) and the files written."""
-
-    exit_code: int
-    reason: str
-    message: str
-    result: dict[str, Any] | None
-    session_path: Path | None
-    result_path: Path | None
-    stop_confirmed: bool | None
 
 
 def choose_loop(requested: str, has_device_relay: bool, has_host_loop: bool,
@@ -111,50 +96,32 @@ def steady_cycles(cycles: list[Any], tol: float, *, min_cycles: int = 4, tick: f
                             tick=tick, noise_std=noise_std, resolution=resolution)
 
 
-class LinePrinter:
-    """Plain progress display: one line per phase change, relay cycle, event or alarm.
+@dataclass(frozen=True)
+class RelayEnd:
+    """How the relay experiment ended: `reason` ("converged", "max_cycles", "max_time",
+    "no_oscillation", "fault:no_response"), a line for the operator, the exit code it implies,
+    the device time (s) and the bias (output units) the relay ended balanced at."""
 
-    Writes no escape codes (safe for logs and pipes). Use as the runner's `on_update`.
-    """
+    reason: str
+    message: str
+    exit_code: int
+    t: float
+    bias: float
 
-    def __init__(self, stream: TextIO | None = None) -> None:
-        self.stream = stream if stream is not None else sys.stdout
-        self._phase: Phase | None = None
-        self._message = ""
-        self._cycle = 0
-        self._alarm: str | None = None
-
-    def __call__(self, snap: RunSnapshot) -> None:
-        lines: list[str] = []
-        if snap.phase != self._phase or (snap.message and snap.message != self._message):
-            msg = f": {snap.message}" if snap.message else ""
-            lines.append(f"[{snap.phase.value}]{msg}")
-            self._phase, self._message = snap.phase, snap.message
-        if snap.cycle > self._cycle and snap.estimates:
-            e = snap.estimates[-1]
-            lines.append(f"  cycle {e.index}: period {e.period:.4g} s, peak-to-peak "
-                         f"{e.amplitude:.4g}, Ku ~ {e.ku:.4g}, Tu ~ {e.tu:.4g} s")
-            self._cycle = snap.cycle
-        if snap.alarm and snap.alarm != self._alarm:
-            lines.append(f"!! {snap.alarm}")
-            self._alarm = snap.alarm
-        for line in lines:
-            print(line, file=self.stream, flush=True)
+    @property
+    def analysable(self) -> bool:
+        return self.reason in ANALYSED_ENDINGS
 
 
 class TuneRun:
-    """One `tune` run. `run()` returns a TuneOutcome; it never leaves the motor powered."""
+    """The identification stages of a job, run on an armed PoweredRun by autotune.job.job:
+    `prechecks(run)`, `relay(run)` (returns a RelayEnd with the output held at the balanced
+    bias, the motor still powered) and `analyse(...)` (the result dict: figures, proposals).
+    analyse=False skips the model fit and design (relay figures only)."""
 
-    def __init__(self, cfg: Config, options: RunOptions, *,
-                 on_update: Callable[[RunSnapshot], None] | None = None,
-                 say: Callable[[str], None] | None = None, csv: bool = False,
-                 analyse: bool = True) -> None:
+    def __init__(self, cfg: Config, *, analyse: bool = True) -> None:
         self.cfg = cfg
-        self.analyse = analyse
-        self.options = options
-        self.on_update = on_update
-        self.say_fn = say
-        self.csv = csv
+        self.fit_model = analyse
         self.sign = cfg.connection.sign
         self.rest: pre.RestReport | None = None
         self.direction: pre.DirectionReport | None = None
@@ -172,42 +139,16 @@ class TuneRun:
         self._t_pulse = 0.0
         self._rest_y = np.zeros(0)
 
-    # ------------------------------------------------------------------ entry point
-    def execute(self) -> TuneOutcome:
-        cfg = self.cfg
-        run = PoweredRun(cfg, self.options, on_update=self.on_update, say=self.say_fn)
+    # ------------------------------------------------------------------ stages
+    def prechecks(self, run: PoweredRun) -> None:
+        """Rest, direction and (when enabled) breakaway; RunEnded when one fails."""
         self.run = run
-        try:
-            with run:
-                run.loop_mode = choose_loop(cfg.connection.loop, run.info.has_device_relay,
-                                            run.info.has_host_loop, self.sign)
-                run.arm({"loop_mode": run.loop_mode})
-                run.event("loop_mode", run.loop_mode)
-                self._prechecks(run)
-                self._relay(run)
-        except BaseException as exc:
-            # not a planned ending (a UserError or a bug): the stop path has run; record it
-            run.end_session()
-            stop = run.outcome.stop
-            if isinstance(exc, UserError) and stop is not None and not stop.confirmed:
-                raise UserError(f"{exc}; {run.alarm}", exit_code=run.outcome.exit_code) \
-                    from exc
-            raise
-        # the stop path has run; the motor is stopped (or the operator was told to cut power)
-        result = None
-        out = run.outcome
-        if self.experiment is not None and self.experiment.cycles:
-            result = self._analyse(run)
-        session_path = result_path = None
-        if self.options.out_dir is not None and run.writer is not None:
-            session_path = run.writer.path
-            run.end_session(cycles=len(self.experiment.cycles) if self.experiment else 0)
-            if self.csv:
-                export_csv(read_session(session_path), session_path.with_suffix(".csv"))
-            if result is not None:
-                result_path = write_result(Path(self.options.out_dir) / "result.json", result)
-        return TuneOutcome(out.exit_code, out.reason, out.message, result, session_path,
-                           result_path, None if out.stop is None else out.stop.confirmed)
+        self._prechecks(run)
+
+    def relay(self, run: PoweredRun) -> RelayEnd:
+        """The relay experiment to its end; the output is left at the balanced bias."""
+        self.run = run
+        return self._relay(run)
 
     # ------------------------------------------------------------------ helpers
     def _y(self, pv: float) -> float:
@@ -453,7 +394,16 @@ class TuneRun:
             pv_resolution=self.rest.resolution if self.rest else 0.0,
         )
 
-    def _relay(self, run: PoweredRun) -> None:
+    def _hold_bias(self, run: PoweredRun, bias: float) -> None:
+        """End the relay at its balanced bias: a host loop holds it; a board relay is replaced
+        by that output where the board takes host outputs (else its relay runs on until the
+        next stage takes over)."""
+        run.clear_sample_extra()
+        if run.loop_mode == "host" or run.info.has_host_loop:
+            run.set_output(bias)
+            run.event("relay_end", {"bias": bias})
+
+    def _relay(self, run: PoweredRun) -> RelayEnd:
         from protocol.messages import StartRelay
 
         cfg = self.cfg
@@ -505,7 +455,9 @@ class TuneRun:
                     message = ("no response: the PV did not move while the relay drove the "
                                "output; check the sensor, its wiring and the motor power")
                 code = EXIT_OK if reason == "converged" else EXIT_FAILED
-                raise RunEnded(reason, message, code, rec.t)
+                bias = exp.settings.bias
+                self._hold_bias(run, bias)
+                return RelayEnd(reason, message, code, rec.t, bias)
             if device:
                 if step.new_settings is not None:
                     start_relay(step.new_settings)
@@ -562,15 +514,18 @@ class TuneRun:
             run.publish(force=True)
 
     # ------------------------------------------------------------------ analysis
-    def _analyse(self, run: PoweredRun) -> dict[str, Any]:
+    def analyse(self, run: PoweredRun, reason: str, message: str) -> dict[str, Any]:
+        """The result dict (result.json fields) of the recorded relay; `reason`/`message`: how
+        the relay (or the run) ended. Pure computation on what was recorded: safe to run while
+        the motor holds its bias."""
         exp = self.experiment
         assert exp is not None
         cfg = self.cfg
         s = exp.settings
         info = run.info
         result: dict[str, Any] = {
-            "end_reason": run.outcome.reason,
-            "message": run.outcome.message,
+            "end_reason": reason,
+            "message": message,
             "loop_mode": run.loop_mode,
             "sign": self.sign,
             "relay": {"amplitude": s.amplitude, "hysteresis": s.hysteresis, "bias": s.bias,
@@ -583,18 +538,17 @@ class TuneRun:
         t, y, u = self.relay_data.np()
         noise = self.rest.noise_std if self.rest else 0.0
         result["cycles_used"] = 0
-        if not self.analyse:
+        if not self.fit_model:
             result["notes"].append("analysis skipped: only the relay figures are reported")
             self._classic_only(result, exp)
             return result
-        if run.outcome.reason not in ANALYSED_ENDINGS:
+        if reason not in ANALYSED_ENDINGS:
             result["notes"].append(
-                f"the relay did not run to its end ({run.outcome.reason}): only the plain "
+                f"the relay did not run to its end ({reason}): only the plain "
                 "relay figures are reported; `autotune analyze` on the session file analyses "
                 "the cycles recorded")
             self._classic_only(result, exp)
             return result
-        run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles")
         if self.deadband > 0:
             # the plant sees a relay of d - deadband: the dead zone taken out of the output
             # (continuous dead zone u - sign(u) deadband) before the analysis
@@ -617,7 +571,7 @@ class TuneRun:
             self._classic_only(result, exp)
             return result
         result.update(analysis.result_fields(an))
-        result["end_reason"] = run.outcome.reason
+        result["end_reason"] = reason
         if self.deadband > 0:
             # the contract's `relay` holds the settings as used; the analysis saw d - deadband
             result["relay"] = {**result.get("relay", {}), "amplitude": exp.settings.amplitude,
@@ -625,7 +579,6 @@ class TuneRun:
                                "effective_amplitude": exp.settings.amplitude - self.deadband}
         for w in an.warnings:
             result["notes"].append(str(w))
-        run.set_phase(Phase.PROPOSALS, "designing gains")
         result["proposals"] = propose_gains(an, asdict(cfg.design), cfg.safety.output_limit,
                                             cfg.relay.target_amplitude, info.tick,
                                             result["notes"])
@@ -671,12 +624,3 @@ def propose_gains(an: analysis.RelayAnalysis, design_cfg: Mapping[str, Any],
         notes.append(f"design failed: {exc}")
         return []
     return [p.as_dict() for p in props]
-
-
-def run_tune(cfg: Config, options: RunOptions, *,
-             on_update: Callable[[RunSnapshot], None] | None = None,
-             say: Callable[[str], None] | None = None, csv: bool = False,
-             analyse: bool = True) -> TuneOutcome:
-    """Run `tune` end to end; see TuneRun (analyse=False skips the model fit and design)."""
-    return TuneRun(cfg, options, on_update=on_update, say=say, csv=csv,
-                   analyse=analyse).execute()

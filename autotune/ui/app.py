@@ -5,34 +5,47 @@ a terminal) and the single key thread (`KeyRouter`, built on `autotune.keys.Abor
 keys are handled first, in the key thread, by whatever stop the current stage installed; other
 keys go to a queue the screens read.
 
-`BenchJob` runs start screen -> relay (autotune.job.tune.TuneRun) -> proposals -> confirmation
-step (autotune.job.step.run_step on a fresh autotune.job.powered.PoweredRun) -> accept (gains
-file) -> finish. The motor is stopped between stages: every powered stage is its own `with`
-block, so its stop path runs before a screen waits for the operator.
+`TerminalOperator` is the job's operator (autotune.job.operator) on that terminal; `run_job`
+runs autotune.job.job.TuningJob with it and prints the finish screen. The job stops the motor
+before any screen waits for the operator.
 """
 
 from __future__ import annotations
 
 import contextlib
-import io
-import math
 import queue
 import sys
 import threading
 import time
-from collections.abc import Callable
-from dataclasses import dataclass, field
-from pathlib import Path
+from collections.abc import Callable, Sequence
+from dataclasses import replace
 from typing import Any
 
 from rich.console import Console, RenderableType
 from rich.live import Live
 
 from autotune.core.progress import RunSnapshot
-from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_OK, UserError
+from autotune.errors import EXIT_OK
+from autotune.job.job import JobOutcome, TuningJob
+from autotune.job.operator import (
+    Decision,
+    GainsMenu,
+    JobSummary,
+    MenuAnswer,
+    StartInfo,
+    StepReport,
+)
+from autotune.job.requests import JobRequest
 from autotune.keys import AbortKeys
 from autotune.ui import plain, screens
-from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
+from autotune.ui.views import (
+    ConfirmView,
+    FinishView,
+    ProposalRow,
+    ProposalsView,
+    StartView,
+    StepView,
+)
 
 ABORT = "<abort>"  # what the key queue carries for an abort key
 FRAME_RATE = 8.0  # most frames a second the screen thread draws
@@ -215,604 +228,259 @@ class Terminal:
             self.reporter.update(snap)
 
 
-# ------------------------------------------------------------------------ the job
+    def read_line(self, prompt: str) -> str | None:
+        """Plain mode: print `prompt` and collect typed keys (echoed) up to Enter; None when a
+        stop key is pressed or nobody can type. Keys typed before the prompt do not count."""
+        if not self.keys_available:
+            return None
+        self.drain()
+        out = self.console.file
+        out.write(prompt)
+        out.flush()
+        typed: list[str] = []
+        while True:
+            key = self.keys.get()
+            if key == ABORT:
+                out.write("\n")
+                out.flush()
+                return None
+            if key in ENTER_KEYS:
+                out.write("\n")
+                out.flush()
+                return "".join(typed)
+            if key in ("\x7f", "\b"):
+                if typed:
+                    typed.pop()
+                    out.write("\b \b")
+            elif key.isprintable():
+                typed.append(key)
+                out.write(key)
+            out.flush()
 
 
-@dataclass
-class JobSettings:
-    """What a bench job needs besides the config.
-
-    port: URL the runners open (a pty path for the demo's own simulated board); label: how the
-    start screen names the port; out_dir: where session, result and gains files go; yes: run
-    unattended (choose the default proposal, accept a passing step); speed: how many times
-    faster than the wall clock the (simulated) device runs; max_steps: unattended attempts.
-    """
-
-    port: str
-    out_dir: Path
-    yes: bool = False
-    label: str = ""
-    simulated: bool = False
-    speed: float = 1.0
-    plant: str = "cart-wheel"
-    seed: int | None = None
-    device: str = ""  # how the start screen names the device before it is connected
-    max_steps: int = 3
-    settle_band: float | None = None  # settled-detection band of the step (fraction of the
-    #                                   step size); None = the step test's default (2%)
+# ------------------------------------------------------------------------ the operator
+LINE_CONFIRM = "Type yes and Enter to power the motor (anything else goes back): "
 
 
-class _ConfirmGate(io.TextIOBase):
-    """Stands in for stdin in PoweredRun.confirm: shows the start screen and answers for the
-    operator's key ('yes' only after Y). It claims to be a terminal only when an operator can
-    answer or --yes was given; otherwise the runner refuses to power anything."""
+class TerminalOperator:
+    """The job's operator on a terminal: full screens when stdout is a terminal, plain lines
+    otherwise; answers come from the one key thread (see autotune.job.operator for the
+    confirmation rule: the Y key on the screen, `yes` typed in line mode)."""
 
-    def __init__(self, job: BenchJob) -> None:
-        self.job = job
-
-    def isatty(self) -> bool:
-        return self.job.settings.yes or self.job.term.keys_available
-
-    def readline(self, size: int | None = -1) -> str:  # noqa: ARG002
-        return "yes\n" if self.job.confirm_start() else "no\n"
-
-
-@dataclass
-class StepAttempt:
-    """One confirmation step as run: the outcome, its directory, the view shown."""
-
-    outcome: Any
-    out_dir: Path
-    view: StepView
-    stop_confirmed: bool | None
-    reason: str
-
-
-@dataclass
-class JobResult:
-    """How the job ended."""
-
-    exit_code: int
-    message: str
-    files: list[tuple[str, str]] = field(default_factory=list)
-    gains: Any = None  # autotune.gainsfile.GainsRecord when accepted
-    code: str = ""
-
-
-class BenchJob:
-    """The whole tuning job against one port, driven from the bench view."""
-
-    def __init__(self, cfg: Any, settings: JobSettings, term: Terminal) -> None:
-        self.cfg = cfg
-        self.settings = settings
+    def __init__(self, term: Terminal) -> None:
         self.term = term
-        self.sink = io.StringIO()  # the runners' own prompts and lines (the screens show them)
-        self.tune: Any = None
-        self.tune_outcome: Any = None
-        self.result: dict[str, Any] | None = None
-        self.model: Any = None
-        self.rows: list[ProposalRow] = []
-        self.proposals: list[Any] = []  # design.Proposal objects when redesigned here
-        self.selected = 0
-        self.ms_target = float(cfg.design.ms_target)
-        self.detune = 1.0
-        self.attempts: list[StepAttempt] = []
-        self.files: list[tuple[str, str]] = []
-        self.info: Any = None
-        self.loop_mode = "device"
+        self.summary: JobSummary | None = None
+        self.last_step: StepView | None = None
+        self.log: list[str] = []  # lines said while a full screen was up
+        self._on_start = False
 
-    # ---------------------------------------------------------------- helpers
-    def say(self, line: str) -> None:
-        """Runner lines: printed in plain mode, kept in the session file either way."""
-        self.term.line(line)
+    @property
+    def can_ask(self) -> bool:
+        return self.term.keys_available
 
-    def run_options(self, out_dir: Path, verb: str) -> Any:
-        from autotune.job.powered import RunOptions
-
-        st = self.settings
-        return RunOptions(port=st.port, yes=False, out_dir=out_dir, plant=st.plant,
-                          speed=st.speed, seed=st.seed, stdin=_ConfirmGate(self),
-                          stdout=self.sink, verb=verb, keys=False, cautions_shown=True)
-
-    def start_view(self) -> StartView:
-        """The start screen's view. It comes before the port is opened (nothing is opened
-        before the operator agrees), so the device is named by its port and the loop mode is
-        the one asked for."""
-        cfg = self.cfg
-        s = cfg.safety
-        loop = str(cfg.connection.loop)
-        if loop == "auto":
-            loop = "device if the board offers it, else host"
-        limits = (
-            ("output limit", f"±{s.output_limit:g}"),
-            ("PV window", f"±{s.pv_window:g} around the start value"),
-            ("PV rate", f"{s.pv_rate_limit:g}/s" if s.pv_rate_limit else "off"),
-            ("run time", f"{s.max_duration:g} s"),
-            ("sample gap", f"{s.max_sample_gap:g} s"),
-            ("watchdog", f"{s.watchdog:g} s"),
-        )
-        r = cfg.relay
-        plan = (
-            ("target amplitude", f"{r.target_amplitude:g}"),
-            ("start amplitude", f"{cfg.start_amplitude:g}"),
-            ("max cycles", f"{r.max_cycles}"),
-            ("max time", f"{r.max_time:g} s"),
-        )
-        return StartView(
-            device=self.settings.device or "the board",
-            port=self.settings.label or self.settings.port,
-            axis=cfg.connection.axis,
-            loop_mode=loop,
-            limits=limits,
-            plan=plan,
-            simulated=self.settings.simulated,
-            out_dir=str(self.settings.out_dir),
-        )
-
-    # ---------------------------------------------------------------- stage 1: start + relay
-    def confirm_start(self) -> bool:
-        """Called by the runner before it opens the port: the start screen and the operator's
-        Y (or --yes). From a yes on, an abort key stops the run from the key thread."""
-        run = self.tune.run if self.tune is not None else None
-        view = self.start_view()
+    # ---------------------------------------------------------------- showing
+    def show_start(self, info: StartInfo) -> None:
+        view = StartView(device=info.device, port=info.port, axis=info.axis,
+                         loop_mode=info.loop_mode, limits=info.limits, plan=info.plan,
+                         simulated=info.simulated, out_dir=info.out_dir)
         term = self.term
-        term.drain()  # keys typed before this screen was shown do not count
         term.show(lambda w, h: screens.start_screen(view, w, h), "start")
         if term.live is None:
             term.lines(plain.start_lines(view))
-        if self.settings.yes:
-            term.line("--yes given: starting without asking.")
-        else:
-            term.line("Press Y when every line above is true; a stop key leaves.")
-            if term.wait_key(("y", "Y")) == ABORT:
-                return False
-        if run is not None:
-            term.on_abort = lambda k: run.request_stop("aborted", f"abort key ({k}) pressed",
-                                                       EXIT_ABORTED)
-        return True
+        self._on_start = True  # the start screen asks for Y itself
 
-    def run_relay(self) -> int:
-        from autotune.job.tune import TuneRun
+    def update(self, snap: RunSnapshot) -> None:
+        self.term.snapshot(snap)
 
-        out_dir = self.settings.out_dir
-        self.tune = TuneRun(self.cfg, self.run_options(out_dir, "demo"),
-                            on_update=self.term.snapshot, say=self.say)
-        try:
-            self.tune_outcome = self.tune.execute()
-        finally:
-            self.term.on_abort = None
-        o = self.tune_outcome
-        run = self.tune.run
-        if run is not None:
-            self.info = run.info
-            self.loop_mode = run.loop_mode
-        if o.session_path is not None:
-            self.files.append(("relay session", str(o.session_path)))
-        if o.result_path is not None:
-            self.files.append(("result", str(o.result_path)))
-        self.result = o.result
-        return o.exit_code
+    def say(self, line: str) -> None:
+        self.log.append(line)
+        self.term.line(line)
 
-    # ---------------------------------------------------------------- stage 2: proposals
-    def design_spec(self, ms_target: float | None = None) -> Any:
-        from autotune.core.design import DesignSpec
+    def alarm(self, text: str) -> None:
+        self.log.append(text)
+        self.term.line(f"ALARM: {text}")
 
-        cfg = self.cfg
-        tick = getattr(self.info, "tick", None) if self.info is not None else None
-        return DesignSpec(
-            ms_target=self.ms_target if ms_target is None else ms_target,
-            max_overshoot=cfg.design.max_overshoot,
-            max_settling_time=cfg.design.max_settling_time,
-            step_size=self.step_size(),
-            output_limit=cfg.safety.output_limit,
-            ts=tick,
-        )
+    def watch_abort(self, stop: Callable[[str], None] | None) -> None:
+        self.term.on_abort = stop
 
-    def step_size(self) -> float:
-        from autotune.core.steptest import fit_step_to_window
+    def show_gains(self, menu: GainsMenu) -> None:
+        view = _proposals_view(menu)
+        self.term.show(lambda w, h: screens.proposals_screen(view, w, h), "proposals")
+        if self.term.live is None:
+            self.term.lines(plain.proposals_lines(view))
 
-        cfg = self.cfg
-        size = cfg.step.size or cfg.design.step_size or cfg.relay.target_amplitude
-        size, _ = fit_step_to_window(size, cfg.safety.pv_window)
-        return float(size)
+    def show_step(self, report: StepReport) -> None:
+        view = _step_view(report, ())
+        self.last_step = view
+        self.term.show(lambda w, h: screens.step_screen(view, w, h), "step")
+        if self.term.live is None:
+            self.term.lines(plain.step_lines(view))
 
-    def load_proposals(self) -> None:
-        from autotune.core.steptest import model_from_dict
+    def finish(self, summary: JobSummary) -> None:
+        self.summary = summary
 
-        res = self.result or {}
-        self.rows = [ProposalRow.of(_DictProposal(p)) for p in res.get("proposals") or []]
-        self.model = model_from_dict(res["model"]) if res.get("model") else None
-        m = res.get("model") or {}
-        if self.model is None and all(k in m for k in ("num", "den", "delay")):
-            from autotune.core.lti import DelayedTF
-
-            with contextlib.suppress(Exception):  # any kind that states its transfer function
-                self.model = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m["delay"]))
-        self.selected = next((i for i, r in enumerate(self.rows) if r.default), 0)
-
-    def redesign(self) -> str:
-        """Proposals again for the current Ms target (on the fitted model)."""
-        from autotune.core.design import propose
-
-        res = self.result or {}
-        if self.model is None:
-            return "no fitted model: the Ms target cannot change the proposals"
-        try:
-            props = propose(res.get("ultimate_gain"), res.get("ultimate_period"), self.model,
-                            self.design_spec())
-        except Exception as exc:  # noqa: BLE001 (report on the screen, keep the old table)
-            return f"redesign failed: {exc}"
-        name = self.rows[self.selected].name if self.rows else None
-        self.proposals = props
-        self.rows = [ProposalRow.of(p) for p in props]
-        self.selected = next((i for i, r in enumerate(self.rows) if r.name == name), 0)
-        return f"proposals redesigned for Ms ≤ {self.ms_target:.2f}"
-
-    def proposals_view(self, message: str = "") -> ProposalsView:
-        res = self.result or {}
-        model = res.get("model") or {}
-        params = " ".join(f"{screens.MODEL_PARAM_NAMES.get(k, k)} {v:.3g}"
-                          for k, v in (model.get("params") or {}).items()
-                          if isinstance(v, (int, float)))
-        d = self.cfg.design
-        spec = []
-        if d.max_overshoot is not None:
-            spec.append(f"overshoot ≤ {d.max_overshoot:g} %")
-        if d.max_settling_time is not None:
-            spec.append(f"settling ≤ {d.max_settling_time:g} s")
-        return ProposalsView(
-            rows=tuple(self.rows), selected=self.selected, ms_target=self.ms_target,
-            detune=self.detune, ku=res.get("ultimate_gain"), tu=res.get("ultimate_period"),
-            model=f"{str(model.get('kind', '')).replace('_', '+')} {params}".strip(),
-            spec=", ".join(spec),
-            message=message,
-        )
-
-    def choose(self) -> bool:
-        """The proposals screen; True when the operator asked for a step."""
+    # ---------------------------------------------------------------- asking
+    def confirm_power(self, action: str) -> bool:
         term = self.term
-        message = ""
-        if not self.rows:
-            return False
-        if self.settings.yes or not term.keys_available:
-            view = self.proposals_view()
-            term.show(lambda w, h: screens.proposals_screen(view, w, h), "proposals")
-            if term.live is None:
-                term.lines(plain.proposals_lines(view))
-            return True
+        view = ConfirmView(action)
+        on_start, self._on_start = self._on_start, False
+        term.drain()  # keys typed before this question do not count
+        if term.live is not None:
+            if not on_start:
+                term.show(lambda w, h: screens.confirm_screen(view, w, h), "confirm")
+            key = term.wait_key()
+            return key in ("y", "Y")
+        if not on_start:
+            term.lines(plain.confirm_lines(view))
+        answer = term.read_line(LINE_CONFIRM)
+        return answer is not None and answer.strip().lower() == "yes"
+
+    def choose_gains(self, menu: GainsMenu) -> MenuAnswer:
+        term = self.term
+        props, selected, ms, message = menu.proposals, menu.selected, menu.ms_target, ""
+        changed = False
         term.drain()
         while True:
-            view = self.proposals_view(message)
-            term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h), "proposals")
+            m = replace(menu, proposals=props, selected=selected, ms_target=ms,
+                        message=message or menu.message)
+            view = _proposals_view(m)
             if term.live is None:
                 term.lines(plain.proposals_lines(view))
-                term.line("keys: 1-9/Tab/n/p choose, m/M Ms target, d/D detune, Enter step; "
-                          "Space, Esc, q stop and leave")
+                default = next((i for i, p in enumerate(props) if p.get("default")), selected)
+                answer = term.read_line(
+                    f"proposal for the confirmation step (1-{len(props)}; Enter: "
+                    f"{default + 1} {props[default].get('name')}; a stop key leaves): ")
+                if answer is None:
+                    return MenuAnswer(None)
+                a = answer.strip()
+                if not a:
+                    return MenuAnswer(default, props if changed else (), ms)
+                if a.isdigit() and 1 <= int(a) <= len(props):
+                    return MenuAnswer(int(a) - 1, props if changed else (), ms)
+                message = f"no proposal {a!r}"
+                continue
+            term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h), "proposals")
             key = term.wait_key()
             message = ""
             if key == ABORT:
-                return False
-            if key.isdigit() and key != "0" and int(key) <= len(self.rows):
-                self.selected = int(key) - 1
+                return MenuAnswer(None)
+            if key.isdigit() and key != "0" and int(key) <= len(props):
+                selected = int(key) - 1
             elif key in ("\t", "n"):
-                self.selected = (self.selected + 1) % len(self.rows)
+                selected = (selected + 1) % len(props)
             elif key == "p":
-                self.selected = (self.selected - 1) % len(self.rows)
-            elif key in ("m", "M"):
-                new = round(self.ms_target + (0.05 if key == "M" else -0.05), 2)
-                if 1.1 <= new <= 2.0:
-                    self.ms_target = new
-                    term.show(lambda w, h: screens.proposals_screen(
-                        self.proposals_view("redesigning…"), w, h))
-                    message = self.redesign()
-                else:
+                selected = (selected - 1) % len(props)
+            elif key in ("m", "M") and menu.redesign is not None:
+                new = round(ms + (0.05 if key == "M" else -0.05), 2)
+                if not 1.1 <= new <= 2.0:
                     message = "Ms target stays between 1.10 and 2.00"
-            elif key in ("d", "D"):
-                new = round(self.detune + (0.05 if key == "D" else -0.05), 2)
-                if 0.2 <= new <= 1.0:
-                    self.detune = new
-                else:
-                    message = "detune factor stays between 0.20 and 1.00"
-            elif key in ENTER_KEYS or key == "s":
-                return True
+                    continue
+                busy = replace(view, message="redesigning…")
+                term.show(lambda w, h, v=busy: screens.proposals_screen(v, w, h))
+                name = props[selected].get("name")
+                props, message = menu.redesign(new)
+                ms, changed = new, True
+                selected = next((i for i, p in enumerate(props) if p.get("name") == name), 0)
+            elif key == "s":
+                return MenuAnswer(selected, props if changed else (), ms)
+            elif key in ENTER_KEYS:
+                message = "Enter never starts the motor: s chooses, then Y confirms"
 
-    def next_unattended(self) -> bool:
-        """Unattended: move to the next untried proposal, those without spec violations first,
-        then by predicted overshoot (lowest first). False when none is left."""
-        tried = {a.view.name for a in self.attempts}
-        order = sorted(
-            (i for i, r in enumerate(self.rows) if r.name not in tried),
-            key=lambda i: (bool(self.rows[i].violations),
-                           self.rows[i].predicted.get("overshoot", math.inf)
-                           if math.isfinite(self.rows[i].predicted.get("overshoot", math.inf))
-                           else math.inf),
-        )
-        if not order:
-            return False
-        self.selected = order[0]
-        self.detune = 1.0
-        return True
-
-    # ---------------------------------------------------------------- stage 3: the step
-    def candidate(self) -> Any:
-        """The chosen proposal, detuned, with its predicted figures (recomputed if detuned)."""
-        from autotune.core.design import predict
-        from autotune.core.pid import PidGains
-        from autotune.core.steptest import StepCandidate
-
-        row = self.rows[self.selected]
-        gains = PidGains(row.kp, row.ki, row.kd)
-        predicted = {k: v for k, v in row.predicted.items() if isinstance(v, (int, float))}
-        name = row.name
-        if self.detune != 1.0:
-            gains = gains.scaled(self.detune)
-            name = f"{row.name}×{self.detune:.2f}"
-            if self.model is not None:
-                with contextlib.suppress(Exception):
-                    predicted = {k: v for k, v in predict(self.model, gains,
-                                                          self.design_spec(),
-                                                          row.setpoint_weight).items()
-                                 if isinstance(v, (int, float)) and not isinstance(v, bool)}
-        return StepCandidate(name, gains, predicted)
-
-    def step_settings(self) -> Any:
-        from autotune.core.steptest import StepPlan, StepSettings
-        from autotune.core.verdict import StepSpec
-
-        cfg = self.cfg
-        row = self.rows[self.selected]
-        settle = row.predicted.get("settling_time")
-        min_record = 1.5 * settle if isinstance(settle, (int, float)) and math.isfinite(
-            settle) else 0.0
-        band = {} if self.settings.settle_band is None else {
-            "settle_band": self.settings.settle_band}
-        plan = StepPlan(size=self.step_size(), hold_time=cfg.step.settle_time,
-                        timeout=max(cfg.step.duration, min_record), min_record=min_record,
-                        **band)
-        return StepSettings(plan=plan, loop=self.loop_mode, output_limit=cfg.safety.output_limit,
-                            setpoint_weight=row.setpoint_weight,
-                            spec=StepSpec(cfg.design.max_overshoot, cfg.design.max_settling_time,
-                                          0.0))
-
-    def run_one_step(self) -> StepAttempt:
-        from autotune.job.powered import PoweredRun, RunEnded
-        from autotune.job.step import StepEnded, run_step
-
-        k = len(self.attempts) + 1
-        out_dir = self.settings.out_dir / f"step-{k}"
-        cand = self.candidate()
-        settings = self.step_settings()
-        opts = self.run_options(out_dir, "demo-step")
-        opts.yes = True  # the operator confirmed at the start screen and asked for this step
-        run = PoweredRun(self.cfg, opts, header_extra={"proposal": cand.name},
-                         on_update=self.term.snapshot, say=self.say)
-        outcome = None
-        self.term.on_abort = lambda key: run.request_stop(
-            "aborted", f"abort key ({key}) pressed", EXIT_ABORTED)
-        try:
-            with run:
-                run.loop_mode = settings.loop
-                run.arm({"loop_mode": settings.loop, "step": {"proposal": cand.name}})
-                try:
-                    outcome = run_step(run, cand, settings)
-                except StepEnded as exc:
-                    outcome = exc.outcome
-                    raise exc.ended from None
-                raise RunEnded("completed", "step done", EXIT_OK)
-        finally:
-            self.term.on_abort = None
-        run.end_session()
-        reason = run.outcome.reason
-        confirmed = None if run.outcome.stop is None else run.outcome.stop.confirmed
-        if run.writer is not None:
-            self.files.append((f"step {k} session", str(run.writer.path)))
-        view = self.step_view(outcome, cand, reason, run.outcome.message, confirmed)
-        attempt = StepAttempt(outcome, out_dir, view, confirmed, reason)
-        self.attempts.append(attempt)
-        return attempt
-
-    def step_view(self, outcome: Any, cand: Any, reason: str, message: str,
-                  confirmed: bool | None) -> StepView:
-        g = cand.gains
-        if outcome is None:
-            return StepView(cand.name, g.kp, g.ki, g.kd, (), (), (), (),
-                            message=f"stopped before the step: {message}")
-        seg = next((s for s in outcome.segments if str(s.phase.value) == "step"), None)
-        t0 = seg.t_start if seg is not None else (outcome.t[0] if outcome.t else 0.0)
-        t1 = seg.t_end if seg is not None else (outcome.t[-1] if outcome.t else t0)
-        lead = min(0.5, 0.25 * max(t1 - t0, 0.0))  # a little of the hold before the step
-        keep = [i for i, x in enumerate(outcome.t) if t0 - lead <= x <= t1 + 1e-9]
-        t = tuple(outcome.t[i] - t0 for i in keep)
-
-        def pick(a: list[float]) -> tuple[float, ...]:
-            return tuple(a[i] for i in keep)
-
-        pred_t, pred_y = self.predicted_response(outcome, cand, t1 - t0)
-        note = ""
-        verdict = outcome.verdict
-        if reason not in ("completed",):
-            # a step cut short proves nothing: figures shown, no verdict, nothing to accept
-            verdict = None
-            note = f"stopped: {message}" + (" (device confirmed zero output)" if confirmed
-                                            else " (zero output NOT confirmed: cut power)")
-        return StepView(cand.name, g.kp, g.ki, g.kd, t, pick(outcome.pv), pick(outcome.sp),
-                        pick(outcome.out), pred_t, pred_y, tuple(outcome.rows), verdict,
-                        detune=0.7, message=note)
-
-    def predicted_response(self, outcome: Any, cand: Any, t_end: float
-                           ) -> tuple[tuple[float, ...], tuple[float, ...]]:
-        """The model's response to the same step, from the step instant (s, PV units)."""
-        if self.model is None or t_end <= 0:
-            return (), ()
-        from autotune.core.closedloop import simulate_closed_loop
-        from autotune.core.lti import DelayedTF
-
-        try:
-            plant = self.model
-            ts = outcome.pid.ts
-            if outcome.loop == "host":
-                plant = DelayedTF(plant.num, plant.den, plant.delay + ts)
-            run = simulate_closed_loop(plant, outcome.pid, t_end, outcome.plan.size)
-        except Exception:  # noqa: BLE001 (the overlay is a help, not a must)
-            return (), ()
-        base = outcome.start_value
-        return tuple(float(x) for x in run.t), tuple(float(y) + base for y in run.y)
-
-    # ---------------------------------------------------------------- stage 4: verdict
-    def decide(self, attempt: StepAttempt) -> str:
-        """The step-result screen: 'accept', 'detune', 'other', 'repeat' or ABORT."""
+    def after_step(self, report: StepReport, offer: Sequence[Decision]) -> Decision:
         term = self.term
-        v = attempt.view.verdict
+        keys = tuple((k, label) for k, label, d in STEP_DECISIONS if d in offer)
+        view = _step_view(report, keys)
+        self.last_step = view
         term.drain()  # the keys of the step run were handled there (abort) or do not count
-        term.show(lambda w, h: screens.step_screen(attempt.view, w, h), "step")
+        allowed = {k: d for k, _, d in STEP_DECISIONS if d in offer}
         if term.live is None:
-            term.lines(plain.step_lines(attempt.view))
-        if self.settings.yes or not term.keys_available:
-            if v is not None and v.passed:
-                return "accept"
-            if len(self.attempts) >= self.settings.max_steps:
-                return ABORT
-            return "other"  # unattended: the next proposal in line (see next_unattended)
-        if term.live is None:
-            term.line("keys: a accept, d detune, o other proposal, r repeat; Space, Esc, q leave")
-        while True:
-            key = term.wait_key(("a", "d", "o", "r"))
-            if key == ABORT:
-                return ABORT
-            if key == "a" and v is None:
-                continue  # nothing measured to accept
-            return {"a": "accept", "d": "detune", "o": "other", "r": "repeat"}[key]
-
-    def accept(self, attempt: StepAttempt) -> JobResult:
-        """Write the gains file and add the step to result.json."""
-        from autotune import __version__
-        from autotune.gainsfile import GainsRecord, code_block, write_gains_file
-        from autotune.recorder import read_result, write_result
-
-        o = attempt.outcome
-        info = self.info
-        origin = {
-            "session": str(self.tune_outcome.session_path or ""),
-            "step_session": str(attempt.out_dir / "session.jsonl"),
-            "proposal": self.rows[self.selected].name,
-            "detuned_by": self.detune,
-            "device": getattr(info, "device_name", ""),
-            "firmware": getattr(info, "firmware", ""),
-            "tool_version": __version__,
-        }
-        measured = {k: v for k, v in (o.metrics.as_dict() if o.metrics else {}).items()
-                    if isinstance(v, float) and math.isfinite(v)}
-        predicted = {k: v for k, v in o.candidate.predicted.items()
-                     if isinstance(v, (int, float)) and not isinstance(v, bool)
-                     and math.isfinite(v)}
-        rec = GainsRecord.from_settings(o.pid, loop_mode=o.loop, axis=self.cfg.connection.axis,
-                                        output_limit=self.cfg.safety.output_limit, origin=origin,
-                                        measured=measured, predicted=predicted)
-        path = write_gains_file(self.settings.out_dir / "gains.toml", rec)
-        self.files.append(("gains", str(path)))
-        rpath = self.tune_outcome.result_path
-        if rpath is not None:
-            with contextlib.suppress(Exception):
-                res = read_result(rpath)
-                res["step"] = o.step_field()
-                write_result(rpath, res)
-        return JobResult(EXIT_OK, f"gains accepted: {o.candidate.name}", list(self.files), rec,
-                         code_block(rec))
-
-    # ---------------------------------------------------------------- the whole job
-    def run(self) -> JobResult:
-        """Start -> relay -> proposals -> step(s) -> accept; every exit leaves the motor
-        stopped (each powered stage ran its stop path)."""
-        try:
-            code = self.run_relay()
-        except UserError as exc:
-            return JobResult(exc.exit_code, str(exc), list(self.files))
-        o = self.tune_outcome
-        if code != EXIT_OK or not self.result or not self.result.get("proposals"):
-            why = o.message or o.reason
-            if o.stop_confirmed:
-                why += "; the device confirmed zero output"
-            return JobResult(code if code != EXIT_OK else EXIT_FAILED,
-                             f"relay ended: {why}", list(self.files))
-        self.load_proposals()
-        while True:
-            if not self.choose():
-                return JobResult(EXIT_ABORTED, "left at the proposals; nothing more was powered",
-                                 list(self.files))
+            term.lines(plain.step_lines(view))
+            words = ", ".join(f"[{k}]{label[1:]}" if label.startswith(k) else f"{k} {label}"
+                              for k, label in keys)
             while True:
-                attempt = self.run_one_step()
-                action = self.decide(attempt)
-                if action == "accept":
-                    return self.accept(attempt)
-                if action == ABORT:
-                    why = ("no step met the spec" if self.settings.yes
-                           else "left at the step result")
-                    return JobResult(EXIT_ABORTED if not self.settings.yes else EXIT_FAILED,
-                                     f"{why}; no gains written", list(self.files))
-                if action == "detune":
-                    self.detune = round(self.detune * 0.7, 3)
-                    continue
-                if action == "repeat":
-                    continue
-                if self.settings.yes or not self.term.keys_available:
-                    if not self.next_unattended():
-                        return JobResult(EXIT_FAILED, "no proposal passed the step; no gains "
-                                         "written", list(self.files))
-                    continue
-                break  # other: back to the proposals
+                answer = term.read_line(f"{words} (a stop key leaves): ")
+                if answer is None:
+                    return Decision.LEAVE
+                a = answer.strip().lower()
+                pick = allowed.get(a[:1]) if a else None
+                if pick is not None and (len(a) == 1 or pick.value.startswith(a)):
+                    return pick
+        term.show(lambda w, h: screens.step_screen(view, w, h), "step")
+        while True:
+            key = term.wait_key()
+            if key == ABORT:
+                return Decision.LEAVE
+            if key in allowed:
+                return allowed[key]
 
 
-def finish_view(result: JobResult) -> FinishView:
+STEP_DECISIONS = (("a", "accept", Decision.ACCEPT), ("d", "detune", Decision.DETUNE),
+                  ("o", "other proposal", Decision.OTHER), ("r", "repeat", Decision.REPEAT),
+                  ("q", "quit", Decision.LEAVE))
+
+
+def _proposals_view(menu: GainsMenu) -> ProposalsView:
+    return ProposalsView(rows=tuple(ProposalRow.of_dict(p) for p in menu.proposals),
+                         selected=menu.selected, ms_target=menu.ms_target, ku=menu.ku,
+                         tu=menu.tu, model=menu.model, spec=menu.spec, message=menu.message)
+
+
+def _step_view(report: StepReport, keys: tuple[tuple[str, str], ...]) -> StepView:
+    o = report.outcome
+    if o is None or not o.t:
+        return StepView(report.name, report.kp, report.ki, report.kd, (), (), (), (),
+                        keys=keys, message=f"stopped before the step: {report.message}")
+    seg = next((s for s in o.segments if str(s.phase.value) == "step"), None)
+    t0 = seg.t_start if seg is not None else o.t[0]
+    t1 = seg.t_end if seg is not None else o.t[-1]
+    lead = min(0.5, 0.25 * max(t1 - t0, 0.0))  # a little of the hold before the step
+    keep = [i for i, x in enumerate(o.t) if t0 - lead <= x <= t1 + 1e-9]
+    t = tuple(o.t[i] - t0 for i in keep)
+
+    def pick(a: list[float]) -> tuple[float, ...]:
+        return tuple(a[i] for i in keep)
+
+    verdict, note = o.verdict, ""
+    if report.reason != "completed":
+        # a step cut short proves nothing: figures shown, no verdict, nothing to accept
+        verdict = None
+        note = f"stopped: {report.message}; the motor is unpowered"
+    return StepView(report.name, report.kp, report.ki, report.kd, t, pick(o.pv), pick(o.sp),
+                    pick(o.out), report.pred_t, report.pred_y, tuple(o.rows), verdict,
+                    detune_hint=report.detune_hint, keys=keys, message=note)
+
+
+def finish_view(summary: JobSummary) -> FinishView:
     """The finish screen of a job."""
     gains: tuple[tuple[str, str], ...] = ()
-    if result.gains is not None:
-        g = result.gains.gains
+    if summary.gains is not None:
+        g = summary.gains.gains
         gains = (("kp", f"{g.kp:.6g}"), ("ki", f"{g.ki:.6g} /s"), ("kd", f"{g.kd:.6g} s"),
-                 ("loop period", f"{result.gains.period:.6g} s"))
-    return FinishView(result.exit_code == EXIT_OK, result.message, tuple(result.files), gains,
-                      result.code)
+                 ("loop period", f"{summary.gains.period:.6g} s"))
+    return FinishView(summary.exit_code == EXIT_OK, summary.message, tuple(summary.files),
+                      gains, summary.code)
 
 
-class _DictProposal:
-    """A result.json proposal entry read like a design.Proposal (for ProposalRow.of)."""
-
-    def __init__(self, d: dict[str, Any]) -> None:
-        from autotune.core.pid import PidGains
-
-        self.name = str(d.get("name", "?"))
-        self.gains = PidGains(float(d.get("kp", 0.0)), float(d.get("ki", 0.0)),
-                              float(d.get("kd", 0.0)))
-        self.predicted = {k: float(v) for k, v in (d.get("predicted") or {}).items()
-                          if isinstance(v, (int, float)) and not isinstance(v, bool)}
-        self.violations = list(d.get("violations") or [])
-        self.default = bool(d.get("default", False))
-        b = d.get("setpoint_weight", 1.0)
-        self.setpoint_weight = float(b) if isinstance(b, (int, float)) else 1.0
-
-
-def run_job(cfg: Any, settings: JobSettings, console: Console | None = None,
-            stdin: Any = None, term: Terminal | None = None) -> JobResult:
-    """Run a bench job on the terminal (or in plain lines), print the finish screen and
-    return how it ended (`exit_code`, one-line `message`)."""
+def run_job(request: JobRequest, console: Console | None = None, stdin: Any = None,
+            term: Terminal | None = None) -> JobOutcome:
+    """Run a job on the terminal (full screen, or plain lines when stdout is not a terminal),
+    then print the finish screen; the JobOutcome says how it ended."""
     term = term or Terminal(console, stdin)
-    job = BenchJob(cfg, settings, term)
+    op = TerminalOperator(term)
     with term:
-        try:
-            result = job.run()
-        except KeyboardInterrupt:
-            result = JobResult(EXIT_ABORTED, "interrupted", list(job.files))
-    view = finish_view(result)
-    if term.captured is not None:
-        term.captured["finish"] = lambda w, h: screens.finish_screen(view, w)
-    if term.rich:
-        last = job.attempts[-1].view if job.attempts else None
-        if last is not None and result.exit_code == EXIT_OK:
-            term.console.print(screens.step_screen(last, *term.size()))
-        term.console.print(screens.finish_screen(view, term.size()[0]))
-    else:
-        term.lines(plain.finish_lines(view))
-    return result
+        outcome = TuningJob(request, op).run()
+    summary = op.summary
+    if summary is not None:
+        view = finish_view(summary)
+        if term.captured is not None:
+            term.captured["finish"] = lambda w, h: screens.finish_screen(view, w)
+        if term.rich:
+            if op.last_step is not None and summary.exit_code == EXIT_OK:
+                term.console.print(screens.step_screen(op.last_step, *term.size()))
+            term.console.print(screens.finish_screen(view, term.size()[0]))
+        else:
+            term.lines(plain.finish_lines(view))
+    return outcome
 
 
-__all__ = ["ABORT", "BenchJob", "JobResult", "JobSettings", "KeyRouter", "Terminal",
-           "finish_view", "run_job"]
+__all__ = ["ABORT", "KeyRouter", "Terminal", "TerminalOperator", "finish_view", "run_job"]

@@ -13,7 +13,8 @@ from pathlib import Path
 
 from rich.console import Console, RenderableType
 
-from autotune.ui.app import JobSettings, Terminal, run_job
+from autotune.job.requests import JobRequest
+from autotune.ui.app import Terminal, run_job
 from autotune.ui.theme import BENCH_THEME
 
 Builder = Callable[[int, int], RenderableType]
@@ -52,13 +53,13 @@ def export_svgs(captured: dict[str, Builder], out_dir: Path, width: int = 100,
     return written
 
 
-def record_demo(cfg: object, settings: JobSettings, width: int = 100, height: int = 32
+def record_demo(request: JobRequest, width: int = 100, height: int = 32
                 ) -> tuple[int, dict[str, Builder]]:
-    """Run the job unattended on an in-memory terminal; (exit code, captured screens)."""
+    """Run the job unattended (request.yes) on an in-memory terminal; (exit code, captured
+    screens)."""
     console = Console(file=io.StringIO(), width=width, height=height, force_terminal=True,
                       color_system="truecolor")
     term = Terminal(console, stdin=io.StringIO(), rich=True)
     term.captured = {}
-    settings.yes = True
-    result = run_job(cfg, settings, term=term)
+    result = run_job(request, term=term)
     return result.exit_code, term.captured

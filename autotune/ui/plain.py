@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from autotune.core.progress import Phase, RunSnapshot
-from autotune.ui.views import FinishView, ProposalsView, StartView, StepView
+from autotune.ui.views import ConfirmView, FinishView, ProposalsView, StartView, StepView
 from autotune.ui.widgets import LIMIT_LABELS, estimate_changes, fmt, phase_label
 
 ABORT_HINT = "stop keys: Space, Esc, q, Ctrl-C (the physical cut-off is the real stop)"
@@ -112,7 +112,7 @@ def proposals_lines(view: ProposalsView) -> list[str]:
     """The proposals table as lines; the default marked with '*', violations after '!'."""
     lines = [f"identified Ku {fmt(view.ku)}, Tu {fmt(view.tu)} s"
              + (f", model {view.model}" if view.model else ""),
-             f"Ms target {view.ms_target:.2f}, detune x{view.detune:.2f}"
+             f"Ms target {view.ms_target:.2f}"
              + (f", spec {view.spec}" if view.spec else ""),
              f"{'#':>2}  {'design':<12}{'kp':>10}{'ki /s':>10}{'kd s':>10}{'b':>6}{'Ms':>7}"
              f"{'GM':>7}{'PM deg':>8}{'OS %':>7}{'tr s':>8}{'ts s':>8}{'u peak':>8}  flags"]
@@ -153,9 +153,16 @@ def step_lines(view: StepView) -> list[str]:
         label = f"{r.name} ({r.unit})"
         diff = "—" if r.difference is None else f"{r.difference:+.3g}"
         lines.append(f"  {label:<20}{fmt(r.measured, 3):>11}{fmt(r.predicted, 3):>11}{diff:>12}")
+    if view.detune_hint:
+        lines.append(f"  detune would run {view.detune_hint}")
     if view.message and v is not None:
         lines.append(view.message)
     return lines
+
+
+def confirm_lines(view: ConfirmView) -> list[str]:
+    """The confirmation before power as lines (the prompt follows)."""
+    return [view.action, "before the motor moves:", *(f"  - {c}" for c in view.cautions)]
 
 
 def finish_lines(view: FinishView) -> list[str]:

@@ -19,7 +19,7 @@ from rich.text import Text
 from autotune.core.progress import RunSnapshot
 from autotune.ui import theme
 from autotune.ui.chart import BrailleChart, Series
-from autotune.ui.views import FinishView, ProposalsView, StartView, StepView
+from autotune.ui.views import ConfirmView, FinishView, ProposalsView, StartView, StepView
 from autotune.ui.widgets import (
     alarm_advice,
     alarm_banner,
@@ -44,10 +44,10 @@ START_KEYS = (("Y", "all true: start"),)
 PROPOSAL_KEYS = (
     ("1-9 Tab", "choose"),
     ("m M", "Ms"),
-    ("d D", "detune"),
-    ("Enter", "step"),
+    ("s", "step with the chosen"),
 )
 STEP_KEYS = (("a", "accept"), ("d", "detune"), ("o", "other"), ("r", "repeat"))
+CONFIRM_KEYS = (("Y", "power the motor"), ("any other", "back"))
 ALARM_KEYS = (("Enter", "leave"),)
 
 # Predicted figures shown for each proposal: key, column title, digits; the wide set adds more.
@@ -202,8 +202,6 @@ def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = 
     knobs = Text()
     knobs.append("Ms target ", style=theme.MUTED)
     knobs.append(f"{view.ms_target:.2f}", style=f"bold {theme.PV}")
-    knobs.append("   detune ", style=theme.MUTED)
-    knobs.append(f"×{view.detune:.2f}", style=f"bold {theme.PV}")
     if view.spec:
         knobs.append(f"   spec {view.spec}", style=theme.MUTED)
     knobs.append("   ◆", style=f"bold {theme.OK}")
@@ -217,13 +215,10 @@ def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = 
     ]
     if view.rows:
         sel = view.rows[min(max(view.selected, 0), len(view.rows) - 1)]
-        f = view.detune
         chosen = Text()
         chosen.append(f"chosen {sel.name}", style="bold")
-        chosen.append(f"  kp {fmt(sel.kp * f)}  ki {fmt(sel.ki * f)} /s  kd {fmt(sel.kd * f)} s"
+        chosen.append(f"  kp {fmt(sel.kp)}  ki {fmt(sel.ki)} /s  kd {fmt(sel.kd)} s"
                       f"  b {sel.setpoint_weight:.2f}")
-        if f != 1.0:
-            chosen.append(f"  (×{f:.2f})", style=theme.MUTED)
         parts.append(chosen)
         if sel.violations:
             parts.append(Text("✗ " + "; ".join(sel.violations), style=f"bold {theme.BAD}"))
@@ -301,7 +296,7 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
     checks = verdict_checks(view.verdict, one_line=not side_by_side)
     fixed = 4 + 3 + (len(view.rows) + 1) + (0 if side_by_side else 1) + (1 if view.message else 0)
     chart_h = max(4, min(14, height - fixed))
-    keys = (("a", "accept"), ("d", f"detune ×{view.detune:.2f}"), ("o", "other"), ("r", "repeat"))
+    keys = view.keys or STEP_KEYS
     gains = Text()
     gains.append(f"{view.name}", style="bold")
     gains.append(f"  kp {fmt(view.kp)}  ki {fmt(view.ki)} /s  kd {fmt(view.kd)} s", style=theme.MUTED)
@@ -321,9 +316,36 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
         parts.append(lower)
     else:
         parts += [step_figures_table(view.rows), checks]
+    if view.detune_hint and any(k == "d" for k, _ in keys):
+        parts.append(Text.assemble(("d runs the gentler design ", theme.MUTED),
+                                   view.detune_hint))
     if view.message:
         parts.append(Text(view.message, style=theme.WARN))
     return Group(*parts)
+
+
+def confirm_screen(view: ConfirmView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
+                   ) -> Group:
+    """The deliberate confirmation before the motor is powered: what will run, the cautions,
+    and the one key that goes ahead."""
+    width = max(width, MIN_WIDTH)
+    what = Text(view.action, style="bold")
+    cautions = Text()
+    for i, line in enumerate(view.cautions):
+        cautions.append("▸ ", style=f"bold {theme.WARN}")
+        cautions.append(line + ("\n" if i < len(view.cautions) - 1 else ""))
+    confirm = Text()
+    confirm.append(" Y ", style=theme.KEYCAP)
+    confirm.append(" powers the motor. ", style="bold")
+    confirm.append("Any other key goes back; nothing moves.", style=theme.MUTED)
+    return Group(
+        header("power the motor?"),
+        key_bar(CONFIRM_KEYS),
+        what,
+        Panel(cautions, title=Text(" before the motor moves ", style=f"bold {theme.WARN}"),
+              title_align="left", border_style=theme.WARN, box=HEAVY, padding=(0, 1)),
+        confirm,
+    )
 
 
 def finish_screen(view: FinishView, width: int = MIN_WIDTH) -> Group:

@@ -76,6 +76,25 @@ class ProposalRow:
             setpoint_weight=float(getattr(proposal, "setpoint_weight", 1.0)),
         )
 
+    @classmethod
+    def of_dict(cls, d: Mapping[str, Any]) -> ProposalRow:
+        """The row of a result.json proposal entry (non-numeric figures left out)."""
+        pred = d.get("predicted") if isinstance(d.get("predicted"), Mapping) else {}
+        b = d.get("setpoint_weight", 1.0)
+        flags = [str(v) for v in d.get("violations") or ()]
+        if d.get("runnable") is False or pred.get("stable") is False:
+            flags.insert(0, "not runnable: " + str(d.get("why_not")
+                                                   or "closed loop unstable on the model"))
+        return cls(
+            name=str(d.get("name", "?")),
+            kp=float(d.get("kp", 0.0)), ki=float(d.get("ki", 0.0)), kd=float(d.get("kd", 0.0)),
+            predicted={k: float(v) for k, v in pred.items()
+                       if isinstance(v, int | float) and not isinstance(v, bool)},
+            violations=tuple(flags),
+            default=bool(d.get("default", False)),
+            setpoint_weight=float(b) if isinstance(b, int | float) else 1.0,
+        )
+
 
 @dataclass(frozen=True)
 class ProposalsView:
@@ -84,7 +103,6 @@ class ProposalsView:
     rows: tuple[ProposalRow, ...]
     selected: int = 0
     ms_target: float = 1.4
-    detune: float = 1.0  # factor applied to the chosen gains (1 = as designed)
     ku: float | None = None  # output units per PV unit
     tu: float | None = None  # s
     model: str = ""  # fitted model in words
@@ -113,8 +131,17 @@ class StepView:
     pred_y: tuple[float, ...] = ()
     rows: tuple[Any, ...] = ()
     verdict: Any = None
-    detune: float = 0.7  # factor the detune key applies
+    detune_hint: str = ""  # what the detune key would run ("" : nothing gentler)
+    keys: tuple[tuple[str, str], ...] = ()  # (key cap, what it does) offered now
     message: str = ""
+
+
+@dataclass(frozen=True)
+class ConfirmView:
+    """The confirmation before the motor is powered: what will run, in words."""
+
+    action: str
+    cautions: tuple[str, ...] = CAUTIONS
 
 
 @dataclass(frozen=True)

@@ -30,6 +30,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from autotune.config import config_from_dict  # noqa: E402
+from autotune.job.job import Quiet, TuningJob, tune_request  # noqa: E402
 from autotune.job.powered import PoweredRun, RunOptions  # noqa: E402
 from autotune.job.tune import TuneRun  # noqa: E402
 from autotune.recorder import read_session  # noqa: E402
@@ -49,7 +50,7 @@ def run(faults: str, cfg: dict[str, Any], speed: float, tmp: Path, name: str
     config = config_from_dict(base, f"{name}.toml")
     opts = RunOptions(port="sim", yes=True, out_dir=tmp / name, plant="cart-wheel",
                       speed=speed, faults=faults, keys=False)
-    tr = TuneRun(config, opts, say=lambda line: None, analyse=False)
+    job = TuningJob(tune_request(config, opts), Quiet(), analyse=False)
     marks: dict[str, float] = {}
     orig = PoweredRun.request_stop
 
@@ -61,11 +62,12 @@ def run(faults: str, cfg: dict[str, Any], speed: float, tmp: Path, name: str
 
     PoweredRun.request_stop = request_stop  # type: ignore[method-assign]
     try:
-        outcome = tr.execute()
+        outcome = job.run()
     finally:
         PoweredRun.request_stop = orig  # type: ignore[method-assign]
     s = read_session(outcome.session_path) if outcome.session_path else None
-    return outcome, tr, s, marks
+    assert job.stages is not None
+    return outcome, job.stages, s, marks
 
 
 def event_t(s: Any, kind: str) -> float | None:

@@ -18,8 +18,8 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from autotune.commands import demo  # noqa: E402
+from autotune.job.requests import BoardRequest, JobRequest  # noqa: E402
 from autotune.simdevice import SIM  # noqa: E402
-from autotune.ui.app import JobSettings  # noqa: E402
 from autotune.ui.export import export_svgs, record_demo  # noqa: E402
 
 
@@ -39,14 +39,11 @@ def main() -> int:
     here = Path.cwd()
     with tempfile.TemporaryDirectory() as tmp:
         os.chdir(tmp)  # the finish screen then shows the short relative paths a user would see
-        settings = JobSettings(port=SIM, out_dir=Path("autotune-sessions/demo"), yes=True,
-                               plant=args.plant,
-                               speed=args.speed, seed=args.seed, simulated=True,
-                               label="a pty (started after Y)",
-                               device=f"simulated {args.plant} board",
-                               settle_band=demo.SETTLE_BAND.get(args.plant))
+        req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None,
+                                                     args.seed),
+                         out_dir=Path("autotune-sessions/demo"), verb="demo", yes=True)
         try:
-            code, captured = record_demo(cfg, settings, args.width, args.height)
+            code, captured = record_demo(req, args.width, args.height)
         finally:
             os.chdir(here)
     print(f"demo exit code {code}; screens captured: {', '.join(sorted(captured))}")

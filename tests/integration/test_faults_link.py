@@ -15,8 +15,10 @@ import numpy as np
 
 from autotune.config import config_from_dict
 from autotune.errors import EXIT_LINK
+from autotune.job.job import JobOutcome as TuneOutcome
+from autotune.job.job import run_tune
 from autotune.job.powered import RunOptions
-from autotune.job.tune import TuneOutcome, TuneRun
+from autotune.job.tune import TuneRun
 from autotune.recorder import Session, read_session
 
 SPEED = 20.0
@@ -41,8 +43,9 @@ def run_faulty(tmp_path: Path, faults: str | None, cfg: dict[str, Any] | None = 
     config = config_from_dict(merged(cfg or {}), "test.toml")
     opts = RunOptions(port=port, yes=True, out_dir=tmp_path / name, plant=plant, speed=speed,
                       faults=faults, keys=False)
-    tr = TuneRun(config, opts, say=lambda line: None, analyse=False)
-    outcome = tr.execute()
+    outcome = run_tune(config, opts, say=lambda line: None, analyse=False)
+    tr = outcome.stages
+    assert tr is not None, outcome
     assert outcome.session_path is not None, outcome
     return outcome, tr, read_session(outcome.session_path)
 

@@ -24,8 +24,8 @@ import numpy as np
 
 from autotune.config import config_from_dict
 from autotune.core.progress import Phase
+from autotune.job.job import Quiet, TuningJob, tune_request
 from autotune.job.powered import RunOptions
-from autotune.job.tune import TuneRun
 from autotune.recorder import read_session
 
 SOAK_SECONDS = float(os.environ.get("AUTOTUNE_SOAK_SECONDS", "3600"))
@@ -66,7 +66,6 @@ def test_soak_noisy_link(tmp_path: Path) -> None:
                       speed=SPEED, faults=f"corrupt={CORRUPT},corrupt_rx=0.002,jitter=0.01,"
                       "seed=11", keys=False)
     memory: list[tuple[int, int]] = []  # (relay samples so far, traced bytes)
-    tr: TuneRun
 
     def on_update(snap: Any) -> None:
         # tracing from the relay phase on (it slows the host; the prechecks are not what
@@ -74,11 +73,13 @@ def test_soak_noisy_link(tmp_path: Path) -> None:
         if snap.phase is Phase.RELAY and not tracemalloc.is_tracing():
             tracemalloc.start(1)
         if tracemalloc.is_tracing():
-            memory.append((len(tr.relay_data.t), tracemalloc.get_traced_memory()[0]))
+            tr = job.stages
+            n = len(tr.relay_data.t) if tr is not None else 0
+            memory.append((n, tracemalloc.get_traced_memory()[0]))
 
-    tr = TuneRun(cfg, opts, on_update=on_update, say=lambda line: None, analyse=False)
+    job = TuningJob(tune_request(cfg, opts), Quiet(lambda line: None, on_update), analyse=False)
     try:
-        outcome = tr.execute()
+        outcome = job.run()
     finally:
         tracemalloc.stop()
 
@@ -96,6 +97,8 @@ def test_soak_noisy_link(tmp_path: Path) -> None:
     assert s.t[relay][-1] - s.t[relay][0] >= 0.95 * SOAK_SECONDS
 
     # counters consistent
+    tr = job.stages
+    assert tr is not None and tr.run is not None
     st = tr.run.link.stats()
     assert st.samples_dropped == 0 and st.handler_errors == 0
     assert s.t.size <= st.samples_received  # only frames that passed the CRC were recorded

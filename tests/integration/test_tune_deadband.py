@@ -24,7 +24,9 @@ def _ultimate(kv: float, tau: float, delay: float) -> tuple[float, float]:
 def test_mast_pan_converges_with_deadband_measured(tmp_path: Path) -> None:
     out = tmp_path / "run"
     cfg = tmp_path / "tune.toml"
-    cfg.write_text("[prechecks]\nbreakaway = true\n")
+    # a generous watchdog (device time): at --speed 10 the default 0.5 s is 50 ms of wall
+    # clock, which a busy test machine may take from the host between two heartbeats
+    cfg.write_text("[prechecks]\nbreakaway = true\n[safety]\nwatchdog = 2.0\n")
     proc = subprocess.run([sys.executable, "-m", "autotune", "tune", "--config", str(cfg),
                            "--port", "sim", "--plant",
                            "mast-pan", "--yes", "--speed", "10", "--seed", "1", "--no-step",

@@ -1,15 +1,13 @@
-"""Small pure pieces of the tune runner: loop choice, the steady-state test, the line printer."""
+"""Small pure pieces of the tune runner: loop choice, the steady-state test."""
 
 from __future__ import annotations
 
-import io
 from dataclasses import dataclass
 
 import pytest
 
-from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
 from autotune.errors import UserError
-from autotune.job.tune import LinePrinter, choose_loop, steady_cycles
+from autotune.job.tune import choose_loop, steady_cycles
 
 
 def test_choose_loop() -> None:
@@ -43,18 +41,3 @@ def test_steady_cycles() -> None:
     assert steady_cycles(wobble, 0.02, min_cycles=4, tick=0.01, resolution=0.05)
     jumpy = [C(0.5, 1.0), C(0.5, 1.0), C(0.6, 1.0), C(0.6, 1.0)]
     assert not steady_cycles(jumpy, 0.02, min_cycles=4, tick=0.01, resolution=0.05)
-
-
-def test_line_printer_one_line_per_change() -> None:
-    buf = io.StringIO()
-    p = LinePrinter(buf)
-    p(RunSnapshot(phase=Phase.RELAY, message="device loop"))
-    p(RunSnapshot(phase=Phase.RELAY, message="device loop"))  # nothing new
-    est = (CycleEstimate(1, 0.5, 1.0, 40.0, 0.5),)
-    p(RunSnapshot(phase=Phase.RELAY, message="device loop", cycle=1, estimates=est))
-    p(RunSnapshot(phase=Phase.DONE, message="stopped", alarm="CUT POWER"))
-    lines = buf.getvalue().splitlines()
-    assert lines == ["[relay]: device loop",
-                     "  cycle 1: period 0.5 s, peak-to-peak 1, Ku ~ 40, Tu ~ 0.5 s",
-                     "[done]: stopped", "!! CUT POWER"]
-    assert "\x1b" not in buf.getvalue()

@@ -13,8 +13,9 @@ import pytest
 
 from autotune.config import config_from_dict
 from autotune.errors import EXIT_FAILED, EXIT_OK
+from autotune.job.job import JobOutcome as TuneOutcome
+from autotune.job.job import run_tune
 from autotune.job.powered import RunOptions
-from autotune.job.tune import TuneOutcome, run_tune
 from autotune.recorder import read_result, read_session
 
 TICK = 0.01  # s, the mock device's default period
