@@ -42,8 +42,9 @@ y_b = y_0 + b (y_1 - y_0); a saturating loop is checked again tick by tick with 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 
@@ -81,6 +82,25 @@ class DesignSpec:
     setpoint_weight: float | None = None
     tracking_time: float | None = None
     pv_noise: float = 0.0
+
+
+def spec_from_config(design_cfg: Mapping[str, Any], output_limit: float | None,
+                     target_amplitude: float | None, ts: float | None, **extra: Any
+                     ) -> DesignSpec:
+    """DesignSpec from the config's [design] table (ms_target, max_overshoot (%),
+    max_settling_time (s), step_size (PV units; None = the relay's target amplitude)), the
+    output limit (output units), the loop period ts (s) and any further DesignSpec fields
+    (`extra`, e.g. n, setpoint_weight); None leaves a field at its default."""
+    kw: dict[str, Any] = {
+        "ms_target": design_cfg.get("ms_target"),
+        "max_overshoot": design_cfg.get("max_overshoot"),
+        "max_settling_time": design_cfg.get("max_settling_time"),
+        "step_size": design_cfg.get("step_size") or target_amplitude,
+        "output_limit": output_limit,
+        "ts": ts, **extra,
+    }
+    optional = ("max_overshoot", "max_settling_time", "ts", "setpoint_weight", "tracking_time")
+    return DesignSpec(**{k: v for k, v in kw.items() if v is not None or k in optional})
 
 
 DEFAULT_OVERSHOOT_TARGET = 10.0  # %, for the choice of b without a spec (common practice, no source)
