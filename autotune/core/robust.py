@@ -367,10 +367,13 @@ def _point_exclusions(a: np.ndarray, b: np.ndarray, u: np.ndarray, r: float
         g = np.array([bb, 2.0 * (ck * np.conj(bk)).real, abs(ck) ** 2])
         q = h - uk * uk * g
         q[-1] -= r * r
-        poly = np.polysub(np.polymul(q, q), 4.0 * r * r * uk * uk * g)
+        # without uncertainty the boundary is q = 0 (a quadratic, as on the model's grid)
+        poly = q if uk == 0.0 else np.polysub(np.polymul(q, q), 4.0 * r * r * uk * uk * g)
         roots = np.roots(np.trim_zeros(poly, "f")) if np.any(poly != 0.0) else np.array([])
+        # near-real roots (a double root splits into a pair) are kept: an extra edge only adds
+        # an interval tested at its middle
         real = sorted(float(z.real) for z in roots
-                      if abs(z.imag) <= 1e-9 * max(1.0, abs(z)) and z.real > 0.0)
+                      if abs(z.imag) <= 1e-4 * max(1.0, abs(z)) and z.real > 0.0)
         edges = [0.0, *real, 2.0 * real[-1] + 1.0 if real else 1.0]
 
         def margin(k: float, ak: complex = ak, bk: complex = bk, ck: complex = ck,
