@@ -266,3 +266,29 @@ def test_given_gains_verdict() -> None:
     wild = design.evaluate([empty], "given", PidGains(200.0, 500.0, 0.0), spec)
     ok, sentence = design.gains_verdict(wild, spec)
     assert not ok and not wild.runnable and sentence.startswith("do not run")
+
+
+def test_detune_from_a_result_file_entry(tmp_path) -> None:
+    # The front ends hold result.json, not objects: the condition and the proposal are read
+    # back from it (JSON round trip, nan written as null) and detune the same way.
+    from autotune.core.conditions import condition_of_result
+    from autotune.recorder import read_result, write_result
+
+    spec = design.DesignSpec(ts=TS, step_size=0.5)
+    cond = design.Condition("empty", EMPTY, *EMPTY.ultimate_point())
+    res = design.design_proposals([cond], spec)
+    path = write_result(tmp_path / "result.json", {
+        "ultimate_gain": cond.ku, "ultimate_period": cond.tu,
+        "model": {"kind": "sopdt", "num": list(EMPTY.num), "den": list(EMPTY.den),
+                  "delay": EMPTY.delay},
+        "fourier": [], "proposals": [p.as_dict() for p in res.proposals]})
+    back = read_result(path)
+    again = condition_of_result("empty", back)
+    assert again.model == EMPTY and again.ku == cond.ku
+    entry = next(p for p in back["proposals"] if p["default"])
+    current = design.Proposal.from_dict(entry)
+    direct = design.detune_design([cond], res.get(res.default or ""), spec)
+    via_file = design.detune_design([again], current, spec)
+    assert direct is not None and via_file is not None
+    assert via_file.name == direct.name == "robust-pid-ms1.25"
+    assert via_file.gains.ki == pytest.approx(direct.gains.ki, rel=1e-9)

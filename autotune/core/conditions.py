@@ -16,9 +16,11 @@ for a normal error; common practice, no source). None: unknown, the change is no
 
 from __future__ import annotations
 
+import cmath
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -129,6 +131,25 @@ def condition_of_analysis(name: str, analysis: Any) -> Condition:
     model = analysis.model.tf
     points = measured_points(analysis.fourier)
     return Condition(name, model, float(analysis.ku), float(analysis.tu), points,
+                     model_fits_points(model, points))
+
+
+def condition_of_result(name: str, result: Mapping[str, Any]) -> Condition:
+    """The design's view of a result.json (a `tune` or `analyze` result): `model` (num, den,
+    delay), `ultimate_gain`, `ultimate_period` and the `fourier` points (w rad/s, magnitude,
+    phase_deg, snr). Raises ValueError when the result holds no model."""
+    m = result.get("model")
+    if not isinstance(m, Mapping) or "num" not in m or "den" not in m:
+        raise ValueError("the result holds no fitted model")
+    model = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m.get("delay") or 0.0))
+    fourier = [SimpleNamespace(w=float(p["w"]),
+                               g=float(p["magnitude"]) * cmath.exp(1j * math.radians(
+                                   float(p["phase_deg"]))), snr=float(p["snr"]))
+               for p in result.get("fourier") or []]
+    points = measured_points(fourier)
+    ku, tu = result.get("ultimate_gain"), result.get("ultimate_period")
+    return Condition(name, model, None if ku is None else float(ku),
+                     None if tu is None else float(tu), points,
                      model_fits_points(model, points))
 
 

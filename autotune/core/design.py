@@ -169,6 +169,19 @@ class Proposal:
         """Overshoot and settling time within the spec on every condition."""
         return all(c.meets_spec for c in self.per_condition)
 
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> Proposal:
+        """A proposal back from its result.json entry (`as_dict`); the per-session part is not
+        read back (evaluate the gains again for it)."""
+        pred = {k: (math.nan if v is None else v) for k, v in
+                dict(d.get("predicted") or {}).items()
+                if v is None or isinstance(v, bool | int | float)}
+        return cls(str(d.get("name", "")), PidGains(float(d["kp"]), float(d.get("ki", 0.0)),
+                                                    float(d.get("kd", 0.0))),
+                   pred, list(d.get("violations") or []), bool(d.get("default", False)),
+                   str(d.get("source", "")), float(d.get("setpoint_weight", 1.0)),
+                   bool(d.get("runnable", True)), str(d.get("not_runnable_reason") or ""))
+
     def as_dict(self, n: float = 10.0) -> dict[str, object]:
         """The result.json entry: name, kp, ki, kd, setpoint_weight (b), predicted, runnable
         (with not_runnable_reason), reliable, plus the other gain forms; over several
@@ -654,7 +667,9 @@ def detune_design(conditions: Sequence[Condition], current: Proposal, spec: Desi
     """
     conds = tuple(conditions)
     at_points = float(current.predicted.get("ms_points", math.nan))
-    ms_now = max(float(current.predicted["ms"]), 0.0 if math.isnan(at_points) else at_points)
+    ms_model = float(current.predicted.get("ms", math.inf))
+    ms_now = max(math.inf if math.isnan(ms_model) else ms_model,
+                 0.0 if math.isnan(at_points) else at_points)
     if not current.predicted.get("stable", True):
         ms_now = math.inf
     pid = current.gains.kd > 0.0 and not remove_derivative
