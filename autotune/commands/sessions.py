@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from autotune.commands.analyze import session_inputs
+from autotune.commands.analyze import _finite, _get, session_inputs
 from autotune.core import analysis, design
 from autotune.core.conditions import (
     FIGURES,
@@ -48,18 +48,6 @@ class LoadedSession:
     condition: design.Condition | None
     analysis: analysis.RelayAnalysis | None = None
     fields: dict[str, Any] = field(default_factory=dict)
-
-
-def _get(d: Any, *keys: str) -> Any:
-    for k in keys:
-        if not isinstance(d, dict) or k not in d:
-            return None
-        d = d[k]
-    return d
-
-
-def _finite(x: Any) -> float | None:
-    return float(x) if isinstance(x, (int, float)) and math.isfinite(float(x)) else None
 
 
 def loop_of(header: dict[str, Any]) -> LoopIdentity:
@@ -216,7 +204,8 @@ def run_compare(paths: Sequence[str], json_out: str | None, deadband: float | No
 def _designed_on(loaded: Sequence[LoadedSession]) -> list[LoadedSession]:
     used = [s for s in loaded if s.condition is not None]
     if not used:
-        raise UserError("no session has a converged relay: nothing to design on; tune again",
+        raise UserError("no session has a converged relay: nothing to design on or judge "
+                        "gains with; tune again",
                         EXIT_FAILED)
     return used
 

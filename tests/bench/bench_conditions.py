@@ -109,14 +109,14 @@ def main() -> None:
     for names in SETS:
         print(f"\nsessions {' + '.join(names)}"
               f"{'' if names in IN_RANGE else ' (beyond the 2x gain range)'}")
-        hdr = f"  {'design':<32}{'ki':>8}" + "".join(f"{'Ms on ' + n:>16}" for n in names)
+        hdr = f"  {'design':<32}{'ki':>8}" + "".join(f"{'Ms on ' + n:>19}" for n in names)
         print(hdr)
         for n in names:
             p = single[n]
             if p is None:
                 print(f"  {'alone on ' + n:<32}   (no default)")
                 continue
-            cells = "".join(f"{true_ms(m, p.gains):>16.3f}" for m in names)
+            cells = "".join(f"{true_ms(m, p.gains):>19.3f}" for m in names)
             print(f"  {'alone on ' + n + ' ' + p.name:<32}{p.gains.ki:>8.2f}{cells}")
         t1 = time.process_time()
         res = design.design_proposals([conds[n] for n in names], SPEC)
@@ -138,7 +138,7 @@ def main() -> None:
         good = max(ms) <= 1.5 and frac >= 0.85
         if names in IN_RANGE:
             ok_all &= good
-        cells = "".join(f"{v:>16.3f}" for v in ms)
+        cells = "".join(f"{v:>19.3f}" for v in ms)
         print(f"  {'joint ' + p.name:<32}{p.gains.ki:>8.2f}{cells}")
         print(f"  {'joint optimum on the truth':<32}{opt.gains.ki:>8.2f}  (its Ms {opt_ms:.3f})")
         print(f"  joint default ki / optimum {frac:.3f}; max Ms {max(ms):.3f}; design "
