@@ -25,7 +25,8 @@ A plant file has these tables (every table and key is optional; defaults shown):
     [faults]             # same keys as --faults (see mock_device.faults)
 
 Unknown tables or keys and wrong types raise MockConfigError naming the file and the key.
-Built-in scenarios (``cart-wheel``, ``mast-pan``) live in mock_device/scenarios/.
+Built-in scenarios (``cart-wheel``, ``cart-wheel-loaded``, ``mast-pan``) live in
+mock_device/scenarios/.
 """
 
 from __future__ import annotations
@@ -51,7 +52,7 @@ __all__ = [
     "parse_config",
 ]
 
-SCENARIOS = ("cart-wheel", "mast-pan")
+SCENARIOS = ("cart-wheel", "cart-wheel-loaded", "mast-pan")
 
 
 class MockConfigError(ValueError):
@@ -245,7 +246,7 @@ def _check(
 
 
 def load_config(plant: str | Path) -> MockConfig:
-    """Load a plant file, or a built-in scenario by name (``cart-wheel``, ``mast-pan``)."""
+    """Load a plant file, or a built-in scenario by name (see SCENARIOS)."""
     name = str(plant)
     if name in SCENARIOS:
         ref = resources.files("mock_device") / "scenarios" / f"{name}.toml"

@@ -370,16 +370,27 @@ def test_grid_nyquist_count_agrees_with_python_control_poles(plant: DelayedTF) -
     assert seen == {True, False}  # both outcomes exercised
 
 
-def test_unstable_model_still_gets_proposals() -> None:
+def test_unstable_model_gets_proposals_but_no_default() -> None:
     # An open-loop unstable model (pole at +0.5, dead time 1): no PI reaches Ms 1.4 (the
     # classical limit: a dead time beyond about the unstable time constant), so the robust
-    # designs are dropped, the rules remain and exactly one default is named.
+    # designs are dropped and the rules remain; none keeps Ms within the target, so no default
+    # is named and the result says what to do. Proposals unstable on the model are not
+    # runnable (python-control closed-loop poles agree on each one's stability).
     plant = DelayedTF((1.0,), (2.0, -1.0), 1.0)
     with pytest.raises(ValueError):
         robust.robust_pi(plant)
-    props = design.propose(1.5, 4.0, plant)  # ultimate point as a relay might report it
-    assert props and sum(p.default for p in props) == 1
-    assert all(not p.name.startswith("robust") for p in props)
+    res = design.design_proposals([design.Condition("unstable", plant, 1.5, 4.0)])
+    props = res.proposals
+    assert props and all(not p.name.startswith("robust") for p in props)
+    assert res.default is None and not any(p.default for p in props)
+    assert "do not run" in res.note
+    for p in props:
+        ref = np.max(control.feedback(_pc_loop(plant, p.gains), 1).poles().real) < 0
+        assert p.runnable == ref
+        assert p.as_dict()["runnable"] == ref
+        if not ref:
+            assert "unstable" in p.as_dict()["not_runnable_reason"]
+    assert any(not p.runnable for p in props)
 
 
 # ------------------------------------------------------------------ setpoint weight b

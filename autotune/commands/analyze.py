@@ -1,4 +1,7 @@
-"""`autotune analyze SESSION [--json FILE]`: the relay analysis offline, from a session file."""
+"""`autotune analyze SESSION [--json FILE]`: the relay analysis offline, from a session file.
+
+With several sessions (one design for all of them) or `--gains FILE` (given gains judged on
+the sessions) the work is in autotune.commands.sessions."""
 
 from __future__ import annotations
 
@@ -12,13 +15,21 @@ import numpy as np
 
 from autotune.errors import EXIT_OK, UserError
 
-HELP = "analyse a recorded relay session: ultimate gain and period, model, gain proposals"
+HELP = ("analyse recorded relay sessions: ultimate gain and period, model, gain proposals "
+        "(several sessions: one design for all; --gains: judge given gains)")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("session", metavar="SESSION", help="session.jsonl written by `tune`")
+    parser.add_argument("session", metavar="SESSION", nargs="+",
+                        help="session.jsonl written by `tune`; several sessions of one loop "
+                             "get one design that holds on all of them")
     parser.add_argument("--json", metavar="FILE", default=None,
-                        help="where to write result.json (default: result.json next to SESSION)")
+                        help="where to write result.json (default: result.json next to SESSION; "
+                             "with several sessions or --gains: written only when given)")
+    parser.add_argument("--gains", metavar="FILE", default=None,
+                        help="a gains file written by the tool: judge those gains on the "
+                             "session's model and measured points (Ms, margins, predicted "
+                             "step and load response, verdict; exit 1 when they fail)")
     parser.add_argument("--deadband", metavar="U", type=float, default=None,
                         help="actuator dead zone to take out of the output before the analysis "
                              "(output units; default: the breakaway precheck's figure, as the "
@@ -112,6 +123,12 @@ def session_inputs(session: Any) -> dict[str, Any]:
 def run(args: argparse.Namespace) -> int:
     from autotune.core import analysis
     from autotune.recorder import read_session, write_result
+
+    if len(args.session) > 1 or args.gains:
+        from autotune.commands.sessions import run_several
+
+        return run_several(args)
+    args.session = args.session[0]
 
     session = read_session(args.session)
     inp = session_inputs(session)

@@ -38,8 +38,8 @@ def add_safety_options(p: argparse.ArgumentParser) -> None:
 def add_sim_options(p: argparse.ArgumentParser) -> None:
     """--plant, --speed, --faults and --seed for the built-in simulated board (`--port sim`)."""
     p.add_argument("--plant", metavar="NAME",
-                   help=f"for --port sim: scenario (cart-wheel, mast-pan) or plant TOML file "
-                        f"(default: {_C.plant})")
+                   help=f"for --port sim: scenario (cart-wheel, cart-wheel-loaded, mast-pan) "
+                        f"or plant TOML file (default: {_C.plant})")
     p.add_argument("--speed", type=float, metavar="X",
                    help=f"for --port sim: simulated time runs X times faster; with another "
                         f"port: the speed that simulated device was started with, so host "

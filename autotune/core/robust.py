@@ -15,8 +15,9 @@ Automatica 34, 1998), for PI and for PID with derivative filter.
 
 from __future__ import annotations
 
+import cmath
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -285,16 +286,125 @@ def _nyquist_verdict(plant: DelayedTF, gains: PidGains, n: float, ts: float | No
         hi *= 10.0
 
 
+# ---------------------------------------------------------------- measured points
+
+
+@dataclass(frozen=True)
+class MeasuredPoint:
+    """One measured point of the plant's frequency response.
+
+    w: angular frequency (rad/s; 0 = the static gain); g: G(j w) of the continuous plant (PV
+    units per output unit; the hold's delay not included, as the relay's harmonics give it);
+    uncertainty: relative bound on its error, |G_true(j w) - g| <= uncertainty |g|.
+    """
+
+    w: float
+    g: complex
+    uncertainty: float = 0.0
+
+
+# A point known no better than +/-50 % bounds nothing a design can use: left out of the design
+# (common practice, no source). Its clearance is still reported.
+MAX_POINT_UNCERTAINTY = 0.5
+
+
+def point_loop(point: MeasuredPoint, gains: PidGains, n: float = 10.0,
+               ts: float | None = None) -> complex:
+    """L = C g H at the point (discrete controller and hold when `ts` is given); at w = 0 (the
+    static gain) kp g without integral action, complex infinity with it."""
+    if point.w == 0.0:
+        return complex(math.inf) if gains.ki != 0.0 else complex(gains.kp * point.g)
+    w = np.array([point.w])
+    ib, db = controller_bases(w, ts, filter_time(gains, n))
+    c = gains.kp + gains.ki * ib + gains.kd * db
+    return complex((c * point.g * hold_response(w, ts))[0])
+
+
+def point_clearance(point: MeasuredPoint, gains: PidGains, n: float = 10.0,
+                    ts: float | None = None) -> float:
+    """Worst-case distance of the loop from -1 at a measured point over its uncertainty:
+    |1 + L| - u |L| (L = C g H there, u the relative uncertainty); +inf at the static gain with
+    integral action. The point meets an Ms bound when its clearance is at least 1/Ms; a
+    clearance <= 0 means -1 lies within the uncertainty (the loop may be unstable)."""
+    L = point_loop(point, gains, n, ts)
+    if not cmath.isfinite(L):
+        return math.inf
+    return float(abs(1.0 + L) - point.uncertainty * abs(L))
+
+
+def points_sensitivity(points: Sequence[MeasuredPoint], gains: PidGains, n: float = 10.0,
+                       ts: float | None = None) -> float:
+    """Worst-case Ms over the measured points: the largest 1/clearance (`point_clearance`),
+    inf when a clearance is <= 0, nan without points."""
+    if not points:
+        return math.nan
+    worst = min(point_clearance(p, gains, n, ts) for p in points)
+    return math.inf if worst <= 0.0 else 1.0 / worst
+
+
+def _usable(points: Sequence[MeasuredPoint]) -> list[MeasuredPoint]:
+    """The points that can bind a design with integral action: w > 0 and an uncertainty below
+    MAX_POINT_UNCERTAINTY (the static gain never binds one: |L(0)| is infinite)."""
+    return [p for p in points if p.w > 0.0 and 0.0 <= p.uncertainty < MAX_POINT_UNCERTAINTY]
+
+
+def _point_exclusions(a: np.ndarray, b: np.ndarray, u: np.ndarray, r: float
+                      ) -> list[tuple[float, float]]:
+    """Intervals of ki >= 0 that break the bound at measured points.
+
+    At a point, L = c + ki b with c = a - 1 (a = 1 + kp-and-kd part of L); the bound with the
+    point's relative uncertainty u is |a + ki b| - u |c + ki b| >= r. Its boundary solves a
+    quartic ((h - r^2 - u^2 g)^2 = 4 r^2 u^2 g with h = |a + ki b|^2, g = |c + ki b|^2, both
+    quadratics in ki); the real roots split ki >= 0 into intervals, each tested at its middle.
+    """
+    out: list[tuple[float, float]] = []
+    for ak, bk, uk in zip(np.atleast_1d(a), np.atleast_1d(b), np.atleast_1d(u), strict=True):
+        ck = ak - 1.0
+        bb = abs(bk) ** 2
+        if bb == 0.0:
+            continue
+        h = np.array([bb, 2.0 * (ak * np.conj(bk)).real, abs(ak) ** 2])
+        g = np.array([bb, 2.0 * (ck * np.conj(bk)).real, abs(ck) ** 2])
+        q = h - uk * uk * g
+        q[-1] -= r * r
+        # without uncertainty the boundary is q = 0 (a quadratic, as on the model's grid)
+        poly = q if uk == 0.0 else np.polysub(np.polymul(q, q), 4.0 * r * r * uk * uk * g)
+        roots = np.roots(np.trim_zeros(poly, "f")) if np.any(poly != 0.0) else np.array([])
+        # near-real roots (a double root splits into a pair) are kept: an extra edge only adds
+        # an interval tested at its middle
+        real = sorted(float(z.real) for z in roots
+                      if abs(z.imag) <= 1e-4 * max(1.0, abs(z)) and z.real > 0.0)
+        edges = [0.0, *real, 2.0 * real[-1] + 1.0 if real else 1.0]
+
+        def margin(k: float, ak: complex = ak, bk: complex = bk, ck: complex = ck,
+                   uk: float = uk) -> float:
+            return abs(ak + k * bk) - uk * abs(ck + k * bk) - r
+
+        for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+            if margin(0.5 * (lo + hi)) < 0.0:
+                if out and out[-1][1] >= lo:
+                    out[-1] = (out[-1][0], hi)
+                else:
+                    out.append((lo, hi))
+        if margin(edges[-1] * 2.0) < 0.0:  # u >= 1 (left out by _usable): nothing beyond
+            out.append((edges[-1], math.inf))
+    return out
+
+
 # ---------------------------------------------------------------- robust optimum
 
 
 @dataclass(frozen=True)
 class RobustDesign:
-    """The optimum found: gains, its Ms (on the same loop), closed-loop stability."""
+    """The optimum found: gains, Ms (the largest over the plants designed on), closed-loop
+    stability on every plant; ms_each: Ms per plant, in their order; ms_points: worst-case Ms
+    at the measured points over their uncertainty (`points_sensitivity`; nan without points)."""
 
     gains: PidGains
     ms: float
     stable: bool
+    ms_each: tuple[float, ...] = ()
+    ms_points: float = math.nan
 
 
 def _winding_test(plant: DelayedTF) -> bool:
@@ -322,14 +432,19 @@ def nyquist_stable(one_plus_l: np.ndarray, q: int, theta0: float) -> bool:
     return bool(abs(z) < 0.25)
 
 
-def _ki_sup(a: np.ndarray, b: np.ndarray, r: float, stable: Callable[[float], bool]) -> float:
+
+
+def _ki_sup(a: np.ndarray, b: np.ndarray, r: float, stable: Callable[[float], bool],
+            extra: Sequence[tuple[float, float]] = ()) -> float:
     """Largest ki >= 0 with |a + ki b| >= r at every grid frequency, in a stable component.
 
     At each frequency the condition excludes the interval of ki between the roots of a
-    quadratic; the admissible set is [0, inf) minus the union of these intervals, a union of
-    components. Within a component the Nyquist curve never meets the disc around -1, so the
-    number of encirclements (stability) is constant: one check per component decides it. The
-    supremum of the highest stable bounded component is returned (-inf if there is none).
+    quadratic; `extra` adds excluded intervals of other origin (the measured points, see
+    `_point_exclusions`). The admissible set is [0, inf) minus the union of these intervals,
+    a union of components. Within a component the Nyquist curves never meet the disc around
+    -1, so the number of encirclements (stability) is constant: one check per component
+    decides it. The supremum of the highest stable bounded component is returned (-inf if
+    there is none).
     """
     bb = np.abs(b) ** 2
     ab = (a * np.conj(b)).real
@@ -339,6 +454,9 @@ def _ki_sup(a: np.ndarray, b: np.ndarray, r: float, stable: Callable[[float], bo
     sq = np.sqrt(disc[sel])
     k1 = (-ab[sel] - sq) / bb[sel]
     k2 = (-ab[sel] + sq) / bb[sel]
+    if extra:
+        k1 = np.concatenate([k1, [lo for lo, _ in extra]])
+        k2 = np.concatenate([k2, [hi for _, hi in extra]])
     keep = k2 > 0
     if not np.any(keep):
         return -math.inf
@@ -357,10 +475,11 @@ def _ki_sup(a: np.ndarray, b: np.ndarray, r: float, stable: Callable[[float], bo
     return -math.inf
 
 
-def _stability_test(plant: DelayedTF, w: np.ndarray, g: np.ndarray, b: np.ndarray,
-                    ts: float | None, n: float) -> Callable[[np.ndarray, float, float, float], bool]:
-    """stable(1 + L on the grid, kp, ki, kd): the grid Nyquist count where it applies (ki > 0,
-    |L| < 0.5 at the top of the grid, see `nyquist_stable`), else the Padé closed-loop poles."""
+def _stability_test(plant: DelayedTF, ts: float | None, n: float
+                    ) -> Callable[[np.ndarray, float, float, float], bool]:
+    """stable(1 + L on the plant's grid, kp, ki, kd): the grid Nyquist count where it applies
+    (ki > 0, |L| < 0.5 at the top of the grid, see `nyquist_stable`), else the Padé
+    closed-loop poles."""
     winding = _winding_test(plant)
     q0 = plant.integrators
     g0 = plant.velocity_gain if q0 == 1 else (plant.static_gain if q0 == 0 else 0.0)
@@ -375,7 +494,50 @@ def _stability_test(plant: DelayedTF, w: np.ndarray, g: np.ndarray, b: np.ndarra
     return stable
 
 
-def _kp_upper(plant: DelayedTF, w: np.ndarray, g: np.ndarray, r: float) -> float:
+@dataclass(frozen=True)
+class _Grids:
+    """The plants' frequency grids side by side: w (rad/s), g = G H and b = g I (per unit ki)
+    concatenated; `cuts` the end index of each plant's stretch, `tests` each plant's
+    stability test (`_stability_test`)."""
+
+    w: np.ndarray
+    g: np.ndarray
+    b: np.ndarray
+    cuts: tuple[int, ...]
+    tests: tuple[Callable[[np.ndarray, float, float, float], bool], ...]
+
+    @classmethod
+    def build(cls, plants: Sequence[DelayedTF], ts: float | None, n: float, points: int,
+              span: tuple[float, float], step: int = 1) -> _Grids:
+        ws = [frequency_grid(p, ts, points, span)[::step] for p in plants]
+        gs = [p.freq_response(w) * hold_response(w, ts) for p, w in zip(plants, ws, strict=True)]
+        w = np.concatenate(ws)
+        g = np.concatenate(gs)
+        ib, _ = controller_bases(w, ts, 0.0)
+        cuts = tuple(int(c) for c in np.cumsum([x.size for x in ws]))
+        return cls(w, g, g * ib, cuts, tuple(_stability_test(p, ts, n) for p in plants))
+
+    def stretches(self) -> list[slice]:
+        return [slice(lo, hi) for lo, hi in zip((0, *self.cuts[:-1]), self.cuts, strict=True)]
+
+    def stable(self, opl: np.ndarray, kp: float, ki: float, kd: float) -> bool:
+        """Closed loop stable on every plant (1 + L given on the concatenated grid)."""
+        return all(test(opl[sl], kp, ki, kd)
+                   for test, sl in zip(self.tests, self.stretches(), strict=True))
+
+    def rolled(self, loop: np.ndarray) -> np.ndarray:
+        """Per row of `loop` (L on the grid): |L| < 0.5 at the top of every plant's stretch."""
+        tops = np.array(self.cuts) - 1
+        return np.all(np.abs(loop[:, tops]) < 0.5, axis=1)
+
+    def kp_upper(self, r: float) -> tuple[float, int]:
+        """The smallest `_kp_upper` over the plants and which plant gives it."""
+        ups = [_kp_upper(self.g[sl], r) for sl in self.stretches()]
+        i = int(np.argmin(ups))
+        return ups[i], i
+
+
+def _kp_upper(g: np.ndarray, r: float) -> float:
     """kp beyond which the P loop leaves the disc at the phase crossover: Ku (1 - 1/Ms)."""
     im = g.imag
     idx = np.nonzero((np.sign(im[:-1]) != np.sign(im[1:])) & (g.real[:-1] < 0))[0]
@@ -384,43 +546,84 @@ def _kp_upper(plant: DelayedTF, w: np.ndarray, g: np.ndarray, r: float) -> float
     return float(10.0 / np.min(np.abs(g)))
 
 
-def _verify(plant: DelayedTF, gains: PidGains, ms_target: float, n: float, ts: float | None
-            ) -> RobustDesign:
-    """Exact Ms of the design; scale ki (then all gains) down until Ms <= target (+0.002)."""
-    m = loop_margins(plant, gains, n, ts).ms
-    if m > ms_target + 0.002:
+@dataclass(frozen=True)
+class _Points:
+    """The usable measured points as arrays: w, gh = g H, gb = g H I, u."""
+
+    w: np.ndarray
+    gh: np.ndarray
+    gb: np.ndarray
+    u: np.ndarray
+
+    @classmethod
+    def build(cls, points: Sequence[MeasuredPoint], ts: float | None) -> _Points:
+        use = _usable(points)
+        w = np.array([p.w for p in use], dtype=float)
+        gh = np.array([p.g for p in use], dtype=complex) * hold_response(w, ts)
+        ib, _ = controller_bases(w, ts, 0.0)
+        return cls(w, gh, gh * ib, np.array([p.uncertainty for p in use], dtype=float))
+
+
+def design_figures(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint],
+                   gains: PidGains, n: float = 10.0, ts: float | None = None
+                   ) -> tuple[tuple[float, ...], float]:
+    """(Ms on each plant (inf where unstable is not decided here), worst-case Ms at the
+    points (nan without points))."""
+    return (tuple(loop_margins(p, gains, n, ts).ms for p in plants),
+            points_sensitivity(points, gains, n, ts))
+
+
+def _verify(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint], gains: PidGains,
+            ms_target: float, n: float, ts: float | None) -> RobustDesign:
+    """Exact Ms of the design on every plant and at the points; scale ki down until the largest
+    is <= target (+0.002)."""
+
+    def worst(g: PidGains) -> float:
+        each, at_points = design_figures(plants, _usable(points), g, n, ts)
+        return max(max(each), 0.0 if math.isnan(at_points) else at_points)
+
+    if worst(gains) > ms_target + 0.002:
         lo, hi = 0.0, 1.0
         for _ in range(40):
             mid = 0.5 * (lo + hi)
-            g = PidGains(gains.kp, gains.ki * mid, gains.kd)
-            if loop_margins(plant, g, n, ts).ms <= ms_target + 0.002:
+            if worst(PidGains(gains.kp, gains.ki * mid, gains.kd)) <= ms_target + 0.002:
                 lo = mid
             else:
                 hi = mid
         gains = PidGains(gains.kp, gains.ki * lo, gains.kd)
-        m = loop_margins(plant, gains, n, ts).ms
-    return RobustDesign(gains, m, is_stable(plant, gains, n, ts))
+    each, at_points = design_figures(plants, points, gains, n, ts)
+    stable = all(is_stable(p, gains, n, ts) for p in plants)
+    return RobustDesign(gains, max(each), stable, each, at_points)
 
 
-def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None) -> RobustDesign:
-    """PI with the largest ki subject to Ms <= ms_target (Åström, Panagopoulos and Hägglund
-    1998): for each kp the largest admissible ki follows in closed form from the circle
-    condition |1 + L(j w)| >= 1/Ms at every w (a quadratic in ki); the best kp is found on a
-    grid and refined by a bounded scalar search."""
+def robust_pi_set(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint] = (),
+                  ms_target: float = 1.4, ts: float | None = None) -> RobustDesign:
+    """PI with the largest ki subject to Ms <= ms_target on every plant and at every measured
+    point (with margin for its uncertainty, see `point_clearance`), the criterion of Åström,
+    Panagopoulos and Hägglund (1998) over a set of constraints.
+
+    For each kp the largest admissible ki follows in closed form from the circle condition
+    |1 + L(j w)| >= 1/Ms on every plant's grid (a quadratic in ki) and at the points (a
+    quartic); the best kp is found on a grid and refined by a bounded scalar search. Closed-loop
+    stability is required on every plant. Raises ValueError when no stable PI meets the bound.
+    """
+    plants = tuple(plants)
+    if not plants:
+        raise ValueError("a robust design needs at least one plant model")
     r = 1.0 / ms_target
-    w = frequency_grid(plant, ts)
-    g = plant.freq_response(w) * hold_response(w, ts)
-    ib, _ = controller_bases(w, ts, 0.0)
-    b = g * ib
-    kp_hi = _kp_upper(plant, w, g, r)
-
-    stable = _stability_test(plant, w, g, b, ts, 10.0)
+    grid = _Grids.build(plants, ts, 10.0, 3000, (1e-3, 40.0))
+    pts = _Points.build(points, ts)
+    kp_hi, _ = grid.kp_upper(r)
 
     def f(kp: np.ndarray) -> np.ndarray:
-        kp = np.atleast_1d(kp)
-        return np.array([_ki_sup(1.0 + k * g, b, r,
-                                 lambda ki, k=k: stable(1.0 + k * g + ki * b, k, ki, 0.0))
-                         for k in kp])
+        out = []
+        for k in np.atleast_1d(kp):
+            a = 1.0 + k * grid.g
+            extra = _point_exclusions(1.0 + k * pts.gh, pts.gb, pts.u, r) if pts.w.size else ()
+            out.append(_ki_sup(a, grid.b, r,
+                               lambda ki, k=k, a=a: grid.stable(a + ki * grid.b, k, ki, 0.0),
+                               extra))
+        return np.array(out)
 
     kps = np.linspace(0.0, kp_hi, 81)[1:]
     kis = f(kps)
@@ -430,14 +633,17 @@ def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None)
                                    method="bounded", options={"xatol": kp_hi * 1e-6})
     kp, ki = (res.x, -res.fun) if -res.fun > kis[j] else (kps[j], kis[j])
     if not (math.isfinite(ki) and ki > 0):
-        raise ValueError(f"no stable PI reaches Ms <= {ms_target:g} on this model")
-    return _verify(plant, PidGains(float(kp), float(ki), 0.0), ms_target, 10.0, ts)
+        where = "on every model and measured point" if len(plants) > 1 or points else \
+            "on this model"
+        raise ValueError(f"no stable PI reaches Ms <= {ms_target:g} {where}")
+    return _verify(plants, points, PidGains(float(kp), float(ki), 0.0), ms_target, 10.0, ts)
 
 
-def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
-               ts: float | None = None, td_ti_max: float = 0.5,
-               pi: RobustDesign | None = None) -> RobustDesign:
-    """PID with derivative filter (Tf = Td/N) maximising ki subject to Ms <= ms_target.
+def robust_pid_set(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint] = (),
+                   ms_target: float = 1.4, n: float = 10.0, ts: float | None = None,
+                   td_ti_max: float = 0.5, pi: RobustDesign | None = None) -> RobustDesign:
+    """PID with derivative filter (Tf = Td/N) maximising ki subject to Ms <= ms_target on every
+    plant and at every measured point (see `robust_pi_set`).
 
     For fixed (kp, kd) the largest ki follows in closed form (as for PI); (kp, kd) are searched
     on a grid, then refined by Nelder-Mead. Td/Ti is kept at most `td_ti_max` (Td = Ti/4 is the
@@ -445,36 +651,35 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
     rests on the filter). `pi`: the robust PI of the same problem if already computed (the
     PID never returns less than it). Raises ValueError when no stable PI meets the bound.
     """
+    plants = tuple(plants)
     r = 1.0 / ms_target
-    w = frequency_grid(plant, ts, points=2500, span=(1e-3, 200.0))
-    g = plant.freq_response(w) * hold_response(w, ts)
-    ib, _ = controller_bases(w, ts, 0.0)
-    b = g * ib
-    pi = robust_pi(plant, ms_target, ts) if pi is None else pi
-    ku_like = _kp_upper(plant, w, g, 0.0)  # ~ Ku
-    wr = reference_frequency(plant, ts)
+    pi = robust_pi_set(plants, points, ms_target, ts) if pi is None else pi
+    fine = _Grids.build(plants, ts, n, 2500, (1e-3, 200.0))
+    coarse = _Grids.build(plants, ts, n, 2500, (1e-3, 200.0), step=4)
+    pts = _Points.build(points, ts)
+    ku_like, which = fine.kp_upper(0.0)  # ~ Ku of the most sensitive plant
+    wr = reference_frequency(plants[which], ts)
 
-    wc, gc, bc = w[::4], g[::4], b[::4]
-    stable_f = _stability_test(plant, w, g, b, ts, n)
-    stable_c = _stability_test(plant, wc, gc, bc, ts, n)
-
-    def f(kp: np.ndarray, kd: np.ndarray, coarse: bool = False) -> np.ndarray:
-        ww, gg, bb = (wc, gc, bc) if coarse else (w, g, b)
+    def f(kp: np.ndarray, kd: np.ndarray, use_coarse: bool = False) -> np.ndarray:
+        grid = coarse if use_coarse else fine
         kp = np.atleast_1d(kp)[:, None]
         kd = np.atleast_1d(kd)[:, None]
         tf = np.where(kp > 0, kd / np.maximum(kp, 1e-300) / n, 0.0)
-        _, db = controller_bases(ww[None, :], ts, tf)
-        lpd = (kp + kd * db) * gg
+        _, db = controller_bases(grid.w[None, :], ts, tf)
+        lpd = (kp + kd * db) * grid.g
+        if pts.w.size:
+            _, dbp = controller_bases(pts.w[None, :], ts, tf)
+            apts = 1.0 + (kp + kd * dbp) * pts.gh
         # the disc condition only certifies designs whose loop has rolled off inside the grid
         # (else crossings beyond it go unseen): |L| < 0.5 at the top frequency, kp <= 4 Ku
-        rolled = (np.abs(lpd[:, -1]) < 0.5) & (kp[:, 0] > 0) & (kp[:, 0] <= 4.0 * ku_like)
+        rolled = grid.rolled(lpd) & (kp[:, 0] > 0) & (kp[:, 0] <= 4.0 * ku_like)
         ki = np.full(kp.shape[0], -np.inf)
-        stable = stable_c if coarse else stable_f
         for i in np.nonzero(rolled & (kd[:, 0] >= 0))[0]:
             p_, d_ = float(kp[i, 0]), float(kd[i, 0])
             a_ = 1.0 + lpd[i]
-            ki[i] = _ki_sup(a_, bb, r, lambda k, p_=p_, d_=d_, a_=a_: stable(
-                a_ + k * bb, p_, k, d_))
+            extra = _point_exclusions(apts[i], pts.gb, pts.u, r) if pts.w.size else ()
+            ki[i] = _ki_sup(a_, grid.b, r, lambda k, p_=p_, d_=d_, a_=a_, grid=grid:
+                            grid.stable(a_ + k * grid.b, p_, k, d_), extra)
         # Td/Ti = kd ki / kp^2 <= td_ti_max
         cap = np.where(kd[:, 0] > 0, td_ti_max * kp[:, 0] ** 2 / np.maximum(kd[:, 0], 1e-300),
                        np.inf)
@@ -484,7 +689,7 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
     kp_grid = np.linspace(0.05, 1.6, 20) * ku_like
     kd_grid = np.linspace(0.0, 1.2, 20) * ku_like / wr
     kpm, kdm = np.meshgrid(kp_grid, kd_grid, indexing="ij")
-    vals = f(kpm.ravel(), kdm.ravel(), coarse=True)
+    vals = f(kpm.ravel(), kdm.ravel(), use_coarse=True)
     j = int(np.argmax(vals))
     x0 = np.array([kpm.ravel()[j] / ku_like, kdm.ravel()[j] * wr / ku_like])
     best = (vals[j], kpm.ravel()[j], kdm.ravel()[j])
@@ -502,7 +707,21 @@ def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
     if -res.fun > best[0]:
         best = (-res.fun, res.x[0] * ku_like, max(res.x[1], 0.0) * ku_like / wr)
     gains = PidGains(float(best[1]), float(best[0]), float(best[2]))
-    out = _verify(plant, gains, ms_target, n, ts)
+    out = _verify(plants, points, gains, ms_target, n, ts)
     if not out.stable or out.gains.ki < pi.gains.ki:
         return pi  # PI is the PID with kd = 0; never return less than it
     return out
+
+
+def robust_pi(plant: DelayedTF, ms_target: float = 1.4, ts: float | None = None,
+              points: Sequence[MeasuredPoint] = ()) -> RobustDesign:
+    """`robust_pi_set` on one plant (and its measured points)."""
+    return robust_pi_set((plant,), points, ms_target, ts)
+
+
+def robust_pid(plant: DelayedTF, ms_target: float = 1.4, n: float = 10.0,
+               ts: float | None = None, td_ti_max: float = 0.5,
+               pi: RobustDesign | None = None,
+               points: Sequence[MeasuredPoint] = ()) -> RobustDesign:
+    """`robust_pid_set` on one plant (and its measured points)."""
+    return robust_pid_set((plant,), points, ms_target, n, ts, td_ti_max, pi)

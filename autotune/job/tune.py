@@ -603,24 +603,22 @@ def propose_gains(an: analysis.RelayAnalysis, design_cfg: Mapping[str, Any],
 
     design_cfg: the config's [design] table (ms_target, max_overshoot (%), max_settling_time
     (s), step_size (PV units; None = the relay's target amplitude)); output_limit in output
-    units; ts the loop period (s). A design failure is reported in `notes`, not raised: the
-    analysis itself stands.
+    units; ts the loop period (s). The designs are held to the measured points too
+    (`conditions.condition_of_analysis`). A design failure is reported in `notes`, not raised:
+    the analysis itself stands; so are a model that fails its validation and a default that
+    does not meet the spec (or no default at all), with what to do.
     """
     from autotune.core import design
+    from autotune.core.conditions import condition_of_analysis
 
-    kw: dict[str, Any] = {
-        "ms_target": design_cfg.get("ms_target"),
-        "max_overshoot": design_cfg.get("max_overshoot"),
-        "max_settling_time": design_cfg.get("max_settling_time"),
-        "step_size": design_cfg.get("step_size") or target_amplitude,
-        "output_limit": output_limit,
-        "ts": ts,
-    }
-    optional = ("max_overshoot", "max_settling_time", "ts")
-    spec = design.DesignSpec(**{k: v for k, v in kw.items() if v is not None or k in optional})
+    spec = design.spec_from_config(design_cfg, output_limit, target_amplitude, ts)
     try:
-        props = design.propose(an.ku, an.tu, an.model.tf, spec)
+        res = design.design_proposals([condition_of_analysis("session", an)], spec)
     except Exception as exc:  # noqa: BLE001 - report, the analysis itself stands
         notes.append(f"design failed: {exc}")
         return []
-    return [p.as_dict() for p in props]
+    notes.extend(res.warnings)
+    chosen = res.get(res.default) if res.default else None
+    if chosen is None or not chosen.meets_spec:
+        notes.append(res.note)
+    return [p.as_dict() for p in res.proposals]
