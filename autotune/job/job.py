@@ -20,6 +20,7 @@ confirmation as the first start.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import math
 import signal
 import threading
@@ -31,7 +32,15 @@ from typing import Any
 
 from autotune import __version__
 from autotune.core.closedloop import simulate_closed_loop
-from autotune.core.design import DesignSpec, propose
+from autotune.core.conditions import condition_of_result
+from autotune.core.design import (
+    Condition,
+    DesignSpec,
+    Proposal,
+    design_proposals,
+    detune_design,
+    spec_from_config,
+)
 from autotune.core.lti import DelayedTF
 from autotune.core.progress import Phase, RunSnapshot
 from autotune.core.steptest import (
@@ -65,10 +74,6 @@ from autotune.job.step import StepEnded, run_step
 from autotune.job.tune import TuneRun, choose_loop
 from autotune.recorder import export_csv, read_session, write_result
 from protocol.messages import StoreGains
-
-DETUNE_MS_STEPS = (1.25, 1.15, 1.1)
-"""Ms targets a detune re-designs at, each below the one before (lower Ms: more robust, slower;
-common practice, no source)."""
 
 RECOVERABLE = ("aborted", "limit:", "fault:pv_window", "fault:pv_rate", "fault:output_limit")
 """End reasons of a step after which the operator may go on (the motor confirmed stopped)."""
@@ -333,10 +338,12 @@ class TuningJob:
             raise RunEnded("converged", end.message, EXIT_OK, end.t)
         run.set_phase(Phase.PROPOSALS, f"{len(self.proposals)} proposals")
         if self.req.yes:
-            self.op.show_gains(self._menu(self._default_index()))
+            self.op.show_gains(self._menu(self._default_index() or 0))
             return self._unattended_first()
         self._halt(run, "the proposals are ready")
-        return self._choose(run, self._default_index())
+        i = self._default_index()
+        return self._choose(run, 0 if i is None else i, "" if i is not None else
+                            "no default: no design is safe on the model (see the notes)")
 
     def _hold_while(self, run: PoweredRun, work: Callable[[], Any]) -> Any:
         """Run `work` (pure computation) in a worker thread while every sample is still read,
@@ -348,13 +355,19 @@ class TuningJob:
             return fut.result()
 
     # ------------------------------------------------------------------ choosing gains
-    def _default_index(self) -> int:
-        props = self.proposals
-        return next((i for i, p in enumerate(props) if p.get("default")), 0)
+    def _default_index(self) -> int | None:
+        """The design's default proposal (None: no design is safe on the model)."""
+        return next((i for i, p in enumerate(self.proposals) if p.get("default")), None)
 
     def _unattended_first(self) -> GainsChoice:
-        """--yes: the default proposal; refused when the design marks it not runnable."""
-        prop = self.proposals[self._default_index()]
+        """--yes: the default proposal; refused when there is none or it is not runnable."""
+        i = self._default_index()
+        if i is None:
+            notes = [n for n in (self.result or {}).get("notes") or () if isinstance(n, str)]
+            why = notes[-1] if notes else "no design is safe on the identified model"
+            raise RunEnded("step:no_default", f"no default proposal: {why}; no step was run",
+                           EXIT_FAILED)
+        prop = self.proposals[i]
         choice = GainsChoice.of_proposal(prop, self.cfg.step.deriv_filter_n)
         if not choice.runnable and not self.req.force:
             raise RunEnded("step:not_runnable", f"the default proposal {choice.name} is not "
@@ -436,26 +449,26 @@ class TuningJob:
                 f"--from-result {src}`") if self.req.relay else "left; nothing more was powered"
 
     def _redesign(self, ms_target: float) -> tuple[tuple[Mapping[str, Any], ...], str]:
-        """Every proposal again for another Ms target, on the fitted model."""
-        plant = self._plant()
-        res = self.result or {}
-        if plant is None:
+        """Every proposal again for another Ms target, on the fitted model and the measured
+        points."""
+        conds = self._conditions()
+        if not conds:
             return self.proposals, "no fitted model: the Ms target cannot change the proposals"
         try:
-            props = propose(res.get("ultimate_gain"), res.get("ultimate_period"), plant,
-                            self._design_spec(ms_target))
+            res = design_proposals(conds, replace(self._design_spec(), ms_target=ms_target))
         except (ValueError, ArithmeticError) as exc:
             return self.proposals, f"the design failed for Ms ≤ {ms_target:.2f}: {exc}"
-        return tuple(p.as_dict() for p in props), f"proposals designed for Ms ≤ {ms_target:.2f}"
+        note = "" if res.default else f"; {res.note}"
+        return (tuple(p.as_dict() for p in res.proposals),
+                f"proposals designed for Ms ≤ {ms_target:.2f}{note}")
 
-    def _design_spec(self, ms_target: float) -> DesignSpec:
+    def _design_spec(self) -> DesignSpec:
         cfg = self.cfg
         run = self.run_
         tick = float(run.info.tick) if run is not None and run.info is not None else None
-        return DesignSpec(ms_target=ms_target, max_overshoot=cfg.design.max_overshoot,
-                          max_settling_time=cfg.design.max_settling_time,
-                          step_size=self._step_size(), output_limit=cfg.safety.output_limit,
-                          ts=tick)
+        return replace(spec_from_config(dataclasses.asdict(cfg.design), cfg.safety.output_limit,
+                                        cfg.relay.target_amplitude, tick),
+                       ms_target=self.ms_target, step_size=self._step_size())
 
     def _plant(self) -> DelayedTF | None:
         m = self.model_dict
@@ -467,38 +480,38 @@ class TuningJob:
                 plant = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m["delay"]))
         return plant
 
-    def _detuned(self, choice: GainsChoice) -> GainsChoice | None:
-        """A gentler design of the same kind: the proposals re-designed at the next lower Ms
-        target (None when there is no model or no lower target)."""
+    def _conditions(self) -> list[Condition]:
+        """The design's view of the identified loop (model, ultimate point, measured points);
+        empty without a model."""
         plant = self._plant()
-        res = self.result or {}
         if plant is None:
+            return []
+        res = dict(self.result or {})
+        res["model"] = {"num": list(plant.num), "den": list(plant.den), "delay": plant.delay}
+        try:
+            return [condition_of_result("session", res)]
+        except (ValueError, TypeError, KeyError):
+            return [Condition("session", plant)]
+
+    def _detuned(self, choice: GainsChoice) -> GainsChoice | None:
+        """A gentler design than `choice` (autotune.core.design.detune_design: the robust
+        optimum at the next lower Ms target, or without the derivative), with its predicted
+        figures; None when there is no model or nothing gentler."""
+        conds = self._conditions()
+        if not conds:
             return None
-        current = choice.predicted.get("ms") if isinstance(choice.predicted.get("ms"),
-                                                           int | float) else self.ms_target
-        current = min(float(current), self.ms_target)
-        for target in DETUNE_MS_STEPS:
-            if target >= current - 1e-9:
-                continue
-            try:
-                props = propose(res.get("ultimate_gain"), res.get("ultimate_period"), plant,
-                                self._design_spec(target))
-            except (ValueError, ArithmeticError):
-                continue
-            # a robust design again at the lower bound; a rule (which knows no Ms) gives way
-            # to the robust default there
-            base = choice.name.split(" (")[0]
-            pick = next((p for p in props if p.name == base and base.startswith("robust")),
-                        None) or next((p for p in props if p.default), None)
-            if pick is None:
-                continue
-            d = pick.as_dict()
-            d["name"] = f"{pick.name} (Ms {target:g})"
-            new = GainsChoice.of_proposal(d, choice.deriv_filter_n)
-            if new.runnable:
-                self.ms_target = min(self.ms_target, target)
-                return new
-        return None
+        g = choice.gains
+        current = Proposal.from_dict({"name": choice.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
+                                      "predicted": dict(choice.predicted),
+                                      "setpoint_weight": choice.setpoint_weight})
+        try:
+            p = detune_design(conds, current, self._design_spec())
+        except (ValueError, ArithmeticError):
+            return None
+        if p is None:
+            return None
+        new = GainsChoice.of_proposal(p.as_dict(), choice.deriv_filter_n)
+        return new if new.runnable else None
 
     # ------------------------------------------------------------------ the steps
     def _step_size(self) -> float:
@@ -569,7 +582,7 @@ class TuningJob:
                              EXIT_ABORTED if report.reason == "aborted" else EXIT_FAILED)
             if decision is Decision.OTHER:
                 idx = next((i for i, p in enumerate(self.proposals)
-                            if p.get("name") == choice.name), self._default_index())
+                            if p.get("name") == choice.name), self._default_index() or 0)
                 return self._choose(run, idx)
             nxt = detuned if decision is Decision.DETUNE and detuned is not None else choice
             verb = ("run the gentler design" if nxt is detuned else "repeat the step with")

@@ -90,8 +90,8 @@ class GainsChoice:
         n = prop.get("deriv_filter_n", deriv_filter_n)
         stable = pred.get("stable", True) if isinstance(pred, Mapping) else True
         runnable = bool(prop.get("runnable", stable is not False))
-        why = str(prop.get("why_not") or ("closed loop unstable on the model"
-                                          if stable is False else ""))
+        why = str(prop.get("not_runnable_reason") or ("closed loop unstable on the model"
+                                                      if stable is False else ""))
         return cls(
             name=str(prop.get("name", "proposal")),
             gains=PidGains(num("kp"), num("ki", 0.0), num("kd", 0.0)),

@@ -83,7 +83,7 @@ class ProposalRow:
         b = d.get("setpoint_weight", 1.0)
         flags = [str(v) for v in d.get("violations") or ()]
         if d.get("runnable") is False or pred.get("stable") is False:
-            flags.insert(0, "not runnable: " + str(d.get("why_not")
+            flags.insert(0, "not runnable: " + str(d.get("not_runnable_reason")
                                                    or "closed loop unstable on the model"))
         return cls(
             name=str(d.get("name", "?")),
