@@ -285,6 +285,7 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
             tries.append((name, gains, pred or _predict(choice, gains, settings, ts, loop, size,
                                                         plan.timeout)))
             gains = detune(gains, args.detune)
+        run.loop_mode = loop  # arm() asks for the stream this loop needs (protocol.budget)
         run.arm({"step_plan": {"size": size, "hold_time": plan.hold_time,
                                "timeout": plan.timeout, "load_offset": plan.load_offset,
                                "loop": loop}})
