@@ -393,7 +393,7 @@ class HelloReply(Message):
 
     def pack_v1(self) -> bytes:
         """The version-1 payload (44 bytes, without pv_resolution)."""
-        return self.pack()[:HELLO_REPLY_V1_SIZE]
+        return Message.pack(self)[:HELLO_REPLY_V1_SIZE]
 
 
 @register

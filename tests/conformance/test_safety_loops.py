@@ -152,7 +152,7 @@ def test_pid_on_the_board_matches_discrete_pid(board, open_link, tracking_time: 
     link = open_link(b)
     link.handshake()
     link.start_heartbeat()
-    kp, ki, kd, w, n, sp, limit = 3.0, 4.0, 0.1, 0.7, 10.0, 3.0, 8.0
+    kp, ki, kd, w, n, sp, limit = 3.0, 4.0, 0.1, 0.7, 10.0, 3.0, 6.0
     link.request(m.SetLimits(0, limit, -100.0, 100.0, 0.0, 1000))
     link.request(m.Stream(0, 1, 1))
     link.request(m.SetPid(0, kp, ki, kd, w, n, tracking_time, sp, 0.0))
