@@ -38,12 +38,20 @@ def autotune(*args: str, timeout: float = 400) -> subprocess.CompletedProcess[st
                           text=True, timeout=timeout, stdin=subprocess.DEVNULL)
 
 
-def run_tune(tmp_path: Path, **sim: object) -> tuple[dict, dict, str]:
+def config_file(tmp_path: Path) -> str:
+    """A config whose watchdog (2 s of device time) survives a busy machine at --speed."""
+    path = tmp_path / "fast.toml"
+    path.write_text("[safety]\nwatchdog = 2.0\n")
+    return str(path)
+
+
+def run_tune(tmp_path: Path, speed: float = SPEED, **sim: object) -> tuple[dict, dict, str]:
     dev = start_board_sim(GAIN, LAG, DELAY, lag2=LAG2, noise=0.02, resolution=0.05,
-                          speed=SPEED, **sim)
+                          speed=speed, **sim)
     try:
         p = autotune("tune", "--port", dev.url, "--yes", "--view", "lines", "--speed",
-                     str(SPEED), "--out", str(tmp_path / "tune"))
+                     str(speed), "--config", config_file(tmp_path), "--out",
+                     str(tmp_path / "tune"))
     finally:
         dev.close()
     assert p.returncode == 0, p.stdout[-2000:] + p.stderr[-2000:]
@@ -57,18 +65,21 @@ def test_tune_and_step_on_board_sim(tmp_path: Path, c_build) -> None:
     assert result["end_reason"] == "converged" and result["loop_mode"] == "device"
     assert header["stream_decimation"] == 1 and header["device"]["name"] == "board-sim"
     ku, tu = ultimate_point(0.01)
-    # the identified continuous plant's ultimate point lies between that of the plant alone
-    # and that with the half-tick hold (analytic, above); 10 % allows the noise
+    # the identified ultimate point lies near that of the plant alone and that with the
+    # half-tick hold (analytic, above); 15 % allows the run-to-run spread that the sensor noise
+    # causes (53.6 to 62.3 against 60 over repeated runs here)
     ku0, tu0 = ultimate_point(0.0)
-    assert 0.9 * ku <= result["ultimate_gain"] <= 1.1 * ku0, (result["ultimate_gain"], ku, ku0)
-    assert 0.9 * tu0 <= result["ultimate_period"] <= 1.1 * tu
+    figures = (result["ultimate_gain"], result["ultimate_period"], ku, ku0, tu, tu0)
+    assert 0.85 * ku <= result["ultimate_gain"] <= 1.15 * ku0, figures
+    assert 0.9 * tu0 <= result["ultimate_period"] <= 1.1 * tu, figures
     assert result["step"] is not None and (tmp_path / "tune" / "step" / "gains.toml").exists()
     assert "device loop" in out
     best = next(p for p in result["proposals"] if p.get("default"))
     dev = start_board_sim(GAIN, LAG, DELAY, lag2=LAG2, noise=0.02, resolution=0.05,
                           speed=SPEED)
     try:
-        p = autotune("step", "--port", dev.url, "--yes", "--speed", str(SPEED), "--loop",
+        p = autotune("step", "--port", dev.url, "--yes", "--speed", str(SPEED), "--config",
+                     config_file(tmp_path), "--loop",
                      "device", "--kp", str(best["kp"]), "--ki", str(best["ki"]), "--kd",
                      str(best["kd"]), "--size", "0.5", "--out", str(tmp_path / "step"))
     finally:
@@ -82,9 +93,11 @@ def test_device_loop_with_decimation(tmp_path: Path, c_build) -> None:
     # 11 520 the line carries (protocol.budget); the device loop asks for every 3rd
     decimation = stream_decimation(0.001, 115200, "device")
     assert decimation == 3
-    result, header, _ = run_tune(tmp_path, period=0.001, baud=115200)
+    # speed 4: the host still reads 1 333 samples a wall second on a busy machine
+    result, header, _ = run_tune(tmp_path, speed=4.0, period=0.001, baud=115200)
     assert header["stream_decimation"] == decimation
-    assert result["end_reason"] == "converged" and result["loop_mode"] == "device"
+    assert result["end_reason"] == "converged" and result["loop_mode"] == "device", result
+
     lines = (tmp_path / "tune" / "session.jsonl").read_text().splitlines()
     recs = [json.loads(x) for x in lines]
     t = np.array([r["t"] for r in recs if r.get("type") == "sample" and r.get("phase") == "relay"])
@@ -92,5 +105,6 @@ def test_device_loop_with_decimation(tmp_path: Path, c_build) -> None:
     assert np.median(gaps) == 3000  # the samples the analysis used, 3 ms apart
     ku, tu = ultimate_point(0.001)
     ku0, tu0 = ultimate_point(0.0)
-    assert 0.9 * ku <= result["ultimate_gain"] <= 1.1 * ku0
-    assert 0.9 * tu0 <= result["ultimate_period"] <= 1.1 * tu
+    figures = (result["ultimate_gain"], result["ultimate_period"], ku, ku0, tu, tu0)
+    assert 0.85 * ku <= result["ultimate_gain"] <= 1.15 * ku0, figures  # as above
+    assert 0.9 * tu0 <= result["ultimate_period"] <= 1.1 * tu, figures
