@@ -79,6 +79,13 @@ def start_sim_device(
         cmd += ["--seed", str(seed)]
     if baud is not None:
         cmd += ["--baud", str(baud)]
+    return launch(cmd, plant, speed, startup_timeout)
+
+
+def launch(cmd: list[str], plant: str, speed: float, startup_timeout: float = 10.0,
+           what: str = "the simulated board") -> SimDevice:
+    """Start a simulated board process `cmd` whose first stdout line is its port; return once
+    the port is known (UserError with the process's last stderr line when it is not)."""
     errfile = tempfile.TemporaryFile()  # noqa: SIM115 (lives as long as the device)
     proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=errfile)
     assert proc.stdout is not None
@@ -103,7 +110,7 @@ def start_sim_device(
         errfile.seek(0)
         reason = errfile.read().decode(errors="replace").strip().splitlines()
         raise UserError(
-            "the simulated board did not start"
+            f"{what} did not start"
             + (f": {reason[-1]}" if reason else " (no port announced within "
                f"{startup_timeout:.0f} s)"),
             exit_code=EXIT_LINK,

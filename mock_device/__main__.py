@@ -1,7 +1,8 @@
 """``python -m mock_device``: run the simulated controller board as its own process.
 
     python -m mock_device --plant FILE.toml|cart-wheel|mast-pan (--pty | --tcp HOST:PORT)
-                          [--speed X] [--baud N] [--faults SPEC] [--seed N]
+                          [--speed X] [--baud N] [--faults SPEC] [--seed N] [--period S]
+                          [--protocol-version N]
 
 The first stdout line is the port to open (pty path or socket:// URL); logs go to stderr.
 Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or plant file.
@@ -10,6 +11,7 @@ Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import sys
 
 from mock_device.config import SCENARIOS, MockConfigError, load_config
@@ -22,6 +24,7 @@ from mock_device.server import (
     Transport,
     install_signal_handlers,
 )
+from protocol import messages as m
 
 
 def _host_port(text: str) -> tuple[str, int]:
@@ -85,6 +88,12 @@ def build_parser() -> argparse.ArgumentParser:
         help="fault injection, e.g. corrupt=0.01,jitter=0.002,seed=3 (see mock_device.faults)",
     )
     p.add_argument("--seed", type=int, default=None, help="sensor noise seed (default: plant file)")
+    p.add_argument("--period", type=_positive, default=None, metavar="S",
+                   help="device tick, s (default: the plant file's [device] period)")
+    p.add_argument("--protocol-version", type=int, default=m.PROTOCOL_VERSION, metavar="N",
+                   choices=(m.PROTOCOL_VERSION, *m.OLDER_VERSIONS),
+                   help="wire protocol version to speak: an older one emulates an older board "
+                        f"(default: {m.PROTOCOL_VERSION})")
     return p
 
 
@@ -102,11 +111,18 @@ def main(argv: list[str] | None = None) -> int:
     if args.seed is not None and args.seed < 0:
         print("mock_device: --seed must be >= 0", file=sys.stderr)
         return 2
+    if args.period is not None:
+        if not 1e-5 <= args.period <= 1.0:
+            print("mock_device: --period must be within 1e-5 .. 1 s", file=sys.stderr)
+            return 2
+        config = dataclasses.replace(
+            config, device=dataclasses.replace(config.device, period=args.period))
 
     def log(line: str) -> None:
         print(f"mock_device: {line}", file=sys.stderr, flush=True)
 
-    device = Device(config, faults=spec, seed=args.seed, log=log)
+    device = Device(config, faults=spec, seed=args.seed, log=log,
+                    protocol_version=args.protocol_version)
     transport: Transport
     try:
         if args.pty:
@@ -131,6 +147,9 @@ def main(argv: list[str] | None = None) -> int:
         return server.run()
     finally:
         transport.close()
+        d = server.decoder
+        log(f"frames received: {d.frames_good} good, {d.crc_errors} CRC errors, "
+            f"{d.framing_errors} framing errors")
 
 
 if __name__ == "__main__":

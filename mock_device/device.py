@@ -22,6 +22,7 @@ Tick k at device time t_k = k * tick_us (microseconds):
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import secrets
 from collections.abc import Callable
@@ -77,6 +78,14 @@ class PidState:
     pv_prev: float | None = None
 
 
+@dataclass(frozen=True)
+class _HelloReplyV1(m.HelloReply):
+    """A HelloReply sent with the version-1 layout (44 bytes, no pv_resolution)."""
+
+    def pack(self) -> bytes:
+        return self.pack_v1()
+
+
 def _default_boot_id() -> int:
     return secrets.randbits(32) or 1
 
@@ -100,7 +109,11 @@ class Device:
         seed: int | None = None,
         boot_id: Callable[[], int] = _default_boot_id,
         log: Callable[[str], None] = lambda _line: None,
+        protocol_version: int = m.PROTOCOL_VERSION,
     ) -> None:
+        if protocol_version not in (m.PROTOCOL_VERSION, *m.OLDER_VERSIONS):
+            raise ValueError(f"protocol version {protocol_version} is not one this device knows")
+        self.protocol_version = protocol_version  # an older one emulates an older board
         self.config = config
         dev = config.device
         self.period = dev.period
@@ -233,16 +246,17 @@ class Device:
             return [Outgoing(m.Nak(t, int(code), float(detail)), seq)]
 
         if isinstance(msg, m.Hello):
-            if msg.protocol_version != m.PROTOCOL_VERSION:
+            version = self.protocol_version
+            if msg.protocol_version != version:
                 self._log(
                     f"refused a host speaking protocol version {msg.protocol_version}; "
-                    f"this device speaks version {m.PROTOCOL_VERSION}"
+                    f"this device speaks version {version}"
                 )
-                return nak(m.NakCode.BAD_VERSION, m.PROTOCOL_VERSION)
+                return nak(m.NakCode.BAD_VERSION, version)
             if self._hello_tick is None:
                 self._hello_tick = self.total_ticks
             reply = m.HelloReply(
-                m.PROTOCOL_VERSION,
+                version,
                 self.config.device.name,
                 FIRMWARE,
                 self.boot_id,
@@ -250,7 +264,10 @@ class Device:
                 self.tick_us,
                 self.capabilities,
                 float(self.config.device.max_output),
+                float(self.config.sensor.resolution),  # the quantisation step it declares
             )
+            if version == 1:
+                reply = _HelloReplyV1(*dataclasses.astuple(reply))
             out = [Outgoing(reply, seq)]
             if self.fault is not None:  # a latched fault is reported again on reconnect
                 out.append(self._unsolicited(self._fault_msg()))

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import errno as errno_mod
+import math
 import queue
 import threading
 import time
@@ -47,6 +48,7 @@ from protocol.messages import (
     CAP_HOST_LOOP,
     CAP_STORE_GAINS,
     FLAG_FAULT,
+    OLDER_VERSIONS,
     PROTOCOL_VERSION,
     RESPONSE_TYPES,
     UNSOLICITED_TYPES,
@@ -121,6 +123,7 @@ class DeviceInfo:
     tick_us: int
     capabilities: int
     max_output: float  #: output units
+    pv_resolution: float = 0.0  #: PV quantisation step the board declares, PV units; 0 = none
 
     @classmethod
     def from_reply(cls, reply: HelloReply) -> DeviceInfo:
@@ -133,6 +136,7 @@ class DeviceInfo:
             reply.tick_us,
             reply.capabilities,
             reply.max_output,
+            reply.pv_resolution,
         )
 
     @property
@@ -397,26 +401,33 @@ class Link:
         """Hello/HelloReply; returns DeviceInfo. Raises NoResponse when nothing answers,
         VersionMismatch when the device speaks another protocol version. Clears a
         DeviceReset condition (the new boot id becomes the reference)."""
-        try:
-            reply, _, _ = self._transact(
-                Hello(PROTOCOL_VERSION),
-                timeout if timeout is not None else self.reply_timeout,
-                retries if retries is not None else max(self.retries, 3),
-                check_reset=False,
-            )
-        except NakError as exc:
-            if exc.code == NakCode.BAD_VERSION:
-                raise VersionMismatch(PROTOCOL_VERSION, int(exc.detail)) from None
-            raise
-        except NoResponse:
-            raise
-        except LinkTimeout:
-            raise NoResponse(
-                f"nothing answered on {self.url}: check that the board is powered and connected, "
-                f"runs firmware speaking this protocol, and uses {self.baudrate} baud"
-            ) from None
+        version = PROTOCOL_VERSION
+        while True:
+            try:
+                reply, _, _ = self._transact(
+                    Hello(version),
+                    timeout if timeout is not None else self.reply_timeout,
+                    retries if retries is not None else max(self.retries, 3),
+                    check_reset=False,
+                )
+                break
+            except NakError as exc:
+                if exc.code != NakCode.BAD_VERSION:
+                    raise
+                theirs = int(exc.detail) if math.isfinite(exc.detail) else -1
+                if version == PROTOCOL_VERSION and theirs in OLDER_VERSIONS:
+                    version = theirs  # an older board: speak its version (SPEC.md 9)
+                    continue
+                raise VersionMismatch(PROTOCOL_VERSION, theirs) from None
+            except NoResponse:
+                raise
+            except LinkTimeout:
+                raise NoResponse(
+                    f"nothing answered on {self.url}: check that the board is powered and connected, "
+                    f"runs firmware speaking this protocol, and uses {self.baudrate} baud"
+                ) from None
         assert isinstance(reply, HelloReply)
-        if reply.protocol_version != PROTOCOL_VERSION:
+        if reply.protocol_version != version:
             raise VersionMismatch(PROTOCOL_VERSION, reply.protocol_version)
         info = DeviceInfo.from_reply(reply)
         if self._boot_id is not None and self._boot_id != info.boot_id:

@@ -18,7 +18,14 @@ from typing import ClassVar, Self
 from protocol.errors import BadLength, UnknownType
 from protocol.framing import RawFrame, encode_frame
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2
+"""The protocol version this host speaks (SPEC.md section 9)."""
+OLDER_VERSIONS: tuple[int, ...] = (1,)
+"""Older versions the host still talks to when a device refuses its Hello with one of them:
+version 1 is version 2 without HelloReply.pv_resolution (its HelloReply is 44 bytes and
+pv_resolution reads as 0, not declared)."""
+HELLO_REPLY_V1_SIZE = 44
+"""Payload size of a version-1 HelloReply, bytes."""
 
 
 class NakCode(enum.IntEnum):
@@ -358,10 +365,15 @@ class StoreGains(Message):
 @register
 @dataclass(frozen=True)
 class HelloReply(Message):
-    """Answer to Hello: who the device is and what it can do."""
+    """Answer to Hello: who the device is and what it can do.
+
+    The layout only ever grows at its end (SPEC.md section 9): version 1 ended after
+    max_output (44 bytes); version 2 adds pv_resolution (48 bytes). ``unpack`` takes both, so
+    a version-1 device's reply reads with pv_resolution = 0 (not declared).
+    """
 
     TYPE: ClassVar[int] = 0x80
-    FORMAT: ClassVar[str] = "<H16s12sIBIBf"
+    FORMAT: ClassVar[str] = "<H16s12sIBIBff"
     protocol_version: int = PROTOCOL_VERSION
     device_name: str = ""  #: up to 16 bytes UTF-8
     firmware: str = ""  #: up to 12 bytes UTF-8
@@ -370,6 +382,18 @@ class HelloReply(Message):
     tick_us: int = 10000  #: device tick period, microseconds
     capabilities: int = CAP_HOST_LOOP  #: CAP_* bits
     max_output: float = 100.0  #: largest output_limit accepted, output units
+    pv_resolution: float = 0.0  #: PV quantisation step the board declares, PV units; 0 = none
+
+    @classmethod
+    def unpack(cls, payload: bytes) -> Self:
+        """HelloReply of version 2 (48 bytes) or version 1 (44 bytes, pv_resolution 0)."""
+        if len(payload) == HELLO_REPLY_V1_SIZE:
+            payload = bytes(payload) + bytes(cls._STRUCT.size - HELLO_REPLY_V1_SIZE)
+        return super().unpack(payload)
+
+    def pack_v1(self) -> bytes:
+        """The version-1 payload (44 bytes, without pv_resolution)."""
+        return Message.pack(self)[:HELLO_REPLY_V1_SIZE]
 
 
 @register

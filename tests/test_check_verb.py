@@ -42,7 +42,7 @@ def test_check_nothing_answers() -> None:
 
 
 def test_check_wrong_protocol_version() -> None:
-    # A peer on a real pty that answers every Hello as a version-2 device would.
+    # A peer on a real pty that answers every Hello as a device of a newer version would.
     master, slave = os.openpty()
 
     def peer() -> None:
@@ -54,13 +54,15 @@ def test_check_wrong_protocol_version() -> None:
                 return
             for f in dec.feed(data):
                 if f.type == m.Hello.TYPE:
-                    os.write(master, m.encode(m.Nak(m.Hello.TYPE, m.NakCode.BAD_VERSION, 2.0), f.seq))
+                    os.write(master, m.encode(m.Nak(m.Hello.TYPE, m.NakCode.BAD_VERSION,
+                                                    m.PROTOCOL_VERSION + 1.0), f.seq))
                 elif f.type == m.Stop.TYPE:
                     os.write(master, m.encode(m.Stopped(), f.seq))
 
     threading.Thread(target=peer, daemon=True).start()
     try:
-        with pytest.raises(UserError, match="version 1.*version 2"):
+        with pytest.raises(UserError, match=f"version {m.PROTOCOL_VERSION}.*version "
+                                            f"{m.PROTOCOL_VERSION + 1}"):
             check.run(_args(check, "--port", os.ttyname(slave)))
     finally:
         os.close(slave)

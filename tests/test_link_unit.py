@@ -224,10 +224,12 @@ def test_handshake_gives_device_info(link: Link) -> None:
 
 
 def test_handshake_version_nak(link: Link) -> None:
-    reply_to_next_request(link, m.Nak(m.Hello.TYPE, m.NakCode.BAD_VERSION, 2.0))
-    with pytest.raises(VersionMismatch, match="version 1.*version 2") as err:
+    newer = m.PROTOCOL_VERSION + 1
+    reply_to_next_request(link, m.Nak(m.Hello.TYPE, m.NakCode.BAD_VERSION, float(newer)))
+    with pytest.raises(VersionMismatch, match=f"version {m.PROTOCOL_VERSION}.*version {newer}"
+                       ) as err:
         link.handshake()
-    assert (err.value.host_version, err.value.device_version) == (1, 2)
+    assert (err.value.host_version, err.value.device_version) == (m.PROTOCOL_VERSION, newer)
 
 
 def test_handshake_reply_with_other_version(link: Link) -> None:

@@ -128,7 +128,7 @@ def test_layout_sizes_match_spec() -> None:
     sizes = {
         "Hello": 2, "Ping": 8, "Stop": 0, "ClearFault": 0, "SetLimits": 19, "GetLimits": 1,
         "Stream": 4, "SetOutput": 5, "StartRelay": 21, "SetPid": 33, "SetSetpoint": 5,
-        "SetOffset": 5, "StoreGains": 13, "HelloReply": 44, "Ack": 1, "Nak": 6, "Pong": 16,
+        "SetOffset": 5, "StoreGains": 13, "HelloReply": 48, "Ack": 1, "Nak": 6, "Pong": 16,
         "Limits": 19, "Stopped": 0, "Sample": 19, "Fault": 10,
     }
     assert {c.__name__: c.payload_size() for c in ALL} == sizes
@@ -192,3 +192,15 @@ def test_spec_worked_example_matches_the_code() -> None:
     for msg, seq, wire in cases:
         assert m.encode(msg, seq).hex(" ").upper() == wire
         assert wire in spec
+
+
+def test_hello_reply_of_version_1_reads_without_resolution() -> None:
+    # SPEC.md section 9: HelloReply grows only at its end; a version-1 reply (44 bytes) reads
+    # with pv_resolution = 0 (not declared), a version-2 reply carries it at offset 44.
+    r = m.HelloReply(protocol_version=1, device_name="old", tick_us=2000, pv_resolution=0.5)
+    assert len(r.pack()) == 48 and len(r.pack_v1()) == m.HELLO_REPLY_V1_SIZE == 44
+    old = m.HelloReply.unpack(r.pack_v1())
+    assert old.pv_resolution == 0.0 and old.device_name == "old" and old.tick_us == 2000
+    assert m.HelloReply.unpack(r.pack()).pv_resolution == 0.5
+    with pytest.raises(BadLength):
+        m.HelloReply.unpack(r.pack()[:46])

@@ -97,6 +97,8 @@ def session_inputs(session: Any) -> dict[str, Any]:
                          hysteresis=hyst if hyst is not None else 0.0,
                          asymmetry=_finite(src.get("asymmetry")) or 0.0)
     tick = _finite(_get(header, "device", "tick"))
+    if tick is not None:  # the sample interval: the run streamed every Nth tick
+        tick *= int(_finite(header.get("stream_decimation")) or 1)
     # noise: the rest precheck's own figure, as the live run uses it
     noise = None
     for e in session.events:

@@ -1,7 +1,9 @@
 """`autotune check`: talk to a board without powering anything and report on the link.
 
-Handshake and device info, round-trip time over a number of pings, achieved sample rate against
-the device tick, frames lost, and the sensor noise at rest. The output stays at zero the whole
+Handshake and device info, round-trip time over a number of pings, the link budget (what the
+sample stream needs against what the link carries, and whether a host or device loop fits),
+achieved sample rate against the device tick, frames lost (and whether the cause is a stream
+the link cannot carry or the wiring), and the sensor noise at rest. The output stays at zero the whole
 time: the check sends Stop before and after and never sends an output, relay or PID command.
 """
 
@@ -14,10 +16,17 @@ import statistics
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
 from autotune.simdevice import SIM, start_sim_device
+from protocol.budget import (
+    SAMPLE_BYTES,
+    check_loop_budget,
+    describe_stream,
+    heartbeat_rate,
+    loop_budget,
+)
 
 if TYPE_CHECKING:
     from protocol.link import Link
@@ -107,37 +116,27 @@ def run(args: argparse.Namespace) -> int:
             link.close()
 
 
-def _check(link: Link, args: argparse.Namespace) -> int:
-    """The check proper, on an open link; returns the exit code."""
-    from protocol.link import percentile
-    from protocol.messages import FLAG_FAULT, Stream
+@dataclass
+class StreamRun:
+    """One stretch of streaming: the records of the axis, lost samples (expected from the
+    device time span at ``decimation``) and rejected frames (CRC, framing, undecodable)."""
 
-    info = link.handshake()
-    caps = [name for name, on in (("host loop", info.has_host_loop),
-                                  ("device relay", info.has_device_relay),
-                                  ("device PID", info.has_device_pid),
-                                  ("store gains", info.has_store_gains)) if on]
-    print(f"device      {info.device_name or '-'} (firmware {info.firmware or '-'}), "
-          f"protocol {info.protocol_version}, boot id {info.boot_id:08x}")
-    print(f"            {info.axis_count} axis{'es' if info.axis_count != 1 else ''}, tick "
-          f"{info.tick_us / 1000:g} ms ({1e6 / info.tick_us:g} Hz), max output "
-          f"{info.max_output:g}, offers: {', '.join(caps) or 'nothing'}")
-    if not 0 <= args.axis < info.axis_count:
-        raise UserError(f"--axis {args.axis}: the device has {info.axis_count} axis(es)",
-                        exit_code=EXIT_USAGE)
-    if not link.stop(timeout=1.0):  # make sure nothing is powered before we listen
-        raise UserError(f"{args.port}: the device did not confirm zero output; cut the power",
-                        exit_code=EXIT_FAILED)
+    records: list[Any]
+    lost: int
+    errors: tuple[int, int, int]
 
-    rtts = [link.ping() for _ in range(args.pings)]
-    print(f"round trip  min {_ms(min(rtts))}, median {_ms(statistics.median(rtts))}, "
-          f"p99 {_ms(percentile(rtts, 99))} over {len(rtts)} pings")
+
+def _stream(link: Link, args: argparse.Namespace, info: Any, decimation: int) -> StreamRun:
+    """Stream every ``decimation``-th sample for --samples-time s of device time; prints the
+    rate and the losses."""
+    from protocol.messages import Stream
 
     link.drain_samples()
     before = link.stats()
-    link.request(Stream(args.axis, 1, 1))
+    link.request(Stream(args.axis, 1, decimation))
     link.start_heartbeat()
-    records = []
+    records: list[Any] = []
+    interval = info.tick * decimation
     wall_limit = 3.0 * args.samples_time / args.speed + 2.0
     t_wall0 = time.monotonic()
     try:
@@ -150,7 +149,7 @@ def _check(link: Link, args: argparse.Namespace) -> int:
             if rec.axis != args.axis:
                 continue
             records.append(rec)
-            if rec.t - records[0].t >= args.samples_time - 0.5 * info.tick:
+            if rec.t - records[0].t >= args.samples_time - 0.5 * interval:
                 break
     finally:
         link.stop_heartbeat()
@@ -160,19 +159,78 @@ def _check(link: Link, args: argparse.Namespace) -> int:
     if len(records) < 2:
         raise UserError(f"{args.port}: the device sent {len(records)} samples in {wall:.1f} s "
                         "after Stream on", exit_code=EXIT_FAILED)
-
     span = records[-1].t - records[0].t
-    expected = round(span / info.tick) + 1
+    expected = round(span / interval) + 1
     lost = max(0, expected - len(records))
     rate = (len(records) - 1) / span if span > 0 else math.nan
     errors = (after.crc_errors - before.crc_errors, after.framing_errors - before.framing_errors,
               after.decode_errors - before.decode_errors)
-    print(f"samples     {len(records)} in {span:.3f} s device time: {rate:.2f} Hz against the "
-          f"tick's {1 / info.tick:g} Hz ({100 * rate * info.tick:.1f} %); device time ran "
-          f"{span / wall:.2f}x the wall clock")
-    print(f"lost        {lost} of {expected} samples (sequence gaps "
-          f"{after.seq_gaps - before.seq_gaps}); rejected frames: {errors[0]} CRC, "
-          f"{errors[1]} framing, {errors[2]} undecodable")
+    if decimation == 1:
+        print(f"samples     {len(records)} in {span:.3f} s device time: {rate:.2f} Hz against "
+              f"the tick's {1 / info.tick:g} Hz ({100 * rate * info.tick:.1f} %); device time "
+              f"ran {span / wall:.2f}x the wall clock")
+        print(f"lost        {lost} of {expected} samples (sequence gaps "
+              f"{after.seq_gaps - before.seq_gaps}); rejected frames: {errors[0]} CRC, "
+              f"{errors[1]} framing, {errors[2]} undecodable")
+    return StreamRun(records, lost, errors)
+
+
+def _check(link: Link, args: argparse.Namespace) -> int:
+    """The check proper, on an open link; returns the exit code."""
+    from protocol.link import percentile
+    from protocol.messages import FLAG_FAULT
+
+    info = link.handshake()
+    caps = [name for name, on in (("host loop", info.has_host_loop),
+                                  ("device relay", info.has_device_relay),
+                                  ("device PID", info.has_device_pid),
+                                  ("store gains", info.has_store_gains)) if on]
+    print(f"device      {info.device_name or '-'} (firmware {info.firmware or '-'}), "
+          f"protocol {info.protocol_version}, boot id {info.boot_id:08x}")
+    print(f"            {info.axis_count} axis{'es' if info.axis_count != 1 else ''}, tick "
+          f"{info.tick_us / 1000:g} ms ({1e6 / info.tick_us:g} Hz), max output "
+          f"{info.max_output:g}, offers: {', '.join(caps) or 'nothing'}")
+    declared = f"{info.pv_resolution:g} PV units" if info.pv_resolution > 0 else "not declared"
+    print(f"            PV resolution {declared}")
+    if not 0 <= args.axis < info.axis_count:
+        raise UserError(f"--axis {args.axis}: the device has {info.axis_count} axis(es)",
+                        exit_code=EXIT_USAGE)
+    if not link.stop(timeout=1.0):  # make sure nothing is powered before we listen
+        raise UserError(f"{args.port}: the device did not confirm zero output; cut the power",
+                        exit_code=EXIT_FAILED)
+
+    rtts = [link.ping() for _ in range(args.pings)]
+    print(f"round trip  min {_ms(min(rtts))}, median {_ms(statistics.median(rtts))}, "
+          f"p99 {_ms(percentile(rtts, 99))} over {len(rtts)} pings")
+
+    budget = loop_budget(info.tick, args.baud, "device")
+    overflow = budget.full_stream + heartbeat_rate() > budget.capacity
+    print(f"link        the stream needs {budget.full_stream:,.0f} B/s (a {SAMPLE_BYTES}-byte "
+          f"sample every tick), the link carries {budget.capacity:,.0f} B/s at {args.baud:g} "
+          f"baud (10 bits a byte; {budget.usable:,.0f} B/s usable)")
+    for mode, offered in (("device", info.has_device_relay or info.has_device_pid),
+                          ("host", info.has_host_loop)):
+        if offered:
+            ok, line = check_loop_budget(info.tick, args.baud, mode)
+            print(f"            {mode} loop: {'ok' if ok else 'DOES NOT FIT'}: {line}")
+
+    run = _stream(link, args, info, 1)
+    lost, errors = run.lost, run.errors
+    if lost and overflow:
+        print(f"cause       the stream needs {budget.full_stream + heartbeat_rate():,.0f} B/s, the "
+              f"link carries {budget.capacity:,.0f} B/s: the samples are lost because the board "
+              "sends more than the line carries, not because of the wiring")
+    elif lost or any(errors):
+        print("cause       frames lost or rejected below the link's capacity: check the cable, "
+              "connectors, baud rate and electrical noise")
+    records = run.records
+    if overflow and budget.decimation > 1:
+        thin = _stream(link, args, info, budget.decimation)
+        print(f"            with {describe_stream(budget)}, as tune and step ask for it in a "
+              f"device loop: {len(thin.records)} samples, {thin.lost} lost")
+        lost, errors = thin.lost, thin.errors
+        records = records + thin.records
+    host_only = not (info.has_device_relay or info.has_device_pid)
     nonzero = [r for r in records if r.output != 0.0]
     if nonzero:
         link.stop(timeout=1.0)
@@ -188,6 +246,9 @@ def _check(link: Link, args: argparse.Namespace) -> int:
     problems = []
     if lost or any(errors):
         problems.append(f"{lost} samples lost, {sum(errors)} frames rejected")
+    if host_only and not check_loop_budget(info.tick, args.baud, "host")[0]:
+        problems.append("the board offers only the host loop, which this link cannot carry at "
+                        "its tick")
     if latched or faults:
         names = ", ".join(sorted({f.name for f in faults})) or "see the board"
         problems.append(f"a fault is latched on the device ({names})")

@@ -73,6 +73,7 @@ from autotune.job.requests import BoardRequest, GainsChoice, JobRequest
 from autotune.job.step import StepEnded, run_step
 from autotune.job.tune import TuneRun, choose_loop
 from autotune.recorder import export_csv, read_session, write_result
+from protocol.budget import check_loop_budget
 from protocol.messages import StoreGains
 
 RECOVERABLE = ("aborted", "limit:", "fault:pv_window", "fault:pv_rate", "fault:output_limit")
@@ -223,7 +224,12 @@ class TuningJob:
         """After the handshake, before anything is powered: the start screen, then --yes or the
         operator's deliberate confirmation."""
         start = self._start_info(info)
+        ok, budget = check_loop_budget(float(info.tick), float(self.cfg.connection.baudrate),
+                                       start.loop_mode)
+        if not ok:
+            raise UserError(budget, exit_code=EXIT_USAGE)
         self.op.show_start(start)
+        self.op.say(budget)
         if self.req.yes:
             self.op.say("--yes given: going ahead without asking.")
             return

@@ -54,6 +54,7 @@ from autotune.errors import (
 )
 from autotune.recorder import SessionWriter
 from autotune.simdevice import SIM, SimDevice, start_sim_device
+from protocol.budget import stream_decimation
 
 CAUTIONS = (CAUTION_TITLE, *(f"  - {item}" for item in CAUTION_ITEMS))
 
@@ -203,6 +204,7 @@ class PoweredRun:
         self.message = ""
         self.alarm: str | None = None
         self.loop_mode = "host"
+        self.decimation = 1  # Stream decimation asked for at arm() (protocol.budget)
         self.armed = False
         self.powered = False
         self.outcome = RunOutcome()
@@ -399,7 +401,10 @@ class PoweredRun:
         s = self.cfg.safety
         link = self.link
         try:
-            link.request(Stream(self.axis, 1, 1))
+            # device loop: every Nth sample, as the link's budget allows; host loop: every one
+            self.decimation = stream_decimation(self.info.tick, self.cfg.connection.baudrate,
+                                                self.loop_mode)
+            link.request(Stream(self.axis, 1, self.decimation))
             first: list[Any] = []
             deadline = time.monotonic() + max(2.0, self.wall(1.0))
             while len(first) < 5:
@@ -492,6 +497,7 @@ class PoweredRun:
             "axis": self.axis,
             "sign": self.cfg.connection.sign,
             "speed": self.speed,
+            "stream_decimation": self.decimation,
         }
         if self.sim is not None:
             header["sim"] = {"plant": self.sim.plant, "speed": self.sim.speed,
@@ -796,7 +802,7 @@ class PoweredRun:
                 if self.writer is not None:
                     self.writer.event(None, "device_restarted", "handshake again to confirm "
                                       "zero output")
-            link.request(Stream(self.axis, 1, 1), timeout=0.25, retries=1)
+            link.request(Stream(self.axis, 1, self.decimation), timeout=0.25, retries=1)
 
     def _await_zero_sample(self, stopped_first: bool) -> float | None:
         deadline = time.monotonic() + (0.5 if stopped_first else 0.1)

@@ -389,7 +389,7 @@ class TuneRun:
             stall_time=r.stall_time,
             amplitude_tolerance=r.amplitude_tolerance,
             deadband=self.deadband,
-            tick=self.run.info.tick if self.run is not None else 0.0,
+            tick=self.run.info.tick * self.run.decimation if self.run is not None else 0.0,
             pv_noise=self.rest.noise_std if self.rest else 0.0,
             pv_resolution=self.rest.resolution if self.rest else 0.0,
         )
@@ -480,7 +480,8 @@ class TuneRun:
         assert self.run is not None
         rest = self.rest
         return steady_cycles(list(cycles), self.cfg.relay.converge_tol,
-                             min_cycles=self.cfg.relay.min_cycles, tick=self.run.info.tick,
+                             min_cycles=self.cfg.relay.min_cycles,
+                             tick=self.run.info.tick * self.run.decimation,
                              noise_std=rest.noise_std if rest else 0.0,
                              resolution=rest.resolution if rest else 0.0,
                              hysteresis=self.hysteresis or 0.0)
@@ -563,7 +564,8 @@ class TuneRun:
                               "deadband); Ku without it would be inflated by about "
                               f"d / (d - deadband) = {exp.settings.amplitude / s.amplitude:.4g}"}
         try:
-            an = analysis.analyse_relay(t, y, u, s, noise_std=noise, ts=info.tick,
+            an = analysis.analyse_relay(t, y, u, s, noise_std=noise,
+                                        ts=info.tick * run.decimation,
                                         output_limit=cfg.safety.output_limit,
                                         converge_tol=cfg.relay.converge_tol)
         except Exception as exc:  # noqa: BLE001 (report, do not crash after a stopped run)
