@@ -68,3 +68,22 @@ def test_relay_to_step_without_a_drop_in_the_output(tmp_path: Path) -> None:
     kinds = [e.get("kind") for e in s.events]
     assert "halted" not in kinds  # nobody was asked, so the motor never stopped between stages
     assert s.reason in ("completed", "step:not_met")
+
+
+def test_a_host_loop_the_link_cannot_carry_is_refused_before_power(tmp_path: Path) -> None:
+    """A 1 ms tick on a 115200-baud link cannot carry a sample and an output frame every tick
+    (protocol.budget): refused with the figures, the device loop proposed, nothing powered."""
+    import subprocess
+    import sys
+
+    plant = tmp_path / "fast.toml"
+    plant.write_text("[plant]\nnum = [2.0]\nden = [0.5, 1.0]\ndelay = 0.02\n"
+                     "[device]\nperiod = 0.001\n")
+    out = tmp_path / "out"
+    p = subprocess.run([sys.executable, "-m", "autotune", "tune", "--port", "sim", "--plant",
+                        str(plant), "--loop", "host", "--yes", "--out", str(out)],
+                       capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL)
+    assert p.returncode == 2, p.stderr
+    line = p.stderr.strip().splitlines()[-1]
+    assert "use --loop device" in line and "B/s" in line
+    assert not (out / "session.jsonl").exists()  # never armed: nothing was powered
