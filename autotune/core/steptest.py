@@ -551,10 +551,11 @@ class StepExperiment:
 
     `update(t, pv, sp_applied, offset_applied, out)` takes the device time (s), the PV, the
     setpoint and offset that were in effect at that sample (as the device reports them, or the
-    host's own values in host loop) and the applied output (output units; optional: it gives the
-    output that held the PV at rest); it returns what should apply from now on. A phase starts
-    counting only once its setpoint/offset shows up in the samples, so the link's turnaround
-    does not shorten the record.
+    host's own values in host loop; NaN while the loop is not running yet: the device not in its
+    PID mode, or the host's first output not applied yet) and the applied output (output units;
+    optional: it gives the output that held the PV at rest); it returns what should apply from
+    now on. A phase (the hold too) starts counting only once its setpoint/offset shows up in
+    the samples, so the link's turnaround and samples queued before a command do not count.
 
     `bias` (output units) is the output the loop is at when the step starts; it stands in for
     the output that held the PV at rest until the hold has measured that. `output_limit`
@@ -660,8 +661,8 @@ class StepExperiment:
         bt.append(t)
         bp.append(pv)
         bo.append(math.nan if out is None else out)
-        if len(bt) > 64 and bt[-1] - bt[0] > 2.0 * keep:
-            k = int(np.searchsorted(bt, bt[-1] - keep - 1e-9))
+        if len(bt) > 64 and bt[-1] - bt[0] > 3.0 * keep:  # keep two windows (for the cause)
+            k = int(np.searchsorted(bt, bt[-1] - 2.0 * keep - 1e-9))
             for b in self._buf:
                 del b[:k]
 
@@ -777,7 +778,6 @@ class StepExperiment:
             return StepCommand(self._sp_cmd, self._off_cmd, self.phase, (), True, self._hold_out)
         if self._t0 is None:
             self._t0 = t
-            self._phase_start = t
             events.append(StepEvent(t, "hold", {"setpoint": self.start_value}))
         if self._phase_start is None and self._effective(sp_applied, offset_applied):
             self._phase_start = t
@@ -796,6 +796,9 @@ class StepExperiment:
                 return StepCommand(self._sp_cmd, self._off_cmd, self.phase, tuple(events), True)
 
         if self.phase in (StepPhase.HOLD, StepPhase.RECOVER):
+            if self._phase_start is None:
+                return StepCommand(self._sp_cmd, self._off_cmd, self.phase, tuple(events),
+                                   False, self._hold_out)
             return self._resting(t, pv, out, events)
         if self._phase_start is not None:
             assert self._filter is not None
@@ -869,7 +872,8 @@ class StepExperiment:
             if state is None:
                 state = rest_state(wt, wp, crit, wo) if wt.size >= 3 else \
                     RestState(False, math.nan, 0.0, math.nan, 0.0, 0.0, pv, out)
-            cause, osc = moving_cause(wt, wp, state, wo, self.output_limit)
+            ct, cp, co = self._window(t, 2.0 * crit.window)  # two windows show a swing better
+            cause, osc = moving_cause(ct, cp, state, co, self.output_limit)
             events.append(StepEvent(t, "not_at_rest", {**state.as_dict(), "cause": cause}))
             self.hold_state = state
             if osc is not None:

@@ -28,7 +28,7 @@ from autotune.core.steptest import (
 from autotune.core.verdict import StepSpec
 from autotune.errors import EXIT_FAILED
 from autotune.job.powered import RunEnded
-from protocol.messages import SetOffset, SetPid, SetSetpoint
+from protocol.messages import Mode, SetOffset, SetPid, SetSetpoint
 
 __all__ = ["StepEnded", "explain_refusal", "run_step"]
 
@@ -173,6 +173,8 @@ def run_step(
     host_pid: DiscretePid | None = None
     held: float | None = None  # output held with the loop open (RECOVER)
     sent: float | None = None  # host loop: output + offset expected at the next sample
+    first_sent: float | None = None  # host loop: the first output sent
+    engaged = False  # host loop: a sample has shown the host's output
     run.sample_extra(step=StepPhase.HOLD.value, offset=0.0)
     run.sp_value = start
     last_report = -math.inf
@@ -187,14 +189,18 @@ def run_step(
             host_pid.reset(integral=preset)
         while True:
             rec = run.next_sample()
+            # what the loop had in effect at this sample; NaN while it was not running yet
+            # (samples queued before SetPid, or before the host's first output arrived)
             if loop == "device":
-                sp_applied = float(rec.setpoint) if rec.mode == 3 else sp_cmd
+                sp_applied = float(rec.setpoint) if rec.mode == Mode.PID else math.nan
             else:
-                sp_applied = sp_cmd
+                engaged = engaged or (first_sent is not None and abs(rec.output - first_sent)
+                                      <= 1e-5 * max(1.0, abs(first_sent)))
+                sp_applied = sp_cmd if engaged else math.nan
             outcome.t.append(rec.t)
             outcome.pv.append(rec.pv)
             outcome.out.append(rec.output)
-            outcome.sp.append(sp_applied)
+            outcome.sp.append(sp_cmd if math.isnan(sp_applied) else sp_applied)
             u = None
             if host_pid is not None and held is None:
                 if sent is not None and abs(rec.output - sent) > 1e-5 * max(1.0, abs(sent)):
@@ -217,6 +223,8 @@ def run_step(
             elif host_pid is not None and u is not None:
                 run.set_output(u)
                 sent = _clamp(u + off_applied, settings.output_limit)
+                if first_sent is None:
+                    first_sent = sent
             if cmd.setpoint != sp_cmd:
                 sp_cmd = cmd.setpoint
                 if loop == "device" and held is None:
