@@ -56,7 +56,7 @@ class Loop:
     noise: float = 0.0
     resolution: float = 0.0
     size: float = 1.0
-    speed: float = 20.0
+    speed: float = 25.0
     gains: PidGains | None = None
     setpoint_weight: float = 1.0
     note: str = ""
@@ -108,11 +108,11 @@ AGGRESSIVE = _aggressive()
 LOOPS: tuple[Loop, ...] = (
     Loop("fopdt-tu2", (1.5,), (2.0, 1.0), 0.6, note="Tu 2.2 s"),
     Loop("sopdt-tu4", (2.0,), (3.0, 4.0, 1.0), 0.5, note="Tu 4.0 s"),
-    Loop("nmp-tu7", (-1.0, 1.0), (6.0, 5.0, 1.0), 0.3, speed=25.0,
+    Loop("nmp-tu7", (-1.0, 1.0), (6.0, 5.0, 1.0), 0.3, speed=30.0,
          note="zero at +1/s, Tu 7.7 s"),
     Loop("integrating-load", (0.5,), (0.3, 1.0, 0.0), 0.2,
          load=-0.15 * RELAY_AMPLITUDE, note="load 15 % of the relay amplitude"),
-    Loop("host-10hz", (1.0,), (1.5, 1.0), 0.2, period=0.1, loop="host", speed=4.0,
+    Loop("host-10hz", (1.0,), (1.5, 1.0), 0.2, period=0.1, loop="host", speed=6.0,
          note="10 Hz tick, host loop: one tick of transport delay"),
     Loop("coarse-encoder", (2.0,), (1.0, 1.0), 0.1, resolution=0.03,
          note="resolution 3 % of the step"),
@@ -163,11 +163,13 @@ def pick(loop: Loop) -> tuple[str, PidGains, float, dict[str, Any]]:
 
 
 def config(window: float = 5.0) -> Config:
-    # Device watchdog 10 s of device time: at --speed 20 that is 0.5 s of wall clock, so a
-    # busy test machine does not trip it (the watchdog has its own tests).
+    # Device watchdog 30 s of device time: at --speed 30 that is 1 s of wall clock, and a
+    # sample gap of 15 s (the host waits 4 gaps, 2 s of wall clock, for a sample), so a busy
+    # test machine trips neither (the watchdog and the gap have their own tests).
     return with_overrides(load_config(None), {"safety.output_limit": OUTPUT_LIMIT,
                                               "safety.pv_window": window,
-                                              "safety.watchdog": 10.0,
+                                              "safety.watchdog": 30.0,
+                                              "safety.max_sample_gap": 15.0,
                                               "safety.max_duration": 600.0})
 
 
@@ -196,6 +198,7 @@ def run_loop(loop: Loop, tmp: Path, *, bias: float | None = None, speed: float |
     """
     name, gains, b, predicted = pick(loop)
     _, tu = ultimate(loop)
+    tmp.mkdir(parents=True, exist_ok=True)
     plant = tmp / f"{loop.name}.toml"
     plant.write_text(loop.plant_toml())
     balanced = -loop.load
@@ -236,12 +239,13 @@ def run_loop(loop: Loop, tmp: Path, *, bias: float | None = None, speed: float |
     return LoopRun(outcome, run, name, gains, b, predicted, tu, out)
 
 
-def reference_figures(loop: Loop, outcome: StepOutcome, t_end: float) -> dict[str, float]:
+def reference_figures(loop: Loop, outcome: StepOutcome, t_end: float,
+                      band: float | None = None) -> dict[str, float]:
     """python-control's figures of the same sampled loop (gains, b, derivative filter, hold):
     the plant sampled with a zero-order hold (control.sample_system), dead time as whole
     ticks, the discrete PID as discrete transfer functions, closed with control.feedback;
-    control.step_response over `t_end` s and control.step_info on the outcome's band. The
-    loop is built in state space (control.ss)."""
+    control.step_response over `t_end` s and control.step_info on the outcome's band (or
+    `band`, a fraction of the step). The loop is built in state space (control.ss)."""
     cr, cy = pid_transfer_functions(outcome.pid)
     ts = loop.period
     m = round(loop.delay / ts) + loop.extra_ticks
@@ -255,7 +259,8 @@ def reference_figures(loop: Loop, outcome: StepOutcome, t_end: float) -> dict[st
     t = np.arange(int(round(t_end / loop.period)) + 1) * loop.period
     resp = control.step_response(t_ry, t)
     y = np.asarray(resp.outputs).ravel()
-    band = outcome.band_choice.fraction if outcome.band_choice is not None else 0.02
+    if band is None:
+        band = outcome.band_choice.fraction if outcome.band_choice is not None else 0.02
     info = control.step_info(y, t, yfinal=1.0, SettlingTimeThreshold=band)
     return {"overshoot": float(info["Overshoot"]), "settling_time": float(info["SettlingTime"]),
             "rise_time": float(info["RiseTime"])}

@@ -51,7 +51,9 @@ from autotune.core.verdict import StepSpec, compare, judge, spec_from_config
 DEFAULT_WINDOW_FRACTION = 0.6  # step at most this fraction of the PV window (common practice, no source)
 DEFAULT_SETTLE_BAND = 0.02  # settling band, fraction of the step size (2% band, as step_info)
 DEFAULT_NOISY_BAND = 0.05  # the band when the noise alone exceeds the 2 % band
-NOISE_SIGMAS = 3.0  # noise amplitude = 3 standard deviations (+ resolution) (common practice, no source)
+NOISE_SIGMAS = 4.0  # noise amplitude = 4 standard deviations (+ one count): over a record of
+#   hundreds of independent samples a 3-sigma excursion is expected once, a 4-sigma one
+#   hardly ever (normal distribution tail, analytic); common practice, no source
 RECORD_SETTLING_FACTOR = 3.0  # record >= 3 x the predicted settling time (issue spec)
 RECORD_TU_FACTOR = 4.0  # record >= 4 x Tu
 FILTER_TU_FRACTION = 1.0 / 20.0  # moving average at most Tu/20 long: attenuates a swing at the
@@ -80,7 +82,7 @@ class BandChoice:
 
     fraction: half-width as a fraction of |size|; half_width: PV units; window: samples of the
     centred moving average the figures are measured on (1 = none); noise: PV units, the noise
-    amplitude left after the filter (3 sigma / sqrt(window) + resolution); label: "2 % band";
+    amplitude left after the filter (`noise_amplitude`); label: "2 % band";
     note: why this band (empty for the normal case); judged: False when the noise exceeds even
     the noisy band (settling is then not judged).
     """
@@ -114,26 +116,24 @@ def choose_band(size: float, ts: float, *, noise_std: float, resolution: float =
     quantisation `resolution` (PV units), sampled every `ts` s.
 
     The band is never widened to fit the noise: the PV is smoothed by a centred moving average
-    of at most Tu/20 (FILTER_DEFAULT_TIME without Tu), the shortest that brings 3 noise standard
-    deviations within half the band. When the noise left (3 sigma / sqrt(window) +
-    resolution: a quantised loop with integral action dithers by one count) still reaches the
+    of at most Tu/20 (FILTER_DEFAULT_TIME without Tu), the shortest that brings the noise
+    (`noise_amplitude`) within half the band. When the noise left still reaches the
     `settle_band`, the `noisy_band` is used and labelled so; when it reaches that too,
-    settling is not judged.
+    settling is not judged (and the note says which step would do).
     """
     if not ts > 0:
         raise ValueError("ts must be > 0 s")
     sigma = max(0.0, float(noise_std))
     q = max(0.0, float(resolution))
-    span = FILTER_TU_FRACTION * tu if tu is not None and tu > 0 else FILTER_DEFAULT_TIME
-    w_max = _odd(span / ts)
+    w_max = filter_limit(ts, tu)
     step = abs(size)
 
     def pick(frac: float) -> tuple[int, float]:
         half = frac * step
         w = 1
-        while w < w_max and NOISE_SIGMAS * sigma / math.sqrt(w) > 0.5 * half:
+        while w < w_max and noise_amplitude(sigma, q, w) > 0.5 * half:
             w += 2
-        return w, NOISE_SIGMAS * sigma / math.sqrt(w) + q
+        return w, noise_amplitude(sigma, q, w)
 
     w, amp = pick(settle_band)
     what = f"noise std {sigma:.3g}" + (f", resolution {q:.3g}" if q > 0 else "")
@@ -148,10 +148,38 @@ def choose_band(size: float, ts: float, *, noise_std: float, resolution: float =
     if amp5 < wide * step and wide > settle_band:
         return BandChoice(wide, wide * step, w5, amp5, band_label(wide),
                           f"{base}: settling measured on the {band_label(wide)}")
-    need = amp5 / wide
+    need = smallest_step(sigma, q, ts, tu, wide)
     return BandChoice(wide, wide * step, w5, amp5, band_label(wide),
                       f"{base} and the {band_label(wide)}: settling not judged; a step of at "
                       f"least {need:.3g} PV units would be needed", judged=False)
+
+
+def noise_amplitude(sigma: float, resolution: float, window: int) -> float:
+    """How far the PV's noise reaches after a moving average of `window` samples (PV units).
+
+    NOISE_SIGMAS standard deviations, plus one count of the quantisation: a quantised loop with
+    integral action dithers by a count about the setpoint; when the noise is at least half a
+    count it dithers the quantiser itself and the quantisation averages out like noise of
+    std resolution / sqrt(12) (uniform quantisation error, analytic)."""
+    w = max(1, int(window))
+    if resolution > 0 and sigma >= 0.5 * resolution:
+        return NOISE_SIGMAS * math.sqrt(sigma * sigma + resolution * resolution / 12.0) / \
+            math.sqrt(w)
+    return NOISE_SIGMAS * sigma / math.sqrt(w) + resolution
+
+
+def filter_limit(ts: float, tu: float | None) -> int:
+    """Longest moving average (odd samples) the figures may use: Tu/20, FILTER_DEFAULT_TIME
+    without Tu."""
+    span = FILTER_TU_FRACTION * tu if tu is not None and tu > 0 else FILTER_DEFAULT_TIME
+    return _odd(span / ts)
+
+
+def smallest_step(noise_std: float, resolution: float, ts: float, tu: float | None,
+                  fraction: float) -> float:
+    """The smallest step (PV units) whose band of `fraction` x the step the noise does not
+    reach after the longest filter allowed (`noise_amplitude`, `filter_limit`)."""
+    return noise_amplitude(noise_std, resolution, filter_limit(ts, tu)) / fraction
 
 
 # ---------------------------------------------------------------------- at rest
@@ -164,7 +192,9 @@ class RestCriteria:
     units) and drift_stderr (PV units/s): what the rest check measured (noise_std None: the
     noise is estimated from the hold itself, from successive differences); spread_floor (PV
     units) and drift_floor (PV units/s): spread and drift small enough not to matter to the
-    step (a tenth of the band; a quarter of the band over the record).
+    step (a tenth of the band; a quarter of the band over the record); offset_limit (PV units):
+    how far the PV's mean may sit from the setpoint held (None: anywhere, as a loop without
+    integral action may).
     """
 
     window: float
@@ -174,6 +204,7 @@ class RestCriteria:
     drift_stderr: float = 0.0
     spread_floor: float = 0.0
     drift_floor: float = 0.0
+    offset_limit: float | None = None
 
     def as_dict(self) -> dict[str, Any]:
         return dataclasses.asdict(self)
@@ -192,6 +223,8 @@ class RestState:
     noise: float  # PV units: measurement noise std (rest check, else from the hold)
     mean: float  # PV units
     output: float | None  # output units: mean output over the window (None: not known)
+    offset: float | None = None  # PV units: mean minus the setpoint held (None: not checked)
+    offset_limit: float | None = None  # PV units
 
     def as_dict(self) -> dict[str, Any]:
         return dataclasses.asdict(self)
@@ -209,13 +242,15 @@ def difference_noise(pv: Sequence[float]) -> float:
 
 
 def rest_state(t: Sequence[float], pv: Sequence[float], criteria: RestCriteria,
-               out: Sequence[float] | None = None) -> RestState:
+               out: Sequence[float] | None = None, setpoint: float | None = None) -> RestState:
     """Is the PV at rest over these samples (the last rest window)?
 
     spread (residual std about a straight line) at most max(2 x noise, resolution,
     spread_floor); |drift| (slope of the line) at most max(3 standard errors of that slope,
     3 x the rest check's drift standard error, drift_floor) (3 sigma: common practice, no
-    source). The noise is the rest check's, or from successive differences of these samples.
+    source); with a `setpoint` (PV units) and criteria.offset_limit, the mean within that of
+    the setpoint. The noise is the rest check's, or from successive differences of these
+    samples.
     """
     ta, pa = np.asarray(t, dtype=float), np.asarray(pv, dtype=float)
     rep = assess_rest(ta, pa, np.zeros_like(pa) if out is None else np.asarray(out, float))
@@ -225,8 +260,12 @@ def rest_state(t: Sequence[float], pv: Sequence[float], criteria: RestCriteria,
     drift_se = rep.drift_stderr if math.isfinite(rep.drift_stderr) else 0.0
     drift_limit = max(3.0 * drift_se, 3.0 * criteria.drift_stderr, criteria.drift_floor)
     ok = rep.noise_std <= spread_limit and abs(rep.drift) <= drift_limit
+    offset = None
+    if setpoint is not None and criteria.offset_limit is not None:
+        offset = rep.mean - setpoint
+        ok = ok and abs(offset) <= criteria.offset_limit
     return RestState(ok, rep.noise_std, spread_limit, rep.drift, drift_limit, noise, rep.mean,
-                     None if out is None else rep.output_mean)
+                     None if out is None else rep.output_mean, offset, criteria.offset_limit)
 
 
 def moving_cause(t: Sequence[float], pv: Sequence[float], state: RestState,
@@ -251,6 +290,13 @@ def moving_cause(t: Sequence[float], pv: Sequence[float], state: RestState,
         return (f"the PV oscillates about the start value (period {period:.3g} s, amplitude "
                 f"{amp:.3g}, spread {state.spread:.3g} above {state.spread_limit:.3g}): the "
                 "gains are too aggressive for this loop"), {"period": period, "amplitude": amp}
+    if state.offset is not None and state.offset_limit is not None and \
+            abs(state.offset) > state.offset_limit:
+        moving = (f" and moves at {state.drift:+.3g} PV units/s"
+                  if abs(state.drift) > state.drift_limit else " and stays there")
+        return (f"the PV sits {abs(state.offset):.3g} PV units "
+                f"{'above' if state.offset > 0 else 'below'} the start value{moving}: the "
+                "integral action is too slow for the load, or the output cannot reach it"), None
     if abs(state.drift) > state.drift_limit:
         return (f"the PV drifts at {state.drift:+.3g} PV units/s (at rest means at most "
                 f"{state.drift_limit:.3g}): the loop does not hold the load yet (too little "
@@ -281,7 +327,8 @@ class StepPlan:
     successive swings at or above it stop the step (None: never); deviation_allowance:
     fraction of the step the PV may stray beyond the predicted response before the step is
     stopped as oscillating. why: why the record is as long as it is; notes: other lines for the
-    screen (band, caps).
+    screen (band, caps). max_size: the largest |size| (PV units) the step may be raised to when
+    the noise measured in the hold would hide even the noisy band (None: never raised).
     """
 
     size: float
@@ -306,6 +353,7 @@ class StepPlan:
     deviation_allowance: float = 0.05
     why: str = ""
     notes: tuple[str, ...] = ()
+    max_size: float | None = None
 
     def __post_init__(self) -> None:
         if not math.isfinite(self.size) or self.size == 0.0:
@@ -366,6 +414,7 @@ def plan_step(
     response: Sequence[float] | None = None,
     load_offset: float = 0.0,
     return_to_start: bool = True,
+    integral: bool = True,
 ) -> StepPlan:
     """The plan of a confirmation step from what is known before it.
 
@@ -377,7 +426,8 @@ def plan_step(
     the shortest rest before the step (s); max_duration: powered time left for the step
     (safety.max_duration minus what the run has used, s); spec: the step's spec (None: the
     default); response: the predicted PV after the step normalised to the step, a tick apart
-    (`predicted_response`; empty: none).
+    (`predicted_response`; empty: none); integral: the gains have integral action (then the
+    PV must come to rest at the start value, not just anywhere).
 
     Record after each change: max(duration, 3 x predicted settling time, 4 x Tu), capped so
     that the hold, the step and the return fit in `max_duration`. Before the step the PV must
@@ -424,7 +474,8 @@ def plan_step(
     half = band.half_width
     rest = RestCriteria(window=window, timeout=window + record, noise_std=noise_std,
                         resolution=resolution, drift_stderr=drift_stderr,
-                        spread_floor=0.1 * half, drift_floor=0.25 * half / record)
+                        spread_floor=0.1 * half, drift_floor=0.25 * half / record,
+                        offset_limit=max(0.5 * half, resolution) if integral else None)
     margin = spec.overshoot_margin if spec.overshoot_margin is not None else 5.0
     return StepPlan(
         size=size, hold_time=window, timeout=record, settle_band=band.fraction,
@@ -457,6 +508,14 @@ def fit_step_to_window(
     )
 
 
+def largest_step(start: float, size: float, pv_low: float, pv_high: float,
+                 overshoot: float) -> float:
+    """The largest |step| (PV units) in the direction of `size` from `start` whose peak with
+    `overshoot` percent stays inside [pv_low, pv_high] (0 when the start is outside)."""
+    room = (pv_high - start) if size > 0 else (start - pv_low)
+    return max(0.0, room) / (1.0 + max(overshoot, 0.0) / 100.0)
+
+
 def check_setpoints(start: float, size: float, pv_low: float, pv_high: float,
                     overshoot: float) -> str | None:
     """None when the start value, the stepped setpoint and the peak the spec allows
@@ -470,8 +529,7 @@ def check_setpoints(start: float, size: float, pv_low: float, pv_high: float,
     peak = start + size * (1.0 + max(overshoot, 0.0) / 100.0)
     if pv_low <= target <= pv_high and pv_low <= peak <= pv_high:
         return None
-    room = (pv_high - start) if size > 0 else (start - pv_low)
-    fit = room / (1.0 + max(overshoot, 0.0) / 100.0)
+    fit = largest_step(start, size, pv_low, pv_high, overshoot)
     what = "setpoint" if not pv_low <= target <= pv_high else \
         f"peak with the {overshoot:.3g} % overshoot the spec allows"
     value = target if what == "setpoint" else peak
@@ -566,6 +624,7 @@ class StepExperiment:
                  output_limit: float | None = None) -> None:
         self.plan = plan
         self.start_value = float(start_value)
+        self.size = plan.size  # PV units: the step made (raised when the noise demands it)
         self.target = self.start_value + plan.size
         self.output_limit = output_limit
         self.phase = StepPhase.HOLD
@@ -611,7 +670,7 @@ class StepExperiment:
         return float(np.median(np.diff(t))) if len(t) > 2 else 0.01
 
     def _effective(self, sp: float, offset: float) -> bool:
-        tol_sp = 1e-6 * max(1.0, abs(self._sp_cmd)) + 1e-4 * abs(self.plan.size)
+        tol_sp = 1e-6 * max(1.0, abs(self._sp_cmd)) + 1e-4 * abs(self.size)
         tol_off = 1e-6 * max(1.0, abs(self._off_cmd))
         return abs(sp - self._sp_cmd) <= tol_sp and abs(offset - self._off_cmd) <= tol_off
 
@@ -684,7 +743,8 @@ class StepExperiment:
         wt, wp, wo = self._window(t, crit.window)
         if wt.size < 3:
             return None
-        return rest_state(wt, wp, crit, wo)
+        return rest_state(wt, wp, crit, wo, self._sp_cmd if self.phase is StepPhase.HOLD
+                          else None)
 
     def _end_hold(self, t: float, state: RestState, events: list[StepEvent]) -> None:
         self.hold_state = state
@@ -697,10 +757,30 @@ class StepExperiment:
         sigma = max(self.noise_std, crit.noise_std or 0.0) if crit is not None else self.noise_std
         q = max(self.resolution, crit.resolution if crit is not None else 0.0)
         noisy = self.plan.noisy_band
-        choice = choose_band(self.plan.size, self._ts(), noise_std=sigma, resolution=q,
-                             settle_band=self.plan.settle_band,
-                             noisy_band=noisy if noisy is not None and
-                             noisy > self.plan.settle_band else None, tu=self.plan.tu)
+        noisy = noisy if noisy is not None and noisy > self.plan.settle_band else None
+
+        def band_for(size: float) -> BandChoice:
+            return choose_band(size, self._ts(), noise_std=sigma, resolution=q,
+                               settle_band=self.plan.settle_band, noisy_band=noisy,
+                               tu=self.plan.tu)
+
+        choice = band_for(self.size)
+        if not choice.judged and self.plan.max_size is not None:
+            need = 1.05 * smallest_step(sigma, q, self._ts(), self.plan.tu,
+                                        noisy or self.plan.settle_band)
+            if abs(self.size) < need <= self.plan.max_size:
+                old_size = self.size
+                self.size = math.copysign(need, self.size)
+                self.target = self.start_value + self.size
+                choice = band_for(self.size)
+                self.band = dataclasses.replace(self.band, half_width=self.band.fraction
+                                                * abs(self.size))
+                events.append(StepEvent(t, "step_raised", {
+                    "from": old_size, "to": self.size,
+                    "why": f"the PV noise measured in the hold (std {sigma:.3g}, resolution "
+                           f"{q:.3g}) would hide the {choice.label} of a {abs(old_size):g} "
+                           f"step; raised to {abs(self.size):.3g} (at most {self.plan.max_size:.3g} "
+                           "fits the PV window with the overshoot allowed)"}))
         old = self.band
         if (choice.fraction > old.fraction or choice.window > old.window
                 or choice.judged != old.judged or choice.noise > old.noise):
@@ -734,8 +814,8 @@ class StepExperiment:
         plan = self.plan
         if plan.max_decay_ratio is None or self._phase_start is None:
             return
-        r = (pv_f - self.start_value) / plan.size
-        step = abs(plan.size)
+        r = (pv_f - self.start_value) / self.size
+        step = abs(self.size)
         noise = self.band.noise / step
         if self._tracker is None:
             if r < SWING_START:
@@ -870,7 +950,7 @@ class StepExperiment:
         if hold:
             wt, wp, wo = self._window(t, crit.window)
             if state is None:
-                state = rest_state(wt, wp, crit, wo) if wt.size >= 3 else \
+                state = rest_state(wt, wp, crit, wo, self._sp_cmd) if wt.size >= 3 else \
                     RestState(False, math.nan, 0.0, math.nan, 0.0, 0.0, pv, out)
             ct, cp, co = self._window(t, 2.0 * crit.window)  # two windows show a swing better
             cause, osc = moving_cause(ct, cp, state, co, self.output_limit)
@@ -1150,6 +1230,7 @@ def settings_from_config(
     bias: float | None = None,
     model: Any = None,
     elapsed: float = 0.0,
+    fixed_size: bool = False,
 ) -> tuple[StepSettings, str | None]:
     """StepSettings from an autotune.config.Config (what `autotune step` and `tune` use).
 
@@ -1162,7 +1243,10 @@ def settings_from_config(
     step.duration and step.settle_time, safety.max_duration minus `elapsed` (powered seconds
     already used), and model (DelayedTF: the predicted response the step is watched against;
     with the candidate's gains). bias: the output the loop is at (output units; None:
-    relay.bias). Returns the settings and a message when the step had to be reduced.
+    relay.bias). Unless `fixed_size` (the operator gave the size), a step whose band the
+    measured noise would hide is raised to the smallest that shows it, up to the window's
+    limit (here from the rest check; in the hold when only the hold measures the noise).
+    Returns the settings and a message when the step had to be reduced or was raised.
     """
     for v in (size, cfg.step.size, cfg.design.step_size, cfg.relay.target_amplitude):
         if v is not None:
@@ -1179,6 +1263,18 @@ def settings_from_config(
                             ts=None)
     tick = 0.01 if ts is None else float(ts)
     predicted = dict(getattr(candidate, "predicted", None) or {})
+    cap = DEFAULT_WINDOW_FRACTION * cfg.safety.pv_window
+    if rest is not None and not fixed_size:
+        noisy = spec.noisy_band if spec.noisy_band > spec.settle_band else spec.settle_band
+        need = 1.05 * smallest_step(float(rest.noise_std), float(rest.resolution), tick, tu,
+                                    noisy)
+        if abs(fitted) < need <= cap:
+            note = ((note + "; ") if note else "") + (
+                f"step raised from {abs(fitted):g} to {need:.3g} PV units: the PV noise (std "
+                f"{float(rest.noise_std):.3g}, resolution {float(rest.resolution):.3g}) would "
+                f"hide the {band_label(noisy)} of a smaller step")
+            fitted = math.copysign(need, fitted)
+            settings = dataclasses.replace(settings, plan=StepPlan(size=fitted))
     response: tuple[float, ...] = ()
     if model is not None and candidate is not None:
         pid = settings.pid_settings(candidate.gains, tick)
@@ -1198,7 +1294,9 @@ def settings_from_config(
         drift_stderr=0.0 if rest is None else float(getattr(rest, "drift_stderr", 0.0)),
         duration=cfg.step.duration, hold=cfg.step.settle_time,
         max_duration=cfg.safety.max_duration - elapsed, spec=spec, response=response,
-        load_offset=load_offset)
+        load_offset=load_offset,
+        integral=candidate is None or float(candidate.gains.ki) != 0.0)
+    plan = dataclasses.replace(plan, max_size=None if fixed_size else cap)
     return dataclasses.replace(settings, plan=plan), note
 
 
@@ -1253,6 +1351,8 @@ class StepOutcome:
     hold: RestState | None = None
     oscillation: dict[str, Any] | None = None
     decay_ratio: float | None = None
+    record: float | None = None  # s recorded after the step (less when it was stopped)
+    size: float = 0.0  # PV units: the step made (the plan's, or raised for the noise)
     t: list[float] = field(default_factory=list)
     pv: list[float] = field(default_factory=list)
     out: list[float] = field(default_factory=list)
@@ -1281,15 +1381,16 @@ class StepOutcome:
             "setpoint_weight": self.pid.setpoint_weight,
             "loop": self.loop,
             "ts": self.pid.ts,
-            "size": self.plan.size,
+            "size": self.size,
+            "planned_size": self.plan.size,
             "start_value": self.start_value,
             "bias": self.pid.bias,
             "rest_output": self.rest_output,
             "settled": self.settled,
             "settle_band": self.band,
             "band": None if bc is None else {**bc.as_dict(), "half_width": self.band},
-            "record": {"length": self.plan.timeout, "why": self.plan.why,
-                       "notes": list(self.plan.notes)},
+            "record": {"planned": self.plan.timeout, "recorded": self.record,
+                       "why": self.plan.why, "notes": list(self.plan.notes)},
             "hold": None if self.hold is None else self.hold.as_dict(),
             "oscillation": self.oscillation,
             "decay_ratio": self.decay_ratio,
@@ -1327,7 +1428,7 @@ def _band_from_record(exp: StepExperiment, t: np.ndarray, pv: np.ndarray) -> Ban
     noisy = exp.plan.noisy_band
     sigma = max(exp.noise_std, exp.plan.rest.noise_std or 0.0) if exp.plan.rest else \
         exp.noise_std
-    choice = choose_band(exp.plan.size, ts, noise_std=sigma, resolution=q,
+    choice = choose_band(exp.size, ts, noise_std=sigma, resolution=q,
                          settle_band=exp.plan.settle_band,
                          noisy_band=noisy if noisy is not None and noisy > exp.plan.settle_band
                          else None, tu=exp.plan.tu)
@@ -1345,6 +1446,7 @@ def finish_outcome(o: StepOutcome, exp: StepExperiment) -> StepOutcome:
     response when the plan has one, else the candidate's, labelled when their band differs).
     """
     o.segments = list(exp.segments)
+    o.size = exp.size
     band = exp.band
     o.noise_std = exp.noise_std
     o.rest_output = exp.rest_output
@@ -1361,12 +1463,13 @@ def finish_outcome(o: StepOutcome, exp: StepExperiment) -> StepOutcome:
                                      if math.isfinite(o.pid.out_max) else None,
                                      band.fraction, band.window)
             y = moving_average(ya[sl], band.window)
-            step = abs(plan.size)
-            ex = swings_of(ta[sl], y, exp.start_value, plan.size, swing_threshold(band, step))
+            step = abs(exp.size)
+            ex = swings_of(ta[sl], y, exp.start_value, exp.size, swing_threshold(band, step))
             ratios = decay_ratios(ex, min_swing_of(band, step))
             o.decay_ratio = max((r.decay_ratio for r in ratios), default=None)
     o.band_choice = band
     o.band = band.half_width
+    o.record = None if seg is None else seg.t_end - seg.t_start
     # settled: the step ran its record and the PV ends inside the band (figures' reading)
     o.settled = bool(seg is not None and exp.segment(StepPhase.STEP) is not None
                      and exp.oscillation is None and o.metrics is not None
@@ -1394,11 +1497,9 @@ def judge_outcome(o: StepOutcome, spec: StepSpec | None) -> None:
     """The verdict of a finished outcome against `spec` (None: the default spec)."""
     if o.metrics is None and o.oscillation is None:
         return
-    seg = next((s for s in o.segments if s.phase is StepPhase.STEP), None)
-    record = None if seg is None else seg.t_end - seg.t_start
     band = o.band_choice
     o.verdict = judge(o.metrics if o.metrics is not None else {}, spec, settled=o.settled,
-                      predicted=o.predicted_on_band, record=record,
+                      predicted=o.predicted_on_band, record=o.record,
                       oscillation=o.oscillation, decay_ratio=o.decay_ratio,
                       band_label=band.label if band is not None else o.plan.label,
                       band_judged=band.judged if band is not None else True,

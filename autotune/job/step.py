@@ -24,6 +24,7 @@ from autotune.core.steptest import (
     check_setpoints,
     finish_outcome,
     judge_outcome,
+    largest_step,
 )
 from autotune.core.verdict import StepSpec
 from autotune.errors import EXIT_FAILED
@@ -150,10 +151,20 @@ def run_step(
     limits = run.limits_readback
     allowed, _ = spec.overshoot_limit(_num(candidate.predicted.get("overshoot")))
     if limits is not None:
-        refusal = check_setpoints(start, plan.size, limits["pv_low"], limits["pv_high"],
-                                  allowed if allowed is not None else 0.0)
+        allow = allowed if allowed is not None else 0.0
+        refusal = check_setpoints(start, plan.size, limits["pv_low"], limits["pv_high"], allow)
         if refusal is not None:
             raise fail("step:out_of_range", refusal)
+        if plan.max_size is not None:  # a step raised for the noise must fit the board too
+            room = largest_step(start, plan.size, limits["pv_low"], limits["pv_high"], allow)
+            plan = dataclasses.replace(plan, max_size=min(plan.max_size, room))
+            exp = StepExperiment(plan, start, bias=settings.bias,
+                                 output_limit=settings.output_limit)
+            outcome.plan = plan
+    if abs(plan.load_offset) > settings.output_limit:
+        raise fail("step:out_of_range",
+                   f"the load offset {plan.load_offset:g} is beyond the output limit "
+                   f"+/-{settings.output_limit:g}: the board would refuse it")
     if abs(preset) > settings.output_limit:
         raise fail("step:out_of_range",
                    f"the output the loop is at ({settings.bias:g}, with the setpoint-weight "
@@ -209,7 +220,7 @@ def run_step(
             cmd: StepCommand = exp.update(rec.t, rec.pv, sp_applied, off_applied, rec.output)
             for ev in cmd.events:
                 run.event(f"step:{ev.kind}", ev.detail, step_phase=cmd.phase.value)
-                if ev.kind in ("oscillating", "band", "not_at_rest"):
+                if ev.kind in ("oscillating", "band", "not_at_rest", "step_raised"):
                     run.say(_say_event(ev.kind, ev.detail))
             if cmd.hold_output is not None and held is None:
                 held = _clamp(cmd.hold_output, settings.output_limit)
@@ -282,4 +293,6 @@ def _say_event(kind: str, d: dict[str, Any]) -> str:
                 "the step is stopped and the output held until the PV is at rest")
     if kind == "band":
         return f"settling band: the {d.get('label')}: {d.get('note', '')}"
+    if kind == "step_raised":
+        return f"step raised from {d['from']:+.3g} to {d['to']:+.3g}: {d.get('why', '')}"
     return f"the PV is not at rest: {d.get('cause', '')}"
