@@ -576,3 +576,28 @@ def test_a_quantised_record_moves_to_the_labelled_noisy_band() -> None:
     assert o.band_choice is not None and o.band_choice.label == "5 % band"
     assert "steps of 0.03" in o.band_choice.note
     assert o.rows[2].label.startswith("5 % band")
+
+
+def test_a_response_far_from_the_prediction_is_stopped_as_oscillating() -> None:
+    """The plan predicts a well-damped loop (PI kp 1.5, ki 4: 5 % overshoot); the gains run
+    are Ziegler-Nichols PI (Ziegler and Nichols 1942, on the analytic Ku/Tu): 66 % overshoot
+    with a decay ratio of 0.12, below the spec's 0.5. The PV strays beyond the predicted
+    response by more than the spec's 5 points, and the step stops at the trough that follows
+    the first peak, half a period later."""
+    from autotune.core import rules
+    from autotune.core.steptest import predicted_response
+
+    plant = lti.fopdt(2.0, 0.5, 0.05)
+    ku, tu = plant.ultimate_point()  # type: ignore[misc]
+    response = predicted_response(plant, UNDERDAMPED.with_gains(PidGains(1.5, 4.0)), 1.0, 5.0)
+    assert max(response) < 1.06
+    plan = plan_step(1.0, ts=TS, tu=tu, hold=0.1, noise_std=0.0, duration=5.0,
+                     response=response)
+    exp, _ = run_loop(plan, UNDERDAMPED.with_gains(rules.zn_pi(ku, tu)), t_max=20.0)
+    assert exp.oscillation is not None and "strayed" in exp.oscillation["cause"]
+    step = exp.segments[0]
+    assert step.phase is StepPhase.STEP and not step.settled
+    first_peak, trough = exp.extrema[0], exp.extrema[1]
+    assert first_peak.y > 1.5 and trough.y < 1.0
+    assert step.t_end - trough.t < 0.1  # confirmed as soon as the PV turned back up
+    assert exp.oscillation["period"] == pytest.approx(2 * (trough.t - first_peak.t))

@@ -240,3 +240,38 @@ def test_a_pv_that_never_comes_to_rest_stops_with_the_reason(tmp_path: Path) -> 
     assert "integral action is too slow for the load" in r.run.outcome.message
     assert r.outcome is not None and r.outcome.segments == []  # no step was made
     assert r.run.outcome.stop is not None and r.run.outcome.stop.confirmed
+
+
+def test_the_host_loop_starts_bumpless_too(tmp_path: Path) -> None:
+    """The same loaded axis with the PID on the host: its integral is preset to the bias, so
+    the first output it sends is the bias and the PV stays where it was (short hold only)."""
+    from autotune.core.pid import PidGains
+    from autotune.core.steptest import StepCandidate, StepPlan, StepSettings
+    from autotune.job.powered import PoweredRun, RunOptions
+    from autotune.job.step import run_step
+    from tests.steploops import OUTPUT_LIMIT, config
+
+    loop = BY_NAME["integrating-load"]
+    plant = tmp_path / "plant.toml"
+    plant.write_text(loop.plant_toml())
+    run = PoweredRun(config(), RunOptions(port="sim", yes=True, out_dir=tmp_path / "out",
+                                          plant=str(plant), speed=2.0, keys=False,
+                                          verb="step", stdout=open("/dev/null", "w")))  # noqa: SIM115
+    with run:
+        run.arm()
+        t0 = None
+        while True:  # the relay's end: the output at the balanced bias, the PV at rest
+            run.set_output(-loop.load)
+            rec = run.next_sample()
+            t0 = rec.t if t0 is None else t0
+            if rec.t - t0 >= 2.0:
+                break
+        plan = StepPlan(size=0.2, hold_time=0.5, timeout=0.3, return_to_start=False)
+        o = run_step(run, StepCandidate("m", PidGains(1.8, 0.45, 0.45)),
+                     StepSettings(plan, loop="host", output_limit=OUTPUT_LIMIT,
+                                  bias=-loop.load))
+    run.end_session()
+    t, pv, out = (np.asarray(a) for a in (o.t, o.pv, o.out))
+    hold = t < o.segments[0].t_start
+    assert out[hold][1:] == pytest.approx(-loop.load, abs=1e-3)  # output units: no bump
+    assert float(np.max(np.abs(pv[hold] - o.start_value))) < 0.002  # PV units
