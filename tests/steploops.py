@@ -16,6 +16,7 @@ control.step_response, control.step_info on the same band).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -189,12 +190,13 @@ class LoopRun:
 
 
 def run_loop(loop: Loop, tmp: Path, *, bias: float | None = None, speed: float | None = None,
-             window: float = 5.0, hold_bias: float = 3.0) -> LoopRun:
+             window: float = 5.0, hold_bias: float = 3.0, back: bool = True) -> LoopRun:
     """One confirmation step of `loop` on the mock device process.
 
     bias: the output the step starts from (None: the output that balances the load, as the
     relay's balanced bias); the output is held there for `hold_bias` s of device time and the
-    last second is the rest check (noise, resolution, drift).
+    last second is the rest check (noise, resolution, drift). back: return to the start value
+    after the step (False: the loop holds the stepped setpoint; shorter runs for the tests).
     """
     name, gains, b, predicted = pick(loop)
     _, tu = ultimate(loop)
@@ -230,6 +232,9 @@ def run_loop(loop: Loop, tmp: Path, *, bias: float | None = None, speed: float |
             cfg, loop.loop, size=loop.size, candidate=cand, ts=loop.period, tu=tu,
             rest=report, bias=bias, model=loop.model(), setpoint_weight=b,
             elapsed=rec.t - (run.t_start or rec.t))
+        if not back:
+            settings = dataclasses.replace(settings, plan=dataclasses.replace(
+                settings.plan, return_to_start=False))
         try:
             outcome = run_step(run, cand, settings)
         except StepEnded as ended:

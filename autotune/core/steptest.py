@@ -328,7 +328,8 @@ class StepPlan:
     fraction of the step the PV may stray beyond the predicted response before the step is
     stopped as oscillating. why: why the record is as long as it is; notes: other lines for the
     screen (band, caps). max_size: the largest |size| (PV units) the step may be raised to when
-    the noise measured in the hold would hide even the noisy band (None: never raised).
+    the noise measured in the hold would hide even the noisy band (inf: as far as the board's
+    PV window allows with the overshoot the spec allows; None: never raised).
     """
 
     size: float
@@ -353,7 +354,7 @@ class StepPlan:
     deviation_allowance: float = 0.05
     why: str = ""
     notes: tuple[str, ...] = ()
-    max_size: float | None = None
+    max_size: float | None = math.inf
 
     def __post_init__(self) -> None:
         if not math.isfinite(self.size) or self.size == 0.0:
@@ -765,7 +766,8 @@ class StepExperiment:
                                tu=self.plan.tu)
 
         choice = band_for(self.size)
-        if not choice.judged and self.plan.max_size is not None:
+        if not choice.judged and self.plan.max_size is not None and \
+                math.isfinite(self.plan.max_size):
             need = 1.05 * smallest_step(sigma, q, self._ts(), self.plan.tu,
                                         noisy or self.plan.settle_band)
             if abs(self.size) < need <= self.plan.max_size:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections import deque
 from typing import Any
 
 from autotune.core.pid import DiscretePid
@@ -155,7 +156,7 @@ def run_step(
         refusal = check_setpoints(start, plan.size, limits["pv_low"], limits["pv_high"], allow)
         if refusal is not None:
             raise fail("step:out_of_range", refusal)
-        if plan.max_size is not None:  # a step raised for the noise must fit the board too
+        if plan.max_size is not None:  # a step raised for the noise must fit the board
             room = largest_step(start, plan.size, limits["pv_low"], limits["pv_high"], allow)
             plan = dataclasses.replace(plan, max_size=min(plan.max_size, room))
             exp = StepExperiment(plan, start, bias=settings.bias,
@@ -184,8 +185,8 @@ def run_step(
     host_pid: DiscretePid | None = None
     held: float | None = None  # output held with the loop open (RECOVER)
     sent: float | None = None  # host loop: output + offset expected at the next sample
-    first_sent: float | None = None  # host loop: the first output sent
-    engaged = False  # host loop: a sample has shown the host's output
+    sent_recent: deque[float] = deque(maxlen=32)  # host loop: outputs sent before engaged
+    engaged = False  # host loop: a sample has shown an output the host sent
     run.sample_extra(step=StepPhase.HOLD.value, offset=0.0)
     run.sp_value = start
     last_report = -math.inf
@@ -205,8 +206,9 @@ def run_step(
             if loop == "device":
                 sp_applied = float(rec.setpoint) if rec.mode == Mode.PID else math.nan
             else:
-                engaged = engaged or (first_sent is not None and abs(rec.output - first_sent)
-                                      <= 1e-5 * max(1.0, abs(first_sent)))
+                # a late host may send twice within a tick: any output sent counts
+                engaged = engaged or any(abs(rec.output - u_) <= 1e-5 * max(1.0, abs(u_))
+                                         for u_ in sent_recent)
                 sp_applied = sp_cmd if engaged else math.nan
             outcome.t.append(rec.t)
             outcome.pv.append(rec.pv)
@@ -234,8 +236,8 @@ def run_step(
             elif host_pid is not None and u is not None:
                 run.set_output(u)
                 sent = _clamp(u + off_applied, settings.output_limit)
-                if first_sent is None:
-                    first_sent = sent
+                if not engaged:
+                    sent_recent.append(sent)
             if cmd.setpoint != sp_cmd:
                 sp_cmd = cmd.setpoint
                 if loop == "device" and held is None:
