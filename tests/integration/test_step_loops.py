@@ -130,7 +130,7 @@ def test_a_loaded_axis_does_not_drop_when_the_pid_takes_over(tmp_path: Path) -> 
     loop = BY_NAME["integrating-load"]
 
     def drop(run_dir: Path, bias: float | None) -> tuple[float, float]:
-        r = run_loop(loop, run_dir, bias=bias)
+        r = run_loop(loop, run_dir, bias=bias, back=False)
         s = read_session(r.out_dir / "session.jsonl")
         t0 = float(next(e for e in s.events if e.get("kind") == "step:hold")["t"])
         assert r.outcome is not None and r.outcome.segments
