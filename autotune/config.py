@@ -11,6 +11,7 @@ dataclasses). An unknown section or key, a wrong type or an impossible combinati
 [prechecks]    # rest, direction pulse, breakaway ramp
 [design]       # what the proposed gains should achieve
 [step]         # the confirmation step test
+[spec]         # what the confirmation step must show to pass
 ```
 
 Units: seconds, PV units, output units. Keys whose default is `None` ("automatic") are simply
@@ -169,11 +170,12 @@ class StepConfig:
     """The confirmation step test (gains applied, one setpoint step).
 
     size: setpoint step (PV units); None = the design step size.
-    duration: how long the response is recorded after the step (s).
-    settle_time: how long to hold the setpoint before the step (s).
+    duration: the shortest record after each setpoint change (s); the record is
+        max(duration, 3 x the predicted settling time, 4 x Tu), capped by safety.max_duration.
+    settle_time: the shortest hold at rest at the start value before the step (s); the hold
+        lasts until the PV has been at rest for max(settle_time, Tu).
     deriv_filter_n: derivative filter of hand-given gains, Tf = Td / N (a proposal brings its
         own).
-    max_saturation: longest time the output may sit at its limit during the step (s).
     load_offset: load-disturbance test: output offset added once the step has settled
         (output units); 0 = no load test.
     retries: unattended (--yes): after a step that misses the spec, this many gentler
@@ -184,9 +186,34 @@ class StepConfig:
     duration: float = 5.0
     settle_time: float = 1.0
     deriv_filter_n: float = 10.0
-    max_saturation: float = 0.25
     load_offset: float = 0.0
     retries: int = 2
+
+
+@dataclass(frozen=True)
+class SpecConfig:
+    """What the confirmation step must show to pass (the step's spec; every check is written
+    in result.json beside its limit). The user's design limits (design.max_overshoot,
+    design.max_settling_time) bind as well where they are tighter.
+
+    max_overshoot: overshoot never above this (percent of the step).
+    overshoot_margin: overshoot at most this many percentage points above the prediction.
+    settling_factor: settled within this many times the predicted settling time.
+    max_saturation: the output at its limit for at most this long (s).
+    max_decay_ratio: successive swings decaying by less than this ratio (swing k+2 over
+        swing k) are a sustained oscillation: the step stops early and the verdict says
+        "oscillating".
+    settle_band: settling band half-width, fraction of the step (0.02: the 2 % band).
+    noisy_band: the band used, and labelled, when the PV noise alone exceeds settle_band.
+    """
+
+    max_overshoot: float = 25.0
+    overshoot_margin: float = 5.0
+    settling_factor: float = 2.0
+    max_saturation: float = 0.25
+    max_decay_ratio: float = 0.5
+    settle_band: float = 0.02
+    noisy_band: float = 0.05
 
 
 @dataclass(frozen=True)
@@ -199,6 +226,7 @@ class Config:
     prechecks: PrecheckConfig = field(default_factory=PrecheckConfig)
     design: DesignConfig = field(default_factory=DesignConfig)
     step: StepConfig = field(default_factory=StepConfig)
+    spec: SpecConfig = field(default_factory=SpecConfig)
     source: str = "<defaults>"
 
     @property
@@ -228,6 +256,7 @@ SECTIONS: dict[str, type] = {
     "prechecks": PrecheckConfig,
     "design": DesignConfig,
     "step": StepConfig,
+    "spec": SpecConfig,
 }
 
 
@@ -429,9 +458,20 @@ def validate(cfg: Config, source: str | None = None) -> None:
     _positive(src, "step.duration", st.duration)
     _positive(src, "step.settle_time", st.settle_time, allow_zero=True)
     _positive(src, "step.deriv_filter_n", st.deriv_filter_n)
-    _positive(src, "step.max_saturation", st.max_saturation, allow_zero=True)
     if st.retries < 0:
         raise ConfigError(src, "step.retries", f"must be >= 0, got {st.retries}")
+    sp = cfg.spec
+    _positive(src, "spec.max_overshoot", sp.max_overshoot, allow_zero=True)
+    _positive(src, "spec.overshoot_margin", sp.overshoot_margin, allow_zero=True)
+    _positive(src, "spec.settling_factor", sp.settling_factor)
+    _positive(src, "spec.max_saturation", sp.max_saturation, allow_zero=True)
+    _positive(src, "spec.max_decay_ratio", sp.max_decay_ratio)
+    for key, v in (("spec.settle_band", sp.settle_band), ("spec.noisy_band", sp.noisy_band)):
+        if not 0.0 < v < 0.5:
+            raise ConfigError(src, key, f"must be a fraction of the step in (0, 0.5), got {v:g}")
+    if sp.noisy_band < sp.settle_band:
+        raise ConfigError(src, "spec.noisy_band", f"{sp.noisy_band:g} is narrower than "
+                          f"spec.settle_band {sp.settle_band:g}")
 
     # Combinations that cannot work.
     if abs(r.bias) >= s.output_limit:

@@ -89,3 +89,57 @@ def test_bad_input_is_refused() -> None:
         step_metrics(np.arange(3.0), np.zeros(3), 1.0, 1.0)
     with pytest.raises(ValueError):
         step_metrics(np.arange(3.0), np.zeros(4), 0.0, 1.0)
+
+
+# ---------------------------------------------------------------- noise filter and swings
+def test_moving_average_is_centred_and_keeps_the_ends() -> None:
+    from autotune.core.metrics import RunningMean, moving_average
+
+    rng = np.random.default_rng(3)
+    y = rng.normal(size=50)
+    out = moving_average(y, 5)
+    # interior: numpy's convolution with a flat kernel (the textbook moving average)
+    assert np.allclose(out[2:-2], np.convolve(y, np.ones(5) / 5, mode="valid"))
+    assert out[0] == pytest.approx(y[0]) and out[-1] == pytest.approx(y[-1])  # shrinks at the ends
+    assert out[1] == pytest.approx(np.mean(y[:3]))
+    assert np.array_equal(moving_average(y, 1), y)
+    with pytest.raises(ValueError):
+        moving_average(y, 4)
+    rm = RunningMean(5)
+    causal = [rm.update(v) for v in y]
+    assert causal[-1] == pytest.approx(np.mean(y[-5:])) and causal[0] == y[0]
+
+
+@pytest.mark.parametrize("zeta", [0.05, 0.1, 0.2])
+def test_decay_ratio_of_a_second_order_step_response(zeta: float) -> None:
+    """Swing k+2 over swing k of a second-order step response is the analytic decay ratio
+    exp(-2 pi zeta / sqrt(1 - zeta^2)) and the period 2 pi / (wn sqrt(1 - zeta^2))
+    (python-control computes the response)."""
+    from autotune.core.metrics import SwingTracker, decay_ratios, half_swings
+
+    wn = 2.0
+    t = np.linspace(0.0, 40.0, 40001)
+    y = _second_order(t, zeta, wn)
+    tracker = SwingTracker(1e-4)
+    for ti, yi in zip(t, y, strict=True):
+        tracker.update(float(ti), float(yi))
+    ex = tracker.extrema
+    assert ex[0].kind == 1 and all(a.kind != b.kind for a, b in zip(ex, ex[1:], strict=False))
+    dr = math.exp(-2 * math.pi * zeta / math.sqrt(1 - zeta**2))
+    period = 2 * math.pi / (wn * math.sqrt(1 - zeta**2))
+    ratios = decay_ratios(ex, min_swing=0.01)
+    assert ratios and all(r.decay_ratio == pytest.approx(dr, rel=2e-3) for r in ratios)
+    assert all(r.period == pytest.approx(period, rel=2e-3) for r in ratios)
+    # the first peak is the overshoot peak (analytic peak time pi / wd)
+    assert ex[0].t == pytest.approx(period / 2, abs=2e-3)
+    assert half_swings(ex)[0] == pytest.approx(ex[0].y - ex[1].y)
+
+
+def test_swings_below_the_threshold_are_no_turning_points() -> None:
+    from autotune.core.metrics import SwingTracker
+
+    rng = np.random.default_rng(0)
+    tracker = SwingTracker(0.5)
+    for k, v in enumerate(rng.uniform(-0.2, 0.2, 500)):  # noise of peak-to-peak 0.4 < 0.5
+        tracker.update(k * 0.01, float(v))
+    assert tracker.extrema == []

@@ -24,7 +24,7 @@ from autotune.commands.options import (
     default_out_dir,
     terminal_for,
 )
-from autotune.config import DesignConfig, StepConfig, load_config, with_overrides
+from autotune.config import DesignConfig, SpecConfig, StepConfig, load_config, with_overrides
 from autotune.core.pid import PidGains
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
 from autotune.job.requests import BoardRequest, GainsChoice, JobRequest, pick_proposal
@@ -33,7 +33,7 @@ from autotune.ui.app import run_job
 
 HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
 
-_ST, _D = StepConfig(), DesignConfig()
+_ST, _D, _SP = StepConfig(), DesignConfig(), SpecConfig()
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -80,12 +80,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--tracking-time", type=float, metavar="S",
                    help="back-calculation anti-windup tracking time, s (default: clamping)")
     p.add_argument("--max-overshoot", type=float, metavar="P",
-                   help="spec: largest overshoot, percent (default: design.max_overshoot)")
+                   help=f"spec: largest overshoot, percent (default: spec.max_overshoot, "
+                        f"{_SP.max_overshoot:g})")
     p.add_argument("--max-settling-time", type=float, metavar="S",
                    help="spec: largest settling time, s (default: design.max_settling_time)")
     p.add_argument("--max-saturation", type=float, metavar="S",
                    help=f"spec: longest time at the output limit, s (default: "
-                        f"{_ST.max_saturation:g})")
+                        f"{_SP.max_saturation:g})")
     p.add_argument("--retries", type=int, metavar="N",
                    help=f"with --yes: after a step that misses the spec, try up to N gentler "
                         f"designs (needs --from-result for the model) (default: {_ST.retries})")
@@ -114,9 +115,9 @@ def _overrides(args: argparse.Namespace) -> dict[str, object]:
         "step.duration": args.timeout,
         "step.load_offset": args.load_offset,
         "step.deriv_filter_n": args.filter_n,
-        "step.max_saturation": args.max_saturation,
+        "spec.max_saturation": args.max_saturation,
         "step.retries": args.retries,
-        "design.max_overshoot": args.max_overshoot,
+        "spec.max_overshoot": args.max_overshoot,
         "design.max_settling_time": args.max_settling_time,
     }
 

@@ -102,3 +102,133 @@ def step_metrics(
             dt = np.diff(t, append=t[-1])
             t_sat = float(np.sum(dt[np.abs(u) >= u_limit * (1 - 1e-9)]))
     return StepMetrics(rise, overshoot, settling, sse, iae, peak_out, t_sat)
+
+
+# ---------------------------------------------------------------------- noise filter
+def moving_average(y: np.ndarray, window: int) -> np.ndarray:
+    """Centred moving average over `window` samples (odd; 1 = the samples unchanged).
+
+    Near the ends the window shrinks symmetrically, so the first and last samples stay as
+    they are and no value is shifted in time. PV units in, PV units out.
+    """
+    y = np.asarray(y, dtype=float)
+    w = int(window)
+    if w < 1 or w % 2 == 0:
+        raise ValueError(f"window must be an odd number of samples >= 1, got {window!r}")
+    if w == 1 or y.size < 3:
+        return y.copy()
+    half = w // 2
+    c = np.concatenate([[0.0], np.cumsum(y)])
+    i = np.arange(y.size)
+    h = np.minimum(np.minimum(i, y.size - 1 - i), half)  # half-width that fits at sample i
+    return (c[i + h + 1] - c[i - h]) / (2 * h + 1)
+
+
+class RunningMean:
+    """Causal mean of the last `window` samples (the online form of `moving_average`; it lags
+    by (window - 1) / 2 samples)."""
+
+    def __init__(self, window: int) -> None:
+        if int(window) < 1:
+            raise ValueError("window must be >= 1 sample")
+        self.window = int(window)
+        self._buf: list[float] = []
+        self._sum = 0.0
+
+    def update(self, y: float) -> float:
+        self._buf.append(float(y))
+        self._sum += float(y)
+        if len(self._buf) > self.window:
+            self._sum -= self._buf.pop(0)
+        return self._sum / len(self._buf)
+
+
+# ---------------------------------------------------------------------- swings and decay ratio
+@dataclass(frozen=True)
+class Extremum:
+    """A turning point of the PV: device time t (s), value y (PV units), kind +1 peak, -1 trough."""
+
+    t: float
+    y: float
+    kind: int
+
+
+class SwingTracker:
+    """Turning points of a signal, one sample at a time, with hysteresis.
+
+    A running maximum (minimum) becomes a peak (trough) once the signal has come back from it
+    by more than `threshold` (PV units), so noise smaller than the threshold makes no turning
+    points. `start_kind` is the first kind looked for (+1: a peak, as after a step upwards).
+    """
+
+    def __init__(self, threshold: float, start_kind: int = 1) -> None:
+        if not threshold >= 0.0:
+            raise ValueError("threshold must be >= 0 (PV units)")
+        if start_kind not in (-1, 1):
+            raise ValueError("start_kind must be +1 or -1")
+        self.threshold = float(threshold)
+        self.extrema: list[Extremum] = []
+        self._kind = start_kind
+        self._best: tuple[float, float] | None = None  # (t, y) of the running extreme
+
+    def update(self, t: float, y: float) -> Extremum | None:
+        """Feed one sample; returns the turning point it confirmed, if any."""
+        best = self._best
+        if best is None or (y - best[1]) * self._kind > 0.0:
+            self._best = (t, y)
+            return None
+        if (best[1] - y) * self._kind > self.threshold:
+            ext = Extremum(best[0], best[1], self._kind)
+            self.extrema.append(ext)
+            self._kind = -self._kind
+            self._best = (t, y)
+            return ext
+        return None
+
+
+def half_swings(extrema: list[Extremum]) -> list[float]:
+    """|y[k+1] - y[k]| of successive turning points (PV units): the half-cycle swings."""
+    return [abs(b.y - a.y) for a, b in zip(extrema, extrema[1:], strict=False)]
+
+
+@dataclass(frozen=True)
+class Oscillation:
+    """Successive swings of a step response.
+
+    decay_ratio: swing k+2 over swing k (one period apart; independent of where the response
+    settles); period: s between the turning points of the same kind; swing, first_swing: the
+    later and the earlier swing (PV units); t: device time (s) it was confirmed.
+    Quarter-amplitude damping is 0.25.
+    """
+
+    decay_ratio: float
+    period: float
+    swing: float
+    t: float
+    first_swing: float = 0.0
+
+    def as_dict(self) -> dict[str, float]:
+        return asdict(self)
+
+
+def last_decay(extrema: list[Extremum]) -> Oscillation | None:
+    """Decay ratio and period from the last three half-swings (four turning points)."""
+    if len(extrema) < 4:
+        return None
+    e = extrema[-4:]
+    h = half_swings(e)
+    if h[0] <= 0.0:
+        return None
+    period = 0.5 * ((e[2].t - e[0].t) + (e[3].t - e[1].t))
+    return Oscillation(h[2] / h[0], period, h[2], e[3].t, h[0])
+
+
+def decay_ratios(extrema: list[Extremum], min_swing: float = 0.0) -> list[Oscillation]:
+    """Every decay ratio of a list of turning points whose two swings are both at least
+    `min_swing` (PV units: smaller swings are noise or inside the band); see `last_decay`."""
+    out = []
+    for k in range(4, len(extrema) + 1):
+        o = last_decay(extrema[:k])
+        if o is not None and min(o.swing, o.first_swing) >= min_swing:
+            out.append(o)
+    return out

@@ -23,6 +23,7 @@ import contextlib
 import dataclasses
 import math
 import signal
+import sys
 import threading
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -46,11 +47,12 @@ from autotune.core.progress import Phase, RunSnapshot
 from autotune.core.steptest import (
     StepCandidate,
     StepOutcome,
+    check_setpoints,
     model_from_dict,
     predict_step,
     settings_from_config,
 )
-from autotune.core.verdict import StepSpec
+from autotune.core.verdict import spec_from_config as step_spec
 from autotune.errors import (
     EXIT_ABORTED,
     EXIT_FAILED,
@@ -75,6 +77,8 @@ from autotune.job.tune import TuneRun, choose_loop
 from autotune.recorder import export_csv, read_session, write_result
 from protocol.budget import check_loop_budget
 from protocol.messages import StoreGains
+
+HOLD_SWITCH_INTERVAL = 0.0005  # s, interpreter switch interval while computing under power
 
 RECOVERABLE = ("aborted", "limit:", "fault:pv_window", "fault:pv_rate", "fault:output_limit")
 """End reasons of a step after which the operator may go on (the motor confirmed stopped)."""
@@ -354,11 +358,18 @@ class TuningJob:
     def _hold_while(self, run: PoweredRun, work: Callable[[], Any]) -> Any:
         """Run `work` (pure computation) in a worker thread while every sample is still read,
         recorded and checked here; its result."""
-        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="analysis") as pool:
-            fut = pool.submit(work)
-            while not fut.done():
-                run.next_sample()
-            return fut.result()
+        # the computation holds the interpreter lock for long stretches: a short switch
+        # interval hands it to the sample loop and the heartbeat within a millisecond
+        old = sys.getswitchinterval()
+        sys.setswitchinterval(min(old, HOLD_SWITCH_INTERVAL))
+        try:
+            with ThreadPoolExecutor(max_workers=1, thread_name_prefix="analysis") as pool:
+                fut = pool.submit(work)
+                while not fut.done():
+                    run.next_sample()
+                return fut.result()
+        finally:
+            sys.setswitchinterval(old)
 
     # ------------------------------------------------------------------ choosing gains
     def _default_index(self) -> int | None:
@@ -527,12 +538,6 @@ class TuningJob:
                 return float(v)
         return 1.0  # pragma: no cover (target_amplitude always has a value)
 
-    def _spec(self) -> StepSpec:
-        cfg = self.cfg
-        return StepSpec(max_overshoot=cfg.design.max_overshoot,
-                        max_settling_time=cfg.design.max_settling_time,
-                        max_time_saturated=cfg.step.max_saturation)
-
     def _attempts(self, run: PoweredRun, choice: GainsChoice) -> None:
         """Confirmation steps until the operator accepts or leaves (or, unattended, until one
         meets the spec or cfg.step.retries gentler designs missed it)."""
@@ -601,6 +606,24 @@ class TuningJob:
         run.halt(why)
         self.op.say("the motor is unpowered: a loaded axis will move")
 
+    def _step_direction(self, run: PoweredRun) -> float:
+        """The setpoint step (PV units): the configured size, taken downwards when the PV
+        stands where a step up would leave the PV window loaded in the board and a step down
+        fits (the axis need not come back to where the run started first)."""
+        size = self._step_size()
+        lim = run.limits_readback
+        if lim is None or run.last_sample is None:
+            return size
+        pv = float(run.last_sample.pv)
+        over = step_spec(self.cfg).max_overshoot or 0.0
+        up = check_setpoints(pv, size, lim["pv_low"], lim["pv_high"], over)
+        down = check_setpoints(pv, -size, lim["pv_low"], lim["pv_high"], over)
+        if up is not None and down is None:
+            run.say(f"stepping by {-size:+g} PV units: from {pv:.4g} a step of {size:+g} "
+                    "would leave the PV window")
+            return -size
+        return size
+
     def _one_step(self, run: PoweredRun, choice: GainsChoice, attempt: int
                   ) -> tuple[StepReport, RunEnded | None]:
         """One confirmation step (re-arming first when the motor was stopped)."""
@@ -608,23 +631,30 @@ class TuningJob:
             run.rearm()
             self._watch(run)
         cfg = self.cfg
-        settle = choice.predicted.get("settling_time")
-        min_record = 1.5 * settle if isinstance(settle, int | float) and math.isfinite(
-            settle) else 0.0
+        ts = float(run.info.tick)
+        pred = dict(choice.predicted)
+        cand = StepCandidate(choice.name, choice.gains, pred)
+        res = self.result or {}
+        tu = res.get("ultimate_period") if isinstance(res.get("ultimate_period"), float) \
+            else None
+        elapsed = 0.0
+        if run.last_sample is not None and run.t_start is not None:
+            elapsed = max(0.0, run.last_sample.t - run.t_start)
         settings, note = settings_from_config(
-            cfg, run.loop_mode, size=self._step_size(), load_offset=cfg.step.load_offset,
-            spec=self._spec(), deriv_filter_n=choice.deriv_filter_n,
-            setpoint_weight=choice.setpoint_weight, tracking_time=choice.tracking_time)
-        plan = replace(settings.plan, timeout=max(settings.plan.timeout, min_record),
-                       min_record=min_record)
-        # the PID takes over at the output the relay balanced (a loaded axis holds)
-        settings = replace(settings, plan=plan, ts=float(run.info.tick), bias=self.bias)
+            cfg, run.loop_mode, size=self._step_direction(run), load_offset=cfg.step.load_offset,
+            deriv_filter_n=choice.deriv_filter_n, setpoint_weight=choice.setpoint_weight,
+            tracking_time=choice.tracking_time, candidate=cand, ts=ts, tu=tu,
+            rest=self.stages.rest if self.stages is not None else None,
+            # the PID takes over at the output the relay balanced (a loaded axis holds)
+            bias=self.bias, model=self._plant(), elapsed=elapsed,
+            fixed_size=cfg.step.size is not None)
+        settings = replace(settings, ts=ts)
+        plan = settings.plan
         if note:
             run.say(note)
-        pred = dict(choice.predicted)
         if not pred:
-            pred = self._predict(choice, settings, run.loop_mode)
-        cand = StepCandidate(choice.name, choice.gains, pred)
+            cand = StepCandidate(choice.name, choice.gains,
+                                 self._predict(choice, settings, run.loop_mode))
         g = choice.gains
         run.say(f"step {plan.size:+g} PV units with {choice.name}: kp {g.kp:.4g}, ki {g.ki:.4g}"
                 f" /s, kd {g.kd:.4g} s, b {choice.setpoint_weight:.3g} ({run.loop_mode} loop)")
@@ -638,6 +668,8 @@ class TuningJob:
             ended = exc.ended
         if outcome is not None:
             self.steps.append(outcome)
+            if outcome.rest_output is not None:
+                self.bias = float(outcome.rest_output)  # what held the PV at rest
         pred_t, pred_y = self._predicted_response(outcome)
         judged = ended is None and outcome is not None and outcome.verdict is not None
         report = StepReport(

@@ -13,9 +13,14 @@ from autotune.recorder import read_session
 
 
 def _tune(out: Path, *extra: str) -> subprocess.CompletedProcess[str]:
+    # a generous watchdog (device time): at --speed 10 the default 0.5 s is 50 ms of wall clock,
+    # which a busy test machine may take from the host between two heartbeats
+    cfg = out.parent / "tune.toml"
+    cfg.write_text("[safety]\nwatchdog = 2.0\n")
     return subprocess.run([sys.executable, "-m", "autotune", "tune", "--port", "sim", "--plant",
-                           "cart-wheel", "--yes", "--speed", "10", "--seed", "2", "--out",
-                           str(out), *extra], capture_output=True, text=True, timeout=240)
+                           "cart-wheel", "--yes", "--speed", "10", "--seed", "2", "--config",
+                           str(cfg), "--out", str(out), *extra], capture_output=True, text=True,
+                          timeout=240)
 
 
 def test_tune_yes_runs_the_step_and_writes_gains(tmp_path: Path) -> None:
