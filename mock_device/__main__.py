@@ -10,8 +10,10 @@ Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 
+from mock_device import faults as faults_module
 from mock_device.config import SCENARIOS, MockConfigError, load_config
 from mock_device.device import Device
 from mock_device.faults import FaultSpecError, LinkFaults, parse_fault_spec
@@ -57,10 +59,22 @@ def _baud(text: str) -> int:
     return v
 
 
+def fault_help() -> str:
+    """The fault keys for --help: the list in the faults module's docstring (one source)."""
+    doc = faults_module.__doc__ or ""
+    start = doc.find("Link faults")
+    if start < 0:
+        return ""
+    keys = re.sub(r"; see \w+\)", ")", doc[start:].rstrip())
+    return "--faults keys (times are device seconds):\n" + keys
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="python -m mock_device",
         description="Simulated motor controller board speaking the autotune wire protocol.",
+        epilog=fault_help(),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument(
         "--plant",
@@ -82,7 +96,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--faults",
         default="",
         metavar="SPEC",
-        help="fault injection, e.g. corrupt=0.01,jitter=0.002,seed=3 (see mock_device.faults)",
+        help="fault injection: comma-separated KEY=VALUE pairs, e.g. "
+        "corrupt=0.01,jitter=0.002,seed=3 (the keys are listed below)",
     )
     p.add_argument("--seed", type=int, default=None, help="sensor noise seed (default: plant file)")
     return p
