@@ -368,7 +368,8 @@ def with_overrides(cfg: Config, overrides: dict[str, Any], origin: str = "comman
         })})
     new = replace(new, overrides=cfg.overrides + tuple(
         (f"{section}.{k}", origin) for section, values in sections.items() for k in values))
-    validate(new, source=f"{cfg.source} with settings from the {origin}")
+    where = "command-line options" if origin == "command line" else f"the {origin}"
+    validate(new, source=f"{cfg.source} with {where}")
     return new
 
 

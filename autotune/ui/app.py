@@ -314,11 +314,13 @@ class TerminalOperator:
         stage (a leading "<stage>: " the line repeats is dropped)."""
         self.log.append(line)
         self.tracker.said(line)
-        text = line
+        tag, text = self.tag, line
         head, sep, rest = line.partition(": ")
-        if sep and head == self.tag:
-            text = rest
-        self.term.line(plain.tagged(self.tag, text))
+        if sep and head in plain.STAGE_LABELS:
+            tag, text = head, rest
+        elif line.split(" ", 1)[0] in plain.STAGE_LABELS:
+            tag = line.split(" ", 1)[0]  # a line that names its stage ("step +1 PV units ...")
+        self.term.line(plain.tagged(tag, text))
 
     def alarm(self, text: str) -> None:
         self.log.append(text)

@@ -47,6 +47,10 @@ PHASE_WORDS = {
     Phase.DONE: "the powered run is over",
     Phase.WAITING: "the motor is unpowered",
 }
+# The stage tags a line may carry (a line the job says that starts with one belongs to it).
+STAGE_LABELS = frozenset(v for k, v in PHASE_LABELS.items()
+                         if k not in (Phase.WAITING, Phase.STOPPING, Phase.DONE))
+
 # Phases that move the motor: when one ends, one line says how much of each limit it used.
 MOVING = (Phase.PRECHECK_DIRECTION, Phase.PRECHECK_BREAKAWAY, Phase.RELAY, Phase.STEP)
 
