@@ -40,3 +40,15 @@ def test_a_setting_from_the_command_line_is_blamed_on_the_command_line() -> None
         check_against_device(from_file, max_output=100.0, axis_count=1, tick=0.01)
     # the header's config stays the plain sections
     assert "overrides" not in cfg.to_dict()
+
+
+def test_the_no_response_message_speaks_of_noise_in_our_words() -> None:
+    from autotune.core.supervise import ResponseMonitor
+
+    mon = ResponseMonitor(bias=0.0, level=5.0, band=0.05, hold_time=0.5)
+    fault = None
+    for k in range(100):
+        fault = mon.update(0.01 * k, 0.001 * (k % 3), 10.0) or fault
+    assert fault is not None and fault.which == "no_response"
+    text = fault.message
+    assert "noise alone moves it 0.05" in text and "noise band" not in text

@@ -52,8 +52,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.formatter_class = argparse.RawDescriptionHelpFormatter
     p.epilog = (
         "Keys: Space, Esc, q or Ctrl-C stop the motor on every screen; the start screen waits\n"
-        "for Y. On the gain choices: 1-9 or Tab choose, m/M lower/raise the Ms target, s asks\n"
-        "to run the step with the chosen gains, Y then powers the motor (Enter never does).\n"
+        "for Y. On the gain choices: each row's key (1-9, then a, b, c, ...) or Tab/n/p\n"
+        "choose, m/M lower/raise the Ms target, s asks to run the step with the chosen gains,\n"
+        "Y then powers the motor (Enter never does).\n"
         "On the step result: a accept, d detune (a gentler design), o other proposal,\n"
         "r repeat (each asks for Y again). Exit codes as for `tune`; 0 once gains are\n"
         "accepted and written."

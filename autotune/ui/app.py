@@ -337,7 +337,9 @@ class TerminalOperator:
             self.term.lines(plain.proposals_lines(view))
 
     def show_step(self, report: StepReport) -> None:
-        view = _step_view(report, ())
+        # unattended nothing is read after the step: no keys (a picture of the screen shows them)
+        keys = () if self.unattended else tuple((k, label) for k, label, _ in STEP_DECISIONS)
+        view = _step_view(report, keys)
         self.last_step = view
         self.term.show(lambda w, h: screens.step_screen(view, w, h), "step")
         if self.term.live is None:
@@ -513,11 +515,12 @@ def finish_view(summary: JobSummary) -> FinishView:
 
 
 def run_job(request: JobRequest, console: Console | None = None, stdin: Any = None,
-            term: Terminal | None = None) -> JobOutcome:
+            term: Terminal | None = None, unattended: bool | None = None) -> JobOutcome:
     """Run a job on the terminal (full screen, or plain lines when stdout is not a terminal),
-    then print the finish screen; the JobOutcome says how it ended."""
+    then print the finish screen; the JobOutcome says how it ended. `unattended` (default:
+    request.yes) draws the screens without the keys that start a stage."""
     term = term or Terminal(console, stdin)
-    op = TerminalOperator(term, unattended=request.yes)
+    op = TerminalOperator(term, unattended=request.yes if unattended is None else unattended)
     with term:
         outcome = TuningJob(request, op).run()
     summary = op.summary

@@ -65,7 +65,6 @@ ROW_KEYS = "123456789abcdefghijkl"
 
 # Keys of each screen besides the abort keys: (key cap, what it does).
 START_KEYS = (("Y", "all true: start"),)
-STEP_KEYS = (("a", "accept"), ("d", "detune"), ("o", "other"), ("r", "repeat"))
 CONFIRM_KEYS = (("Y", "power the motor"), ("any other", "back"))
 ALARM_KEYS = (("Enter", "leave"),)
 
@@ -321,8 +320,10 @@ def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = 
     ident = Text()
     ident.append("identified ", style=theme.MUTED)
     ident.append(f"Ku {fmt(view.ku)} {KP_UNIT}  Tu {fmt(view.tu)} s", style="bold")
-    if view.model:
-        ident.append(f"   model {view.model}", style=theme.MUTED)
+    if view.model:  # on the same line where it fits, else on its own
+        model = f"model {view.model}"
+        ident.append("   " if ident.cell_len + 3 + len(model) <= width else "\n")
+        ident.append(model, style=theme.MUTED)
     knobs = Text(no_wrap=True, overflow="ellipsis")
     knobs.append("Ms target ", style=theme.MUTED)
     knobs.append(f"{view.ms_target:.2f}", style=f"bold {theme.PV}")
@@ -335,7 +336,7 @@ def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = 
         knobs.append(legend, style=theme.MUTED)
     n = len(view.rows)
     sel = min(max(view.selected, 0), n - 1) if n else 0
-    ident_rows = -(-ident.cell_len // width)
+    ident_rows = sum(-(-max(len(ln), 1) // width) for ln in ident.plain.split("\n"))
     fixed = 1 + key_rows(keys, width) + ident_rows + 1 + 3 + 1 + (1 if view.message else 0)
     if n and view.rows[sel].violations:
         fixed += 1
@@ -437,7 +438,7 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
     xr = (min(xs), max(xs)) if len(xs) >= 2 and max(xs) > min(xs) else None
     side_by_side = width >= 100
     checks = verdict_checks(view.verdict, one_line=not side_by_side)
-    keys = view.keys or STEP_KEYS
+    keys = view.keys
     hint = bool(view.detune_hint and any(k == "d" for k, _ in keys))
     fixed = (1 + key_rows(keys, width) + 2 + 3 + (len(view.rows) + 1)
              + (0 if side_by_side else 1) + (1 if view.message else 0) + (1 if hint else 0))
