@@ -47,7 +47,8 @@ def finish(child: pexpect.spawn) -> int:
 
 def test_interactive_demo_start_relay_choose_step_accept(tmp_path: Path) -> None:
     out = tmp_path / "run"
-    child = spawn("--out", str(out), "--speed", "4")
+    # speed 2: the demo's 1 s watchdog is then 0.5 s of wall clock, room for a busy machine
+    child = spawn("--out", str(out), "--speed", "2")
     try:
         # the start screen: the board from its handshake, the cautions, the confirmation key
         child.expect("before the motor moves")
