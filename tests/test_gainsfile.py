@@ -235,3 +235,14 @@ def test_bad_files_name_the_problem(tmp_path: Path, content: str, message: str) 
     p.write_text(content)
     with pytest.raises(GainsFileError, match=message):
         read_gains_file(p)
+
+
+def test_c_header_without_a_known_limit_compiles_and_never_clamps(tmp_path: Path) -> None:
+    """Reference: autotune.core.pid.DiscretePid with no output limits."""
+    rec = _record(gains=PidGains(3.0, 40.0, 0.06), tracking_time=None, output_limit=None,
+                  actuator_limit=None)
+    pid = DiscretePid(rec.pid_settings())
+    inputs = [(1000.0, 0.0)] * 5
+    want = [pid.update(sp, pv) for sp, pv in inputs]
+    got = _run_c(tmp_path, rec, inputs, "double", 0.0)
+    assert got == pytest.approx(want, rel=1e-12) and max(got) > 1000.0
