@@ -228,6 +228,13 @@ class Config:
     step: StepConfig = field(default_factory=StepConfig)
     spec: SpecConfig = field(default_factory=SpecConfig)
     source: str = "<defaults>"
+    overrides: tuple[tuple[str, str], ...] = ()
+    """("section.key", where it was set) for each value set after the file (with_overrides)."""
+
+    def source_of(self, key: str) -> str:
+        """Where the value of `key` ("section.key") came from: the override's origin (e.g.
+        "command line") when one set it, else the file (or "<defaults>")."""
+        return next((o for k, o in reversed(self.overrides) if k == key), self.source)
 
     @property
     def start_amplitude(self) -> float:
@@ -246,6 +253,7 @@ class Config:
     def to_dict(self) -> dict[str, Any]:
         """Plain dict of all sections (for the session header)."""
         d = dataclasses.asdict(self)
+        d.pop("overrides", None)
         return d
 
 
@@ -366,11 +374,13 @@ def load_config(path: str | Path | None) -> Config:
     return config_from_dict(data, p)
 
 
-def with_overrides(cfg: Config, overrides: dict[str, Any]) -> Config:
+def with_overrides(cfg: Config, overrides: dict[str, Any], origin: str = "command line"
+                   ) -> Config:
     """Return `cfg` with `{"section.key": value}` replaced (None values are skipped), validated.
 
     Used for command-line options; a problem names the option's key as `section.key` and the
-    source "command line".
+    source `origin`, and later checks of a replaced key (against the device, the noise) name
+    `origin` too (Config.source_of).
     """
     sections: dict[str, dict[str, Any]] = {}
     for dotted, value in overrides.items():
@@ -381,11 +391,14 @@ def with_overrides(cfg: Config, overrides: dict[str, Any]) -> Config:
     new = cfg
     for section, values in sections.items():
         cls = SECTIONS[section]
-        checked = _section_from_dict(cls, values, "command line", section)
+        checked = _section_from_dict(cls, values, origin, section)
         new = replace(new, **{section: replace(getattr(new, section), **{
             k: getattr(checked, k) for k in values
         })})
-    validate(new, source=f"{cfg.source} with command-line options")
+    new = replace(new, overrides=cfg.overrides + tuple(
+        (f"{section}.{k}", origin) for section, values in sections.items() for k in values))
+    where = "command-line options" if origin == "command line" else f"the {origin}"
+    validate(new, source=f"{cfg.source} with {where}")
     return new
 
 
@@ -514,21 +527,20 @@ def check_against_device(cfg: Config, max_output: float, axis_count: int,
     max_output: the board's largest output (output units); axis_count: axes on the board;
     tick: the board's tick (s).
     """
-    src = cfg.source
     if cfg.safety.output_limit > max_output:
-        raise ConfigError(src, "safety.output_limit",
+        raise ConfigError(cfg.source_of("safety.output_limit"), "safety.output_limit",
                           f"{cfg.safety.output_limit:g} is above the device's maximum output "
                           f"{max_output:g}")
     if cfg.connection.axis >= axis_count:
-        raise ConfigError(src, "connection.axis",
+        raise ConfigError(cfg.source_of("connection.axis"), "connection.axis",
                           f"axis {cfg.connection.axis} does not exist: the device has "
                           f"{axis_count} axis(es), numbered from 0")
     if cfg.safety.max_sample_gap < 2 * tick:
-        raise ConfigError(src, "safety.max_sample_gap",
+        raise ConfigError(cfg.source_of("safety.max_sample_gap"), "safety.max_sample_gap",
                           f"{cfg.safety.max_sample_gap:g} s is shorter than two device ticks "
                           f"({2 * tick:g} s)")
     if cfg.safety.watchdog < 2 * tick:
-        raise ConfigError(src, "safety.watchdog",
+        raise ConfigError(cfg.source_of("safety.watchdog"), "safety.watchdog",
                           f"{cfg.safety.watchdog:g} s is shorter than two device ticks "
                           f"({2 * tick:g} s)")
 
@@ -540,15 +552,14 @@ def check_against_noise(cfg: Config, noise_std: float, resolution: float) -> Non
     A window narrower than 10 noise standard deviations, or a target amplitude below 5 of them,
     cannot be told apart from noise (common practice, no source).
     """
-    src = cfg.source
     floor = max(noise_std, 0.5 * resolution)
     if floor > 0 and cfg.safety.pv_window < 10 * floor:
-        raise ConfigError(src, "safety.pv_window",
+        raise ConfigError(cfg.source_of("safety.pv_window"), "safety.pv_window",
                           f"{cfg.safety.pv_window:g} is narrower than the measured noise allows "
                           f"(noise {noise_std:.3g}, resolution {resolution:.3g}; need at least "
                           f"{10 * floor:.3g})")
     if floor > 0 and cfg.relay.target_amplitude < 5 * floor:
-        raise ConfigError(src, "relay.target_amplitude",
+        raise ConfigError(cfg.source_of("relay.target_amplitude"), "relay.target_amplitude",
                           f"{cfg.relay.target_amplitude:g} is lost in the measured noise "
                           f"(noise {noise_std:.3g}, resolution {resolution:.3g}; need at least "
                           f"{5 * floor:.3g})")

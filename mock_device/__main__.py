@@ -12,8 +12,10 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import re
 import sys
 
+from mock_device import faults as faults_module
 from mock_device.config import SCENARIOS, MockConfigError, load_config
 from mock_device.device import Device
 from mock_device.faults import FaultSpecError, LinkFaults, parse_fault_spec
@@ -60,10 +62,22 @@ def _baud(text: str) -> int:
     return v
 
 
+def fault_help() -> str:
+    """The fault keys for --help: the list in the faults module's docstring (one source)."""
+    doc = faults_module.__doc__ or ""
+    start = doc.find("Link faults")
+    if start < 0:
+        return ""
+    keys = re.sub(r"; see \w+\)", ")", doc[start:].rstrip())
+    return "--faults keys (times are device seconds):\n" + keys
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="python -m mock_device",
         description="Simulated motor controller board speaking the autotune wire protocol.",
+        epilog=fault_help(),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument(
         "--plant",
@@ -85,7 +99,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--faults",
         default="",
         metavar="SPEC",
-        help="fault injection, e.g. corrupt=0.01,jitter=0.002,seed=3 (see mock_device.faults)",
+        help="fault injection: comma-separated KEY=VALUE pairs, e.g. "
+        "corrupt=0.01,jitter=0.002,seed=3 (the keys are listed below)",
     )
     p.add_argument("--seed", type=int, default=None, help="sensor noise seed (default: plant file)")
     p.add_argument("--period", type=_positive, default=None, metavar="S",

@@ -11,12 +11,12 @@ import argparse
 import sys
 from pathlib import Path
 
-from autotune.commands.options import default_out_dir
+from autotune.commands.options import add_view_options, default_out_dir, terminal_for
 from autotune.config import Config, config_from_dict, load_config, with_overrides
 from autotune.errors import UserError
 from autotune.job.requests import BoardRequest, JobRequest
 from autotune.simdevice import SIM
-from autotune.ui.app import Terminal, run_job
+from autotune.ui.app import run_job
 
 HELP = "run the whole tuning job against the built-in simulated board (no hardware needed)"
 
@@ -52,8 +52,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.formatter_class = argparse.RawDescriptionHelpFormatter
     p.epilog = (
         "Keys: Space, Esc, q or Ctrl-C stop the motor on every screen; the start screen waits\n"
-        "for Y. On the gain choices: 1-9 or Tab choose, m/M lower/raise the Ms target, s asks\n"
-        "to run the step with the chosen gains, Y then powers the motor (Enter never does).\n"
+        "for Y. On the gain choices: each row's key (1-9, then a, b, c, ...) or Tab/n/p\n"
+        "choose, m/M lower/raise the Ms target, s asks to run the step with the chosen gains,\n"
+        "Y then powers the motor (Enter never does).\n"
         "On the step result: a accept, d detune (a gentler design), o other proposal,\n"
         "r repeat (each asks for Y again). Exit codes as for `tune`; 0 once gains are\n"
         "accepted and written."
@@ -73,19 +74,19 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--loop", choices=("host", "device"),
                    help="where the relay and PID run (default: device, as the board offers it)")
     p.add_argument("--seed", type=int, metavar="N", help="noise seed of the simulated board")
+    add_view_options(p)
 
 
 def build_config(args: argparse.Namespace) -> Config:
     """The demo's config: the scenario's settings, then the config file, then the options."""
-    overrides: dict[str, object] = dict(DEMO_CONFIG[args.plant])
-    cfg = load_config(args.config) if args.config else config_from_dict({}, "<demo>")
     if args.config:
-        overrides = {}
-    overrides["connection.plant"] = args.plant
-    overrides["connection.speed"] = args.speed
-    if args.loop:
-        overrides["connection.loop"] = args.loop
-    return with_overrides(cfg, overrides)
+        cfg = load_config(args.config)
+    else:
+        cfg = with_overrides(config_from_dict({}, "<demo>"), dict(DEMO_CONFIG[args.plant]),
+                             origin=f"{args.plant} demo scenario")
+    return with_overrides(cfg, {"connection.plant": args.plant,
+                                "connection.speed": args.speed,
+                                "connection.loop": args.loop})
 
 
 def run(args: argparse.Namespace) -> int:
@@ -97,7 +98,7 @@ def run(args: argparse.Namespace) -> int:
     # mock_device` process on a pty) in the background and ends it with the job
     req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None, args.seed),
                      out_dir=out, verb="demo", yes=args.yes)
-    outcome = run_job(req, term=Terminal(stdin=sys.stdin))
+    outcome = run_job(req, term=terminal_for(args))
     if outcome.exit_code != 0:
         print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
     return outcome.exit_code

@@ -228,8 +228,8 @@ class ResponseMonitor:
             self.fault = SupervisorFault(
                 "no_response", hi - lo, self.band, t,
                 f"no response: the output was held at {out:g} for {held:.3g} s and the PV "
-                f"moved only {hi - lo:.3g} (noise band {self.band:.3g}); check the sensor, its "
-                "wiring, the coupling and the motor power")
+                f"moved only {hi - lo:.3g} (noise alone moves it {self.band:.3g}); check the "
+                "sensor, its wiring, the coupling and the motor power")
             return self.fault
         return None
 

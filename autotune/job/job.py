@@ -69,6 +69,7 @@ from autotune.job.operator import (
     Operator,
     StartInfo,
     StepReport,
+    model_words,
 )
 from autotune.job.powered import PoweredRun, RunEnded, RunOptions
 from autotune.job.requests import BoardRequest, GainsChoice, JobRequest
@@ -270,12 +271,14 @@ class TuningJob:
                               f"kd {g.gains.kd:.4g} s"),)
             action = f"run the confirmation step with {g.name} (powers the motor)"
         loop = self._loop_mode(info) if info is not None else str(cfg.connection.loop)
-        name = f"{info.device_name or 'unnamed board'} (firmware {info.firmware or '?'})"
-        return StartInfo(device=name, port=req.board.port if not req.board.simulated
-                         else "simulated board on a pseudo-terminal",
+        facts = () if info is None else (("tick", f"{info.tick * 1000:g} ms"), (
+            "largest output", f"±{info.max_output:g} output units"))
+        return StartInfo(device=getattr(info, "device_name", "") or "unnamed board",
+                         port=str(getattr(self.run_, "url", "") or req.board.port),
                          axis=cfg.connection.axis, loop_mode=loop, limits=limits, plan=plan,
                          simulated=req.board.simulated, out_dir=str(req.out_dir),
-                         action=action)
+                         action=action, firmware=getattr(info, "firmware", "") or "",
+                         facts=facts, stages=req.stages())
 
     def _loop_mode(self, info: Any) -> str:
         cfg = self.cfg
@@ -396,13 +399,10 @@ class TuningJob:
         res = self.result or {}
         model = res.get("model") if isinstance(res.get("model"), Mapping) else (
             self.model_dict or {})
-        params = ", ".join(f"{k} {v:.4g}" for k, v in (model.get("params") or {}).items()
-                           if isinstance(v, int | float))
-        kind = str(model.get("kind", "")).replace("_", " ")
         return GainsMenu(
             proposals=self.proposals, selected=selected,
             ku=res.get("ultimate_gain"), tu=res.get("ultimate_period"),
-            model=f"{kind}: {params}" if kind else "",
+            model=model_words(model),
             spec=self._spec_text(), ms_target=self.ms_target, message=message,
             redesign=self._redesign if self._plant() is not None else None)
 
@@ -421,18 +421,18 @@ class TuningJob:
         while True:
             with self._waiting():
                 ans = self.op.choose_gains(self._menu(selected, message))
+            if ans.proposals:  # redesigned on the screen: result.json follows at once
+                self.proposals, self.ms_target = tuple(ans.proposals), ans.ms_target
+                if self.result is not None:
+                    self.result["proposals"] = [dict(p) for p in self.proposals]
+                    self.result["design_ms_target"] = self.ms_target
+                    self._write_result()
             if ans.index is None:
                 if not self.reports:
                     raise _Leave(self._leave_text())
                 aborted = self.reports[-1].reason == "aborted"
                 raise _Leave("left at the gains menu; no gains written",
                              EXIT_ABORTED if aborted else EXIT_FAILED)
-            if ans.proposals:
-                self.proposals, self.ms_target = tuple(ans.proposals), ans.ms_target
-                if self.result is not None:
-                    self.result["proposals"] = [dict(p) for p in self.proposals]
-                    self.result["design_ms_target"] = self.ms_target
-                    self._write_result()
             selected = ans.index
             choice = GainsChoice.of_proposal(self.proposals[selected],
                                              self.cfg.step.deriv_filter_n)
@@ -719,14 +719,16 @@ class TuningJob:
         """Write the gains file (and its code block), store the gains on the board if asked."""
         info = run.info
         device = {"name": info.device_name, "firmware": info.firmware,
-                  "axis": self.cfg.connection.axis}
+                  "axis": self.cfg.connection.axis, "max_output": info.max_output}
         session = str(run.writer.path) if run.writer is not None else None
-        rec = record_from_outcome(outcome, session, device, __version__)
-        path = write_gains_file(self.req.gains_path, rec)
+        rec = record_from_outcome(outcome, session, device, __version__,
+                                  tuning_limit=self.cfg.safety.output_limit)
+        path, code = write_gains_file(self.req.gains_path, rec)
         self.gains_record, self.gains_path, self.accepted = rec, path, outcome
-        self.files.append(("gains", str(path)))
-        run.event("accepted", {"proposal": choice.name, "gains_file": str(path)})
-        self.op.say(f"gains written to {path}")
+        self.files += [("gains", str(path)), ("code (C)", str(code))]
+        run.event("accepted", {"proposal": choice.name, "gains_file": str(path),
+                               "code_file": str(code)})
+        self.op.say(f"gains written to {path}, the per-tick code to {code}")
         if self.req.store:
             self._store(run, choice)
         self._set("accepted", f"gains accepted: {choice.name}", EXIT_OK)

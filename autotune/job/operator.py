@@ -36,9 +36,12 @@ class Decision(StrEnum):
 class StartInfo:
     """What is about to be powered: the board from its handshake and the limits in force.
 
-    device: board name and firmware as the board reports them; port: how the operator named
-    it; limits/plan: (label, value with unit) pairs in display order; action: what the
-    confirmation starts, in words.
+    device: board name as the board reports it; firmware: its firmware version ("" when it
+    gives none); port: the port opened (for a simulated board, its pseudo-terminal);
+    limits/plan/facts: (label, value with unit) pairs in display order (facts: more of the
+    handshake, e.g. tick and largest output); action: what the confirmation starts, in words;
+    stages: the phases the job runs in order (autotune.core.progress.Phase values) with the
+    most device seconds each takes (None: unknown).
     """
 
     device: str
@@ -50,6 +53,9 @@ class StartInfo:
     simulated: bool
     out_dir: str
     action: str
+    firmware: str = ""
+    facts: tuple[tuple[str, str], ...] = ()
+    stages: tuple[tuple[str, float | None], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -160,3 +166,25 @@ class Operator(Protocol):
 
     def finish(self, summary: JobSummary) -> None:
         """The finish screen."""
+
+
+MODEL_WORDS = {"fopdt": "first order + dead time", "sopdt": "second order + dead time",
+               "sopdt_zero": "second order with a zero + dead time",
+               "integrator_lag": "integrator + lag + dead time", "lag_n": "lag chain + dead time"}
+PARAM_WORDS = {"gain": ("K", "PV/out"), "velocity_gain": ("Kv", "PV/out/s"),
+               "time_constant": ("T", "s"), "t1": ("T1", "s"), "t2": ("T2", "s"),
+               "delay": ("L", "s"), "zero_time": ("Tz", "s"), "order": ("n", "")}
+
+
+def model_words(model: Mapping[str, Any] | None) -> str:
+    """A fitted model (result.json `model`) in words with units, e.g. "integrator + lag +
+    dead time: Kv 0.36 PV/out/s, T 0.055 s, L 0.054 s" ("" when there is none)."""
+    if not model or not model.get("kind"):
+        return ""
+    kind = str(model["kind"])
+    params = []
+    for key, v in (model.get("params") or {}).items():
+        if isinstance(v, int | float) and not isinstance(v, bool):
+            name, unit = PARAM_WORDS.get(key, (key, ""))
+            params.append(f"{name} {v:.3g}" + (f" {unit}" if unit else ""))
+    return f"{MODEL_WORDS.get(kind, kind.replace('_', ' '))}: {', '.join(params)}"

@@ -482,7 +482,7 @@ class PoweredRun:
             "version_tool": __version__,
             "config": self.cfg.to_dict(),
             "config_source": self.cfg.source,
-            "port": self.options.port,
+            "port": getattr(self, "url", self.options.port),  # the port opened (sim: its pty)
             "device": {
                 "name": info.device_name, "firmware": info.firmware, "boot_id": info.boot_id,
                 "axis_count": info.axis_count, "tick": info.tick,
@@ -502,6 +502,8 @@ class PoweredRun:
         if self.sim is not None:
             header["sim"] = {"plant": self.sim.plant, "speed": self.sim.speed,
                              "faults": self.options.faults}
+        else:  # connection.plant names the simulated board's plant: none on another port
+            header["config"]["connection"]["plant"] = None
         header.update(self.header_extra)
         header.update(extra)
         self.writer = SessionWriter(Path(self.options.out_dir) / "session.jsonl", header)

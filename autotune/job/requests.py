@@ -141,6 +141,23 @@ class JobRequest:
     def gains_path(self) -> Path:
         return self.gains_file if self.gains_file is not None else self.out_dir / "gains.toml"
 
+    def stages(self) -> tuple[tuple[str, float | None], ...]:
+        """The phases this job runs, in order (autotune.core.progress.Phase values), each with
+        the most device seconds it takes where the config bounds it (None: unknown). A phase
+        decided during the run (a breakaway the relay asks for) is not listed."""
+        p, r = self.cfg.prechecks, self.cfg.relay
+        if not self.relay:
+            return (("connect", None), ("step", None))
+        out: list[tuple[str, float | None]] = [
+            ("connect", None), ("precheck:rest", p.rest_time),
+            ("precheck:direction", p.pulse_timeout)]
+        if p.breakaway is True:
+            out.append(("precheck:breakaway", None))
+        out += [("relay", r.max_time), ("analysis", None)]
+        if self.confirm_step:
+            out += [("proposals", None), ("step", None)]
+        return tuple(out)
+
 
 def pick_proposal(proposals: Sequence[Mapping[str, Any]], name: str | None,
                   source: str) -> Mapping[str, Any]:

@@ -38,9 +38,12 @@ from autotune.job.operator import (
 from autotune.job.requests import JobRequest
 from autotune.keys import AbortKeys
 from autotune.ui import plain, screens
+from autotune.ui.screens import ROW_KEYS
+from autotune.ui.tracker import LiveTracker
 from autotune.ui.views import (
     ConfirmView,
     FinishView,
+    LiveContext,
     ProposalRow,
     ProposalsView,
     StartView,
@@ -216,17 +219,17 @@ class Terminal:
         for ln in lines:
             self.line(ln)
 
-    def snapshot(self, snap: RunSnapshot) -> None:
+    def snapshot(self, snap: RunSnapshot, ctx: LiveContext | None = None) -> None:
         """Runner callback: draw the live screen, or print what changed."""
+        def build(w: int, h: int) -> RenderableType:
+            return screens.live_screen(snap, w, h, ctx)
+
         if self.live is not None:
-            self.show(lambda w, h: screens.live_screen(snap, w, h), f"live-{snap.phase.value}",
-                      wait=False)
+            self.show(build, f"live-{snap.phase.value}", wait=False)
         else:
             if self.captured is not None:
-                self.captured[f"live-{snap.phase.value}"] = (
-                    lambda w, h: screens.live_screen(snap, w, h))
-            self.reporter.update(snap)
-
+                self.captured[f"live-{snap.phase.value}"] = build
+            self.reporter.update(snap, ctx)
 
     def read_line(self, prompt: str) -> str | None:
         """Plain mode: print `prompt` and collect typed keys (echoed) up to Enter; None when a
@@ -259,19 +262,24 @@ class Terminal:
 
 
 # ------------------------------------------------------------------------ the operator
-LINE_CONFIRM = "Type yes and Enter to power the motor (anything else goes back): "
+LINE_CONFIRM = plain.tagged("confirm", "Type yes and Enter to power the motor (anything else "
+                                       "goes back): ")
 
 
 class TerminalOperator:
     """The job's operator on a terminal: full screens when stdout is a terminal, plain lines
     otherwise; answers come from the one key thread (see autotune.job.operator for the
-    confirmation rule: the Y key on the screen, `yes` typed in line mode)."""
+    confirmation rule: the Y key on the screen, `yes` typed in line mode). `unattended`: the
+    job asks nothing (--yes), so no screen offers a key to start."""
 
-    def __init__(self, term: Terminal) -> None:
+    def __init__(self, term: Terminal, unattended: bool = False) -> None:
         self.term = term
+        self.unattended = unattended
         self.summary: JobSummary | None = None
         self.last_step: StepView | None = None
-        self.log: list[str] = []  # lines said while a full screen was up
+        self.log: list[str] = []  # every line the job said
+        self.tracker = LiveTracker()
+        self.tag = "connect"  # the stage the next plain line belongs to
         self._on_start = False
 
     @property
@@ -280,25 +288,44 @@ class TerminalOperator:
 
     # ---------------------------------------------------------------- showing
     def show_start(self, info: StartInfo) -> None:
+        self.tracker.plan(info.stages)
         view = StartView(device=info.device, port=info.port, axis=info.axis,
                          loop_mode=info.loop_mode, limits=info.limits, plan=info.plan,
-                         simulated=info.simulated, out_dir=info.out_dir)
+                         simulated=info.simulated, out_dir=info.out_dir,
+                         firmware=info.firmware, board=info.facts,
+                         road=self.tracker.context.road,
+                         plan_title="relay plan" if any(s == "relay" for s, _ in info.stages)
+                         or not info.stages else "step plan",
+                         unattended=self.unattended)
         term = self.term
         term.show(lambda w, h: screens.start_screen(view, w, h), "start")
         if term.live is None:
             term.lines(plain.start_lines(view))
+        self.tag = "start"
         self._on_start = True  # the start screen asks for Y itself
 
     def update(self, snap: RunSnapshot) -> None:
-        self.term.snapshot(snap)
+        ctx = self.tracker.update(snap)
+        self.tag = plain.phase_tag(snap.phase)
+        self.term.snapshot(snap, ctx)
 
     def say(self, line: str) -> None:
+        """One line of the job: on the live screen's log, or as a plain line of the current
+        stage (a leading "<stage>: " the line repeats is dropped)."""
         self.log.append(line)
-        self.term.line(line)
+        self.tracker.said(line)
+        tag, text = self.tag, line
+        head, sep, rest = line.partition(": ")
+        if sep and head in plain.STAGE_LABELS:
+            tag, text = head, rest
+        elif line.split(" ", 1)[0] in plain.STAGE_LABELS:
+            tag = line.split(" ", 1)[0]  # a line that names its stage ("step +1 PV units ...")
+        self.term.line(plain.tagged(tag, text))
 
     def alarm(self, text: str) -> None:
         self.log.append(text)
-        self.term.line(f"ALARM: {text}")
+        self.tracker.said(f"ALARM: {text}")
+        self.term.line(plain.tagged("ALARM", text))
 
     def watch_abort(self, stop: Callable[[str], None] | None) -> None:
         self.term.on_abort = stop
@@ -310,7 +337,9 @@ class TerminalOperator:
             self.term.lines(plain.proposals_lines(view))
 
     def show_step(self, report: StepReport) -> None:
-        view = _step_view(report, ())
+        # unattended nothing is read after the step: no keys (a picture of the screen shows them)
+        keys = () if self.unattended else tuple((k, label) for k, label, _ in STEP_DECISIONS)
+        view = _step_view(report, keys)
         self.last_step = view
         self.term.show(lambda w, h: screens.step_screen(view, w, h), "step")
         if self.term.live is None:
@@ -336,10 +365,17 @@ class TerminalOperator:
         return answer is not None and answer.strip().lower() == "yes"
 
     def choose_gains(self, menu: GainsMenu) -> MenuAnswer:
+        """The gains menu. Screen: a row's key (1-9, then a, b, c, ...), Tab/n/p to move, m/M
+        for the Ms target, s to choose; line mode: a row's key or number and Enter. A stop key
+        leaves (with the proposals as last redesigned, so that result.json keeps them)."""
         term = self.term
         props, selected, ms, message = menu.proposals, menu.selected, menu.ms_target, ""
         changed = False
         term.drain()
+
+        def answer(index: int | None) -> MenuAnswer:
+            return MenuAnswer(index, props if changed else (), ms)
+
         while True:
             m = replace(menu, proposals=props, selected=selected, ms_target=ms,
                         message=message or menu.message)
@@ -347,25 +383,28 @@ class TerminalOperator:
             if term.live is None:
                 term.lines(plain.proposals_lines(view))
                 default = next((i for i, p in enumerate(props) if p.get("default")), selected)
-                answer = term.read_line(
-                    f"proposal for the confirmation step (1-{len(props)}; Enter: "
-                    f"{default + 1} {props[default].get('name')}; a stop key leaves): ")
-                if answer is None:
-                    return MenuAnswer(None)
-                a = answer.strip()
+                last = screens.row_key(len(props) - 1) or str(len(props))
+                typed = term.read_line(plain.tagged(
+                    "gains", f"proposal for the confirmation step (1-{last} or its number; "
+                             f"Enter: {screens.row_key(default) or default + 1} "
+                             f"{props[default].get('name')}; a stop key leaves): "))
+                if typed is None:
+                    return answer(None)
+                a = typed.strip()
                 if not a:
-                    return MenuAnswer(default, props if changed else (), ms)
-                if a.isdigit() and 1 <= int(a) <= len(props):
-                    return MenuAnswer(int(a) - 1, props if changed else (), ms)
+                    return answer(default)
+                pick = _row_of(a, len(props))
+                if pick is not None:
+                    return answer(pick)
                 message = f"no proposal {a!r}"
                 continue
             term.show(lambda w, h, v=view: screens.proposals_screen(v, w, h), "proposals")
             key = term.wait_key()
             message = ""
             if key == ABORT:
-                return MenuAnswer(None)
-            if key.isdigit() and key != "0" and int(key) <= len(props):
-                selected = int(key) - 1
+                return answer(None)
+            if key in ROW_KEYS and ROW_KEYS.index(key) < len(props):
+                selected = ROW_KEYS.index(key)
             elif key in ("\t", "n"):
                 selected = (selected + 1) % len(props)
             elif key == "p":
@@ -382,7 +421,7 @@ class TerminalOperator:
                 ms, changed = new, True
                 selected = next((i for i, p in enumerate(props) if p.get("name") == name), 0)
             elif key == "s":
-                return MenuAnswer(selected, props if changed else (), ms)
+                return answer(selected)
             elif key in ENTER_KEYS:
                 message = "Enter never starts the motor: s chooses, then Y confirms"
 
@@ -398,7 +437,7 @@ class TerminalOperator:
             words = ", ".join(f"[{k}]{label[1:]}" if label.startswith(k) else f"{k} {label}"
                               for k, label in keys)
             while True:
-                answer = term.read_line(f"{words} (a stop key leaves): ")
+                answer = term.read_line(plain.tagged("step", f"{words} (a stop key leaves): "))
                 if answer is None:
                     return Decision.LEAVE
                 a = answer.strip().lower()
@@ -417,6 +456,15 @@ class TerminalOperator:
 STEP_DECISIONS = (("a", "accept", Decision.ACCEPT), ("d", "detune", Decision.DETUNE),
                   ("o", "other proposal", Decision.OTHER), ("r", "repeat", Decision.REPEAT),
                   ("q", "quit", Decision.LEAVE))
+
+
+def _row_of(typed: str, n: int) -> int | None:
+    """The proposal row a typed answer names: its key (1-9, a, b, ...) or its number."""
+    if typed.isdigit() and 1 <= int(typed) <= n:
+        return int(typed) - 1
+    if len(typed) == 1 and typed in ROW_KEYS and ROW_KEYS.index(typed) < n:
+        return ROW_KEYS.index(typed)
+    return None
 
 
 def _proposals_view(menu: GainsMenu) -> ProposalsView:
@@ -453,20 +501,26 @@ def _step_view(report: StepReport, keys: tuple[tuple[str, str], ...]) -> StepVie
 def finish_view(summary: JobSummary) -> FinishView:
     """The finish screen of a job."""
     gains: tuple[tuple[str, str], ...] = ()
-    if summary.gains is not None:
-        g = summary.gains.gains
-        gains = (("kp", f"{g.kp:.6g}"), ("ki", f"{g.ki:.6g} /s"), ("kd", f"{g.kd:.6g} s"),
-                 ("loop period", f"{summary.gains.period:.6g} s"))
+    rec = summary.gains
+    if rec is not None:
+        g = rec.gains
+        gains = (("kp", f"{g.kp:.6g} out/PV"), ("ki", f"{g.ki:.6g} out/PV/s"),
+                 ("kd", f"{g.kd:.6g} out·s/PV"), ("setpoint weight b", f"{rec.setpoint_weight:.3g}"),
+                 ("loop period", f"{rec.period:.6g} s"))
+    code_file = next((path for what, path in summary.files if what.startswith("code")), "")
+    title = f"per-tick code for your loop (also in {code_file})" if code_file else (
+        "per-tick code for your loop")
     return FinishView(summary.exit_code == EXIT_OK, summary.message, tuple(summary.files),
-                      gains, summary.code)
+                      gains, summary.code, title)
 
 
 def run_job(request: JobRequest, console: Console | None = None, stdin: Any = None,
-            term: Terminal | None = None) -> JobOutcome:
+            term: Terminal | None = None, unattended: bool | None = None) -> JobOutcome:
     """Run a job on the terminal (full screen, or plain lines when stdout is not a terminal),
-    then print the finish screen; the JobOutcome says how it ended."""
+    then print the finish screen; the JobOutcome says how it ended. `unattended` (default:
+    request.yes) draws the screens without the keys that start a stage."""
     term = term or Terminal(console, stdin)
-    op = TerminalOperator(term)
+    op = TerminalOperator(term, unattended=request.yes if unattended is None else unattended)
     with term:
         outcome = TuningJob(request, op).run()
     summary = op.summary

@@ -7,6 +7,9 @@ offers, down to the 80-column terminal).
 
 Each series is drawn as connected line segments; where two series share a cell, the one listed
 later wins the colour (list the reference first, the measurement last). NaN breaks a line.
+Colour is never the only cue: a series may be dashed or dotted, and carries a letter that is
+written on the line at a few places and in the legend (S setpoint, P PV, U output, M model
+prediction), so the chart reads the same on a monochrome terminal.
 """
 
 from __future__ import annotations
@@ -28,14 +31,33 @@ BRAILLE_BASE = 0x2800
 _DOT_BITS = ((0x01, 0x02, 0x04, 0x40), (0x08, 0x10, 0x20, 0x80))
 
 
+LINE_GLYPHS = {"solid": "━━", "dashed": "╍╍", "dotted": "┈┈"}
+"""How each line pattern is drawn in a legend."""
+
+
 @dataclass(frozen=True)
 class Series:
-    """One trace: `x` and `y` of equal length (x usually device time in s), a style and a name."""
+    """One trace: `x` and `y` of equal length (x usually time in s), a style and a name.
+
+    pattern: "solid", "dashed" (4 dots on, 4 off along the line) or "dotted" (every third
+    dot); letter: one character written on the line at a few places and in the legend ("" for
+    none)."""
 
     x: Sequence[float]
     y: Sequence[float]
     style: str
     name: str
+    pattern: str = "solid"
+    letter: str = ""
+
+
+def _keep(pattern: str, n: int) -> bool:
+    """Whether the n-th dot along a line of `pattern` is drawn."""
+    if pattern == "dashed":
+        return (n // 4) % 2 == 0
+    if pattern == "dotted":
+        return n % 3 == 0
+    return True
 
 
 def nice_range(values: Sequence[float], pad: float = 0.08) -> tuple[float, float]:
@@ -98,27 +120,33 @@ def rasterise(
 ) -> list[list[tuple[str, str | None]]]:
     """Draw `series` into `height` rows of `width` braille cells: each cell is (char, style|None).
 
-    Row 0 is the top (largest y). Points outside the ranges are clipped to the border.
+    Row 0 is the top (largest y). Points outside the ranges are clipped to the border. A
+    series with a letter has it written over the line in a few cells (see `_place_letters`).
     """
     cols, rows = 2 * width, 4 * height
     bits = [[0] * width for _ in range(height)]
     owner: list[list[str | None]] = [[None] * width for _ in range(height)]
+    mine: list[list[list[int]]] = [[[] for _ in range(width)] for _ in range(height)]
     x0, x1 = x_range
     y0, y1 = y_range
     xs = (cols - 1) / (x1 - x0) if x1 > x0 else 0.0
     ys = (rows - 1) / (y1 - y0) if y1 > y0 else 0.0
 
-    def pixel(x: float, y: float) -> tuple[int, int]:
-        px = round((x - x0) * xs)
-        py = round((y1 - y) * ys)
-        return min(max(px, 0), cols - 1), min(max(py, 0), rows - 1)
+    for si, s in enumerate(series):
+        count = 0
 
-    def plot(px: int, py: int, style: str) -> None:
-        cx, cy = px // 2, py // 4
-        bits[cy][cx] |= _DOT_BITS[px % 2][py % 4]
-        owner[cy][cx] = style
+        def plot(px: int, py: int, s: Series = s, si: int = si) -> None:
+            nonlocal count
+            keep = _keep(s.pattern, count)
+            count += 1
+            if not keep:
+                return
+            cx, cy = px // 2, py // 4
+            bits[cy][cx] |= _DOT_BITS[px % 2][py % 4]
+            owner[cy][cx] = s.style
+            if si not in mine[cy][cx]:
+                mine[cy][cx].append(si)
 
-    for s in series:
         for run in _runs(s.x, s.y):
             xa = np.clip(np.rint((run[0] - x0) * xs), 0, cols - 1).astype(int)
             ya = np.clip(np.rint((y1 - run[1]) * ys), 0, rows - 1).astype(int)
@@ -133,15 +161,51 @@ def rasterise(
                 px = int(xa[a])
                 first, last = int(ya[a]), int(ya[b - 1])
                 if prev is not None:
-                    for qx, qy in _line(prev[0], prev[1], px, first):
-                        plot(qx, qy, s.style)
+                    for qx, qy in _line(prev[0], prev[1], px, first)[1:]:
+                        plot(qx, qy)
                 for qy in range(int(lo[k]), int(hi[k]) + 1):
-                    plot(px, qy, s.style)
+                    plot(px, qy)
                 prev = (px, last)
-    return [
+    grid = [
         [(chr(BRAILLE_BASE + b) if b else " ", o if b else None) for b, o in zip(br, ow, strict=True)]
         for br, ow in zip(bits, owner, strict=True)
     ]
+    _place_letters(grid, mine, series)
+    return grid
+
+
+def _place_letters(grid: list[list[tuple[str, str | None]]], mine: list[list[list[int]]],
+                   series: Sequence[Series]) -> None:
+    """Write each series' letter over its line: in a cell only that series touches, near a few
+    evenly spaced columns (staggered per series so that letters do not pile up)."""
+    height = len(grid)
+    width = len(grid[0]) if grid else 0
+    if width < 8:
+        return
+    spacing = max(10, width // 3)
+    taken: set[tuple[int, int]] = set()
+    for si, s in enumerate(series):
+        if not s.letter:
+            continue
+        start = 2 + (si * 5) % spacing
+        for target in range(start, width, spacing):
+            spot = None
+            for off in range(0, spacing // 2):
+                for cx in (target + off, target - off):
+                    if not 0 <= cx < width:
+                        continue
+                    for cy in range(height):
+                        if mine[cy][cx] == [si] and (cy, cx) not in taken:
+                            spot = (cy, cx)
+                            break
+                    if spot:
+                        break
+                if spot:
+                    break
+            if spot is not None:
+                cy, cx = spot
+                taken.add(spot)
+                grid[cy][cx] = (s.letter, f"bold {s.style}")
 
 
 def format_value(v: float, width: int = 7) -> str:
@@ -155,11 +219,28 @@ def format_value(v: float, width: int = 7) -> str:
     return f"{v:.0e}"
 
 
+def legend_text(series: Sequence[Series], indent: int = 0, note: str = "") -> Text:
+    """The key of a chart: each series' letter, its line pattern in its colour and its name;
+    `note` (units, time origin) follows in grey."""
+    legend = Text(" " * indent, no_wrap=True, overflow="ellipsis")
+    for s in series:
+        if s.letter:
+            legend.append(s.letter, style=f"bold {s.style}")
+            legend.append(" ")
+        legend.append(LINE_GLYPHS.get(s.pattern, "━━") + " ", style=s.style)
+        legend.append(s.name + "  ", style=theme.MUTED)
+    if note:
+        legend.append(note, style=theme.AXIS)
+    return legend
+
+
 class BrailleChart:
     """A braille line chart that fills the width rich offers.
 
-    `height` is in text rows (4 dots each). The left gutter carries the y-range labels
-    (`unit` appended to the top one); `x_label` names the time axis below.
+    `height` is in text rows (4 dots each). The left gutter carries the y-range labels and,
+    under the top one, `unit` in brackets (on a two-row chart the unit follows the top label
+    where it fits); `x_label` names the time axis below. `legend` adds the key (see
+    `legend_text`).
     """
 
     GUTTER = 8
@@ -196,19 +277,31 @@ class BrailleChart:
         yr = self.y_range or nice_range([y for s in self.series for y in s.y])
         return xr, yr
 
+    def labels(self, yr: tuple[float, float]) -> dict[int, str]:
+        """Gutter text by row: top, middle and bottom values, and the unit."""
+        room = self.GUTTER - 1
+        labels = {0: format_value(yr[1]), self.height - 1: format_value(yr[0])}
+        if self.height >= 5:
+            labels[(self.height - 1) // 2] = format_value((yr[0] + yr[1]) / 2)
+        if self.unit:
+            if self.height >= 3:  # row 1 never holds a value (the middle one is lower)
+                labels[1] = f"[{self.unit}]"
+            elif len(labels[0]) + 1 + len(self.unit) <= room:
+                labels[0] = f"{labels[0]} {self.unit}"
+        return labels
+
     def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
         width = max(10, options.max_width)
         plot_w = width - self.GUTTER - 1
         xr, yr = self.ranges()
         grid = rasterise(self.series, plot_w, self.height, xr, yr)
         axis = Style.parse(theme.AXIS)
-        labels = {0: format_value(yr[1]), self.height - 1: format_value(yr[0])}
-        if self.height >= 5:
-            labels[(self.height - 1) // 2] = format_value((yr[0] + yr[1]) / 2)
+        labels = self.labels(yr)
         for r, row in enumerate(grid):
             label = labels.get(r, "")
+            value = bool(label) and not label.startswith("[")
             yield Segment(f"{label:>{self.GUTTER - 1}} ", axis)
-            yield Segment("┤" if label else "│", axis)
+            yield Segment("┤" if value else "│", axis)
             run_style: str | None = None
             run = ""
             for ch, st in row:
@@ -229,11 +322,6 @@ class BrailleChart:
             yield Segment(" " * (self.GUTTER + 1) + left + " " * gap + right, axis)
             yield Segment.line()
         if self.legend:
-            legend = Text(" " * (self.GUTTER + 1))
-            for s in self.series:
-                legend.append("━━ ", style=s.style)
-                legend.append(s.name + "   ", style=theme.MUTED)
-            if self.unit:
-                legend.append(f"({self.unit})", style=theme.AXIS)
+            legend = legend_text(self.series, self.GUTTER + 1)
             legend.truncate(width)
             yield legend

@@ -53,13 +53,34 @@ def export_svgs(captured: dict[str, Builder], out_dir: Path, width: int = 100,
     return written
 
 
+def render_text(build: Builder, width: int, height: int) -> str:
+    """One screen as plain text at `width` x `height` cells (to look at without a browser)."""
+    console = Console(record=True, width=width, height=height, file=io.StringIO(),
+                      force_terminal=True, color_system="truecolor", theme=BENCH_THEME)
+    console.print(build(width, height))
+    return console.export_text()
+
+
+def export_texts(captured: dict[str, Builder], out_dir: Path, width: int, height: int
+                 ) -> list[Path]:
+    """Write every captured screen as out_dir/<name>-<width>x<height>.txt."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    written = []
+    for key, build in sorted(captured.items()):
+        path = out_dir / f"{key.replace(':', '-')}-{width}x{height}.txt"
+        path.write_text(render_text(build, width, height), encoding="utf-8")
+        written.append(path)
+    return written
+
+
 def record_demo(request: JobRequest, width: int = 100, height: int = 32
                 ) -> tuple[int, dict[str, Builder]]:
     """Run the job unattended (request.yes) on an in-memory terminal; (exit code, captured
-    screens)."""
+    screens). The screens are drawn as an operator at the terminal sees them (the start screen
+    with its Y key), though nobody is asked."""
     console = Console(file=io.StringIO(), width=width, height=height, force_terminal=True,
                       color_system="truecolor")
     term = Terminal(console, stdin=io.StringIO(), rich=True)
     term.captured = {}
-    result = run_job(request, term=term)
+    result = run_job(request, term=term, unattended=False)
     return result.exit_code, term.captured

@@ -1,14 +1,16 @@
 """The screens of the bench view, composed from the small renderables in `autotune.ui.widgets`.
 
 Every screen is a pure function of one snapshot or view and of the terminal size (columns, rows)
-it must fit; it returns a rich renderable. The abort keys sit on the second line of every screen,
-right under the title, so no terminal height can push them out of sight.
+it must fit; it returns a rich renderable. The abort keys and the reminder that the physical
+cut-off is the real stop sit on the second line of every screen, right under the title, so no
+terminal size can push them out of sight.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 from rich.box import HEAVY, ROUNDED, SIMPLE_HEAD
 from rich.console import Group, RenderableType
@@ -16,217 +18,354 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from autotune.core.progress import RunSnapshot
+from autotune.core.progress import Phase, RunSnapshot
 from autotune.ui import theme
-from autotune.ui.chart import BrailleChart, Series
-from autotune.ui.views import ConfirmView, FinishView, ProposalsView, StartView, StepView
+from autotune.ui.chart import BrailleChart
+from autotune.ui.views import (
+    KD_UNIT,
+    KI_UNIT,
+    KP_UNIT,
+    OUT_UNIT,
+    PV_UNIT,
+    ConfirmView,
+    FinishView,
+    LiveContext,
+    ProposalRow,
+    ProposalsView,
+    StartView,
+    StepView,
+)
 from autotune.ui.widgets import (
     alarm_advice,
     alarm_banner,
     chart_legend,
-    estimates_table,
+    cycle_table,
     fmt,
     header,
     key_bar,
+    key_rows,
     limit_bars,
     link_line,
+    message_log,
     phase_road,
+    predicted_series,
     progress_line,
+    pv_series,
     run_chart,
+    setpoint_series,
     stop_banner,
 )
 
 MIN_WIDTH = 80  # narrowest supported terminal, columns
 MIN_HEIGHT = 24  # smallest supported terminal, rows
 
+# The key that selects each proposal row on the gains screen, in row order: digits, then
+# letters that no other key of that screen uses (m M Ms, n p Tab move, s step, q stop, y).
+ROW_KEYS = "123456789abcdefghijkl"
+
 # Keys of each screen besides the abort keys: (key cap, what it does).
 START_KEYS = (("Y", "all true: start"),)
-PROPOSAL_KEYS = (
-    ("1-9 Tab", "choose"),
-    ("m M", "Ms"),
-    ("s", "step with the chosen"),
-)
-STEP_KEYS = (("a", "accept"), ("d", "detune"), ("o", "other"), ("r", "repeat"))
 CONFIRM_KEYS = (("Y", "power the motor"), ("any other", "back"))
 ALARM_KEYS = (("Enter", "leave"),)
 
-# Predicted figures shown for each proposal: key, column title, digits; the wide set adds more.
-NARROW_FIGURES = (("ms", "Ms", 3), ("overshoot", "OS %", 3), ("settling_time", "ts s", 3))
-WIDE_FIGURES = (
-    ("ms", "Ms", 3),
-    ("gain_margin", "GM", 3),
-    ("phase_margin_deg", "PM °", 3),
-    ("overshoot", "OS %", 3),
-    ("rise_time", "tr s", 3),
-    ("settling_time", "ts s", 3),
-    ("iae_load", "IAE ld", 3),
-    ("peak_output", "u pk", 3),
-)
+
+def row_key(i: int) -> str:
+    """The selection key of proposal row `i` (0-based); "" beyond ROW_KEYS (Tab reaches it)."""
+    return ROW_KEYS[i] if 0 <= i < len(ROW_KEYS) else ""
 
 
-def live_screen(snap: RunSnapshot, width: int = MIN_WIDTH, height: int = MIN_HEIGHT) -> Group:
-    """The run as it happens: phase, chart, estimates, distance to every limit, link, keys."""
+def proposal_keys(n: int, can_step: bool = True) -> tuple[tuple[str, str], ...]:
+    """The keys of the gains screen for `n` proposals."""
+    last = row_key(min(n, len(ROW_KEYS)) - 1) if n else ""
+    pick = "1" if n <= 1 else (f"1-{last}" if n <= 9 else f"1-9 a-{last}")
+    keys = [(pick, "choose"), ("Tab n p", "next/back"), ("m M", "Ms −/+")]
+    if can_step:
+        keys.append(("s", "step with the chosen"))
+    return tuple(keys)
+
+
+# ---------------------------------------------------------------------------- live run
+def live_screen(snap: RunSnapshot, width: int = MIN_WIDTH, height: int = MIN_HEIGHT,
+                ctx: LiveContext | None = None) -> Group:
+    """The run as it happens: stages, progress, chart, relay cycles (or what happened), the
+    distance to every limit, link health, keys."""
     width, height = max(width, MIN_WIDTH), max(height, MIN_HEIGHT)
-    parts: list[RenderableType] = [
-        header("bench run", snap),
-        key_bar(stopped=snap.stopped and snap.phase.value in ("stopping", "done")),
-    ]
-    fixed = 17  # every row but the chart's plot rows
+    ctx = ctx or LiveContext()
+    stopped = snap.stopped and snap.phase in (Phase.STOPPING, Phase.DONE, Phase.WAITING)
+    parts: list[RenderableType] = [header("bench run", snap), key_bar(stopped=stopped)]
+    fixed = 2
     if snap.alarm:
         parts.append(alarm_banner(snap.alarm, alarm_advice(snap)))
         fixed += 4
-    compact = height - fixed < 7  # short terminal: drop the spacer lines first
-    if compact:
-        fixed -= 2
-    spacer: list[RenderableType] = [] if compact else [Text("")]
     banner = stop_banner(snap)
-    parts += [phase_road(snap), banner if banner is not None else progress_line(snap), *spacer]
-    room = max(5, height - fixed)
-    out_h = 2 if room < 10 else (3 if room < 16 else 4)
-    pv_h = min(room - out_h, 14)
-    parts += [run_chart(snap, height=pv_h, out_height=out_h), *spacer]
-    bar_w = 10 if width < 100 else 16
-    right = Group(limit_bars(snap.limits, width=bar_w), link_line(snap.link))
-    table = estimates_table(snap.estimates, snap.converged, max_rows=5)
+    parts += [phase_road(snap, ctx.road), banner if banner is not None else
+              progress_line(snap, ctx)]
+    fixed += 2
+    limits = [g for g in snap.limits]
+    bottom_h = max(6, 3 + len(limits)) + max(0, height - MIN_HEIGHT) // 4
+    fixed += 3 + bottom_h  # the chart's time axis, its labels and the legend; the bottom row
+    spare = height - fixed
+    spacer = spare >= 16
+    if spacer:
+        fixed += 2
+        spare -= 2
+    room = max(5, spare)
+    out_h = 3 if room < 14 else 4
+    pv_h = min(room - out_h, 16)
+    gap: list[RenderableType] = [Text("")] if spacer else []
+    parts += [*gap, run_chart(snap, height=pv_h, out_height=out_h, t0=ctx.t0), *gap]
+    bar_w = 6 if width < 100 else 14
+    right = Group(limit_bars(limits, width=bar_w), link_line(snap.link))
+    right_w = 10 + 1 + bar_w + 18
+    reached = ctx.reached
+    if snap.estimates and reached in (Phase.RELAY, Phase.ANALYSIS):
+        left: RenderableType = cycle_table(snap.estimates, snap.converged,
+                                           max_rows=bottom_h - 3)
+    else:
+        left = message_log(ctx.log, max_rows=bottom_h - 1)
     bottom = Table.grid(expand=True, padding=(0, 1))
     bottom.add_column(ratio=1)
-    bottom.add_column(width=min(48, 10 + 1 + bar_w + 17))
-    bottom.add_row(table, right)
+    bottom.add_column(width=right_w)
+    bottom.add_row(left, right)
     parts.append(bottom)
     return Group(*parts)
 
 
-def _pairs_grid(pairs: Sequence[tuple[str, str]], columns: int) -> Table:
-    """Label/value pairs laid out `columns` pairs a line."""
-    grid = Table.grid(padding=(0, 1))
-    for _ in range(columns):
-        grid.add_column(style=theme.MUTED, no_wrap=True, justify="right")
-        grid.add_column(no_wrap=True)
-    cells: list[str] = []
+# ---------------------------------------------------------------------------- start
+def packed_pairs(pairs: Sequence[tuple[str, str]], width: int, title: str = "") -> Text:
+    """Label/value pairs on as few lines as `width` allows, never cutting a pair (a pair is
+    broken only when it is wider than a line by itself); `title` leads the first line."""
+    text = Text()
+    line = 0
+    if title:
+        text.append(title + "  ", style=theme.TITLE)
+        line = len(title) + 2
+    first = True
     for label, value in pairs:
-        cells += [label, value + "   "]
-    while cells:
-        row, cells = cells[: 2 * columns], cells[2 * columns :]
-        row += [""] * (2 * columns - len(row))
-        grid.add_row(*row)
-    return grid
+        piece = len(label) + 1 + len(value)
+        sep = 0 if first else 3
+        if not first and line + sep + piece > width:
+            text.append("\n  ")
+            line = 2
+            sep = 0
+        elif not first:
+            text.append(" · ", style=theme.AXIS)
+        text.append(label + " ", style=theme.MUTED)
+        text.append(value, style="bold")
+        line += sep + piece
+        first = False
+    return text
+
+
+def caution_panel(cautions: Sequence[str]) -> Panel:
+    """The cautions in a heavy warning frame."""
+    text = Text()
+    for i, line in enumerate(cautions):
+        text.append("▸ ", style=f"bold {theme.WARN}")
+        text.append(line + ("\n" if i < len(cautions) - 1 else ""))
+    return Panel(text, title=Text(" before the motor moves ", style=f"bold {theme.WARN}"),
+                 title_align="left", border_style=theme.WARN, box=HEAVY, padding=(0, 1))
 
 
 def start_screen(view: StartView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT) -> Group:
-    """Before any motion: what will move, the limits in force, the cautions, the confirm key."""
+    """Before any motion: which board will move (name and firmware from its handshake), the
+    limits in force, the plan, the cautions, and the confirm key."""
     width = max(width, MIN_WIDTH)
-    where = Text()
-    where.append("device ", style=theme.MUTED)
-    where.append(view.device, style="bold")
-    where.append(f" on {view.port}")
-    if view.simulated:
-        where.append(" (simulated: no motor moves)", style=theme.MUTED)
-    where.append("   axis ", style=theme.MUTED)
-    where.append(str(view.axis), style="bold")
-    where.append("   loop ", style=theme.MUTED)
-    where.append(f"{view.loop_mode}", style="bold")
-    if view.loop_mode in ("device", "host"):
-        where.append(" (relay and PID run on the " +
-                     ("board)" if view.loop_mode == "device" else "host)"), style=theme.MUTED)
-    cols = 2 if width < 120 else 3
-    parts: list[RenderableType] = [header("before power"), key_bar(START_KEYS), where]
+    board = [("board", view.device)]
+    if view.firmware:
+        board.append(("firmware", view.firmware))
+    board += list(view.board)
+    where = [("port", view.port + (" (simulated board: no motor moves)" if view.simulated
+                                   else "")),
+             ("axis", str(view.axis)),
+             ("loop", view.loop_mode + {"device": " (relay and PID run on the board)",
+                                        "host": " (relay and PID run here)"}.get(
+                                            view.loop_mode, ""))]
     if view.out_dir:
-        parts.append(Text.assemble(("files to ", theme.MUTED), view.out_dir))
-    parts += [Text("limits in force", style=theme.TITLE), _pairs_grid(view.limits, cols)]
-    if view.plan:
-        parts += [Text("relay plan", style=theme.TITLE), _pairs_grid(view.plan, cols)]
-    cautions = Text()
-    for i, line in enumerate(view.cautions):
-        cautions.append("▸ ", style=f"bold {theme.WARN}")
-        cautions.append(line + ("\n" if i < len(view.cautions) - 1 else ""))
-    confirm = Text()
-    confirm.append(" Y ", style=theme.KEYCAP)
-    confirm.append(" when every line above is true: the motor will be powered. ", style="bold")
-    confirm.append("A stop key leaves, nothing moves.", style=theme.MUTED)
-    parts += [
-        Panel(cautions, title=Text(" before the motor moves ", style=f"bold {theme.WARN}"),
-              title_align="left", border_style=theme.WARN, box=HEAVY, padding=(0, 1)),
-        confirm,
+        where.append(("files to", view.out_dir))
+    keys = () if view.unattended else START_KEYS
+    parts: list[RenderableType] = [
+        header("before power"), key_bar(keys),
+        packed_pairs(board, width), packed_pairs(where, width),
+        packed_pairs(view.limits, width, "limits"),
     ]
+    if view.plan:
+        parts.append(packed_pairs(view.plan, width, view.plan_title))
+    parts.append(caution_panel(view.cautions))
+    confirm = Text()
+    if view.unattended:
+        confirm.append("--yes given: the run starts without a key. ", style="bold")
+        confirm.append("A stop key stops it at any moment.", style=theme.MUTED)
+    else:
+        confirm.append(" Y ", style=theme.KEYCAP)
+        confirm.append(" when every line above is true: the motor will be powered. ",
+                       style="bold")
+        confirm.append("A stop key leaves, nothing moves.", style=theme.MUTED)
+    parts.append(confirm)
     return Group(*parts)
 
 
-def _figure(row_pred: dict[str, float], key: str, digits: int) -> str:
-    v = row_pred.get(key)
-    return fmt(v, digits) if v is not None else "—"
+# ---------------------------------------------------------------------------- proposals
+@dataclass(frozen=True)
+class Column:
+    """One column of the proposals table: key into the predicted figures (or a gain),
+    heading, unit line, significant digits."""
+
+    key: str
+    title: str
+    unit: str = ""
+    digits: int = 3
 
 
-def proposals_table(view: ProposalsView, width: int = MIN_WIDTH) -> Table:
-    """Every design: its gains and predicted figures; default marked, violations flagged."""
-    figures = WIDE_FIGURES if width >= 120 else NARROW_FIGURES
+GAIN_COLUMNS = (Column("kp", "kp", KP_UNIT, 4), Column("ki", "ki", KI_UNIT, 4),
+                Column("kd", "kd", KD_UNIT, 4), Column("b", "b", "", 2))
+FIGURE_COLUMNS = (
+    Column("ms", "Ms"),
+    Column("gain_margin", "GM", "×"),
+    Column("phase_margin_deg", "PM", "°"),
+    Column("overshoot", "OS", "%"),
+    Column("rise_time", "tr", "s"),
+    Column("settling_time", "ts", "s"),
+    Column("iae_load", "IAE ld", f"{PV_UNIT}·s"),
+    Column("peak_output", "u peak", OUT_UNIT),
+)
+# Which figures stay when the width runs short, most important first.
+FIGURE_PRIORITY = ("ms", "overshoot", "settling_time", "phase_margin_deg", "gain_margin",
+                   "rise_time", "peak_output", "iae_load")
+GAP = 3  # columns between table columns: padding either side and the (blank) rule
+
+
+def _cell(row: ProposalRow, col: Column) -> str:
+    if col.key == "b":
+        return f"{row.setpoint_weight:.2f}"
+    if col.key in ("kp", "ki", "kd"):
+        return fmt(getattr(row, col.key), col.digits)
+    v = row.predicted.get(col.key)
+    return fmt(v, col.digits) if v is not None else "—"
+
+
+def _flags_full(row: ProposalRow) -> str:
+    return ("✗ " + "; ".join(row.violations)) if row.violations else "✓"
+
+
+def _flags_short(row: ProposalRow) -> str:
+    """The violations by their first word ("✗ overshoot, settling"), or ✓."""
+    if not row.violations:
+        return "✓"
+    words = [v.split(":")[0].split()[0] if v.split() else v for v in row.violations]
+    return "✗ " + ", ".join(dict.fromkeys(words))
+
+
+def _flags(row: ProposalRow, form: str) -> str:
+    if form == "full":
+        return _flags_full(row)
+    if form == "short":
+        return _flags_short(row)
+    return f"✗ {len(row.violations)}" if row.violations else "✓"
+
+
+def fit_columns(rows: Sequence[ProposalRow], width: int) -> tuple[list[Column], str]:
+    """The figure columns and the flags form ("full", "short" or "count") with which every
+    cell of every row fits `width` columns uncut: as many figures as fit (the least important
+    dropped first), then the fullest flags that still fit (the chosen row's violations are
+    spelled out under the table)."""
+    def need(cells: Sequence[str], *titles: str) -> int:
+        return max([*map(len, titles), *map(len, cells)])
+
+    name_w = need([f"  {r.name}" for r in rows], "design")
+    key_w = need([row_key(i) or "·" for i in range(len(rows))], "key")
+    base = key_w + GAP + name_w + GAP + sum(
+        need([_cell(r, c) for r in rows], c.title, c.unit) + GAP for c in GAIN_COLUMNS)
+    widths = {c.key: need([_cell(r, c) for r in rows], c.title, c.unit) + GAP
+              for c in FIGURE_COLUMNS}
+    for n in range(len(FIGURE_PRIORITY), -1, -1):
+        keep = set(FIGURE_PRIORITY[:n])
+        cols = [c for c in FIGURE_COLUMNS if c.key in keep]
+        used = base + sum(widths[c.key] for c in cols)
+        for form in ("full", "short", "count"):
+            if used + need([_flags(r, form) for r in rows], "flags") <= width:
+                return cols, form
+    return [], "count"
+
+
+def proposals_table(view: ProposalsView, width: int = MIN_WIDTH,
+                    rows: tuple[int, int] | None = None) -> Table:
+    """Every design (or rows[0]:rows[1] of them): its key, gains and predicted figures with
+    their units; default marked ◆, violations flagged; no cell is ever cut."""
+    cols, form = fit_columns(view.rows, width)
     table = Table(box=SIMPLE_HEAD, padding=(0, 1), header_style=theme.MUTED, expand=False,
                   border_style="grey35", show_edge=False, pad_edge=False)
-    table.add_column("#", justify="right", no_wrap=True, min_width=2)
-    table.add_column("design", no_wrap=True, min_width=12)
-    for name in ("kp", "ki /s", "kd s"):
-        table.add_column(name, justify="right", no_wrap=True, min_width=6)
-    table.add_column("b", justify="right", no_wrap=True, min_width=4)  # setpoint weight
-    for _, title, _ in figures:
-        table.add_column(title, justify="right", no_wrap=True, min_width=4)
-    used = 2 + 12 + 3 * 6 + 4 + sum(5 for _ in figures) + 2 * (len(figures) + 6)
-    table.add_column("flags", no_wrap=True, overflow="ellipsis",
-                     max_width=max(6, width - used - 2))
-    for i, row in enumerate(view.rows):
+    table.add_column("key\n", justify="right", no_wrap=True)
+    table.add_column("design\n", no_wrap=True)
+    for c in (*GAIN_COLUMNS, *cols):
+        table.add_column(f"{c.title}\n{c.unit}", justify="right", no_wrap=True)
+    table.add_column("flags\n", no_wrap=True)
+    lo, hi = rows if rows is not None else (0, len(view.rows))
+    for i in range(lo, hi):
+        row = view.rows[i]
         mark = Text(no_wrap=True)
         mark.append("◆ " if row.default else "  ", style=f"bold {theme.OK}")
         mark.append(row.name)
-        flags = Text(no_wrap=True, overflow="ellipsis")
-        if row.violations:
-            flags.append("✗ " + "; ".join(row.violations), style=f"bold {theme.BAD}")
-        else:
-            flags.append("✓", style=theme.OK)
-        cells = [str(i + 1) if i < 9 else "", mark, fmt(row.kp), fmt(row.ki), fmt(row.kd),
-                 f"{row.setpoint_weight:.2f}"]
-        cells += [_figure(dict(row.predicted), key, d) for key, _, d in figures]
+        flags = Text(_flags(row, form), no_wrap=True,
+                     style=f"bold {theme.BAD}" if row.violations else theme.OK)
+        cells = [row_key(i) or "·", mark, *(_cell(row, c) for c in (*GAIN_COLUMNS, *cols))]
         table.add_row(*cells, flags, style=theme.SELECTED if i == view.selected else None)
     return table
 
 
-MODEL_PARAM_NAMES = {"gain": "K", "time_constant": "T", "velocity_gain": "Kv", "delay": "L",
-                     "t1": "T1", "t2": "T2", "zero_time": "Tz"}
-
-
 def proposals_screen(view: ProposalsView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT) -> Group:
-    """Choose the gains to try: the table, the chosen one in detail, the Ms and detune knobs."""
-    width = max(width, MIN_WIDTH)
-    ident = Text(no_wrap=True, overflow="ellipsis")
+    """Choose the gains to try: the table, the chosen one in detail, the Ms knob."""
+    width, height = max(width, MIN_WIDTH), max(height, MIN_HEIGHT)
+    keys = proposal_keys(len(view.rows), view.can_step)
+    ident = Text()
     ident.append("identified ", style=theme.MUTED)
-    ident.append(f"Ku {fmt(view.ku)}  Tu {fmt(view.tu)} s", style="bold")
-    if view.model:
-        ident.append(f"   model {view.model}", style=theme.MUTED)
-    knobs = Text()
+    ident.append(f"Ku {fmt(view.ku)} {KP_UNIT}  Tu {fmt(view.tu)} s", style="bold")
+    if view.model:  # on the same line where it fits, else on its own
+        model = f"model {view.model}"
+        ident.append("   " if ident.cell_len + 3 + len(model) <= width else "\n")
+        ident.append(model, style=theme.MUTED)
+    knobs = Text(no_wrap=True, overflow="ellipsis")
     knobs.append("Ms target ", style=theme.MUTED)
     knobs.append(f"{view.ms_target:.2f}", style=f"bold {theme.PV}")
     if view.spec:
         knobs.append(f"   spec {view.spec}", style=theme.MUTED)
     knobs.append("   ◆", style=f"bold {theme.OK}")
     knobs.append(" default", style=theme.MUTED)
-    parts: list[RenderableType] = [
-        header("gain choices"),
-        key_bar(PROPOSAL_KEYS if view.can_step else PROPOSAL_KEYS[:3]),
-        ident,
-        knobs,
-        proposals_table(view, width),
-    ]
+    legend = "   b setpoint weight   Ms max sensitivity"
+    if knobs.cell_len + len(legend) <= width:
+        knobs.append(legend, style=theme.MUTED)
+    n = len(view.rows)
+    sel = min(max(view.selected, 0), n - 1) if n else 0
+    ident_rows = sum(-(-max(len(ln), 1) // width) for ln in ident.plain.split("\n"))
+    fixed = 1 + key_rows(keys, width) + ident_rows + 1 + 3 + 1 + (1 if view.message else 0)
+    if n and view.rows[sel].violations:
+        fixed += 1
+    room = max(3, height - fixed)
+    lo, hi = 0, n
+    if n > room:  # a window of rows around the chosen one; the rest a key or Tab away
+        room -= 1
+        lo = min(max(0, sel - room // 2), n - room)
+        hi = lo + room
+    parts: list[RenderableType] = [header("gain choices"), key_bar(keys), ident, knobs,
+                                   proposals_table(view, width, (lo, hi))]
+    if (lo, hi) != (0, n):
+        parts.append(Text(f"rows {lo + 1}-{hi} of {n}: Tab, n and p move through all",
+                          style=theme.MUTED))
     if view.rows:
-        sel = view.rows[min(max(view.selected, 0), len(view.rows) - 1)]
-        chosen = Text()
-        chosen.append(f"chosen {sel.name}", style="bold")
-        chosen.append(f"  kp {fmt(sel.kp)}  ki {fmt(sel.ki)} /s  kd {fmt(sel.kd)} s"
-                      f"  b {sel.setpoint_weight:.2f}")
+        r = view.rows[sel]
+        chosen = Text(no_wrap=True, overflow="ellipsis")
+        chosen.append(f"chosen {r.name}", style="bold")
+        chosen.append(f"  kp {fmt(r.kp)} {KP_UNIT}  ki {fmt(r.ki)} {KI_UNIT}  kd {fmt(r.kd)} "
+                      f"{KD_UNIT}  b {r.setpoint_weight:.2f}")
         parts.append(chosen)
-        if sel.violations:
-            parts.append(Text("✗ " + "; ".join(sel.violations), style=f"bold {theme.BAD}"))
+        if r.violations:
+            parts.append(Text("✗ " + "; ".join(r.violations), style=f"bold {theme.BAD}"))
     if view.message:
         parts.append(Text(view.message, style=theme.WARN))
     return Group(*parts)
 
 
+# ---------------------------------------------------------------------------- step result
 def _verdict_banner(view: StepView) -> Text:
     v = view.verdict
     if v is None:
@@ -241,13 +380,20 @@ def _verdict_banner(view: StepView) -> Text:
 
 FIGURE_LABELS = {
     "overshoot": "overshoot %",
-    "rise_time": "rise 10-90 s",
-    "settling_time": "settling 2% s",
-    "steady_state_error": "offset PV",
-    "iae": "IAE PV·s",
-    "peak_output": "peak output",
+    "rise_time": "rise 10-90 % s",
+    "settling_time": "settling s",
+    "steady_state_error": f"offset {PV_UNIT}",
+    "iae": f"IAE {PV_UNIT}·s",
+    "peak_output": f"peak output {OUT_UNIT}",
     "time_saturated": "saturated s",
 }
+
+
+def figure_label(row: object) -> str:
+    """A step figure's name with its unit."""
+    name = str(getattr(row, "name", ""))
+    unit = str(getattr(row, "unit", "") or "")
+    return FIGURE_LABELS.get(name, f"{name.replace('_', ' ')} {unit}".strip())
 
 
 def step_figures_table(rows: Sequence[object]) -> Table:
@@ -258,14 +404,12 @@ def step_figures_table(rows: Sequence[object]) -> Table:
     table.add_column("predicted", justify="right", no_wrap=True, style=theme.PREDICTED)
     table.add_column("difference", justify="right", no_wrap=True)
     for r in rows:
-        name = str(getattr(r, "name", ""))
-        label = FIGURE_LABELS.get(name, f"{name} {getattr(r, 'unit', '')}")
         diff = getattr(r, "difference", None)
         rel = getattr(r, "relative", None)
         dtext = "—" if diff is None else f"{diff:+.3g}"
         if rel is not None and math.isfinite(rel):
             dtext += f" ({rel * 100:+.0f}%)"
-        table.add_row(label, fmt(getattr(r, "measured", None), 3),
+        table.add_row(figure_label(r), fmt(getattr(r, "measured", None), 3),
                       fmt(getattr(r, "predicted", None), 3), dtext)
     return table
 
@@ -286,26 +430,30 @@ def verdict_checks(verdict: object, one_line: bool = False) -> Text:
 def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT) -> Group:
     """The confirmation step: response with the prediction overlaid, figures, verdict, keys."""
     width, height = max(width, MIN_WIDTH), max(height, MIN_HEIGHT)
-    series = [Series(view.t, view.sp, theme.SP, "setpoint")]
+    series = [setpoint_series(view.t, view.sp)]
     if view.pred_t:
-        series.append(Series(view.pred_t, view.pred_y, theme.PREDICTED, "predicted"))
-    series.append(Series(view.t, view.pv, theme.PV, "measured"))
+        series.append(predicted_series(view.pred_t, view.pred_y))
+    series.append(pv_series(view.t, view.pv, "measured PV"))
     xs = [x for s in series for x in s.x]
     xr = (min(xs), max(xs)) if len(xs) >= 2 and max(xs) > min(xs) else None
     side_by_side = width >= 100
     checks = verdict_checks(view.verdict, one_line=not side_by_side)
-    fixed = 4 + 3 + (len(view.rows) + 1) + (0 if side_by_side else 1) + (1 if view.message else 0)
+    keys = view.keys
+    hint = bool(view.detune_hint and any(k == "d" for k, _ in keys))
+    fixed = (1 + key_rows(keys, width) + 2 + 3 + (len(view.rows) + 1)
+             + (0 if side_by_side else 1) + (1 if view.message else 0) + (1 if hint else 0))
     chart_h = max(4, min(14, height - fixed))
-    keys = view.keys or STEP_KEYS
-    gains = Text()
+    gains = Text(no_wrap=True, overflow="ellipsis")
     gains.append(f"{view.name}", style="bold")
-    gains.append(f"  kp {fmt(view.kp)}  ki {fmt(view.ki)} /s  kd {fmt(view.kd)} s", style=theme.MUTED)
+    gains.append(f"  kp {fmt(view.kp)} {KP_UNIT}  ki {fmt(view.ki)} {KI_UNIT}  kd "
+                 f"{fmt(view.kd)} {KD_UNIT}", style=theme.MUTED)
     parts: list[RenderableType] = [
         header("step check"),
         key_bar(keys),
         gains,
         _verdict_banner(view),
-        BrailleChart(series, height=chart_h, x_range=xr, legend=False),
+        BrailleChart(series, height=chart_h, unit=PV_UNIT, x_range=xr, legend=False,
+                     x_label="s from the step"),
         chart_legend(series),
     ]
     if side_by_side:
@@ -316,7 +464,7 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
         parts.append(lower)
     else:
         parts += [step_figures_table(view.rows), checks]
-    if view.detune_hint and any(k == "d" for k, _ in keys):
+    if hint:
         parts.append(Text.assemble(("d runs the gentler design ", theme.MUTED),
                                    view.detune_hint))
     if view.message:
@@ -324,16 +472,11 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
     return Group(*parts)
 
 
+# ---------------------------------------------------------------------------- confirm, finish
 def confirm_screen(view: ConfirmView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
                    ) -> Group:
     """The deliberate confirmation before the motor is powered: what will run, the cautions,
     and the one key that goes ahead."""
-    width = max(width, MIN_WIDTH)
-    what = Text(view.action, style="bold")
-    cautions = Text()
-    for i, line in enumerate(view.cautions):
-        cautions.append("▸ ", style=f"bold {theme.WARN}")
-        cautions.append(line + ("\n" if i < len(view.cautions) - 1 else ""))
     confirm = Text()
     confirm.append(" Y ", style=theme.KEYCAP)
     confirm.append(" powers the motor. ", style="bold")
@@ -341,15 +484,14 @@ def confirm_screen(view: ConfirmView, width: int = MIN_WIDTH, height: int = MIN_
     return Group(
         header("power the motor?"),
         key_bar(CONFIRM_KEYS),
-        what,
-        Panel(cautions, title=Text(" before the motor moves ", style=f"bold {theme.WARN}"),
-              title_align="left", border_style=theme.WARN, box=HEAVY, padding=(0, 1)),
+        Text(view.action, style="bold"),
+        caution_panel(view.cautions),
         confirm,
     )
 
 
 def finish_screen(view: FinishView, width: int = MIN_WIDTH) -> Group:
-    """Where the files went, the accepted gains and a code-ready block."""
+    """Where the files went, the accepted gains and the per-tick code block."""
     style = "bold black on " + (theme.OK if view.ok else theme.WARN)
     files = Table(box=None, padding=(0, 1), show_header=False)
     files.add_column(style=theme.MUTED, no_wrap=True)
@@ -366,6 +508,6 @@ def finish_screen(view: FinishView, width: int = MIN_WIDTH) -> Group:
             g.add_row(label, value)
         parts += [Text("accepted gains", style=theme.TITLE), g]
     if view.code:
-        parts.append(Panel(Text(view.code), title="per-tick values for your loop code",
-                           title_align="left", border_style="grey35", box=ROUNDED))
+        parts.append(Panel(Text(view.code), title=view.code_title, title_align="left",
+                           border_style="grey35", box=ROUNDED))
     return Group(*parts)

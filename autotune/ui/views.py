@@ -13,15 +13,28 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from autotune.cautions import CAUTION_ITEMS
+from autotune.core.progress import Phase
 
 CAUTIONS: tuple[str, ...] = tuple(item[0].upper() + item[1:] + "." for item in CAUTION_ITEMS)
+
+# Unit names the screens and lines use: the tool knows the loop only in PV units and output
+# units, so every figure says which of the two (or seconds) it is in.
+PV_UNIT = "PV"  # PV units
+OUT_UNIT = "out"  # output units
+UNITS_NOTE = "[PV] PV units, [out] output units"
+KP_UNIT = "out/PV"
+KI_UNIT = "out/PV/s"
+KD_UNIT = "out·s/PV"
+
+# The sentence every screen and the plain lines keep, whatever the size.
+CUT_OFF = "the physical cut-off is the real stop"
 
 
 @dataclass(frozen=True)
 class StartView:
     """The start screen: what will move, under which limits, and the cautions."""
 
-    device: str  # device name and firmware
+    device: str  # board name as its handshake reports it
     port: str
     axis: int
     loop_mode: str  # "device" or "host"
@@ -30,6 +43,11 @@ class StartView:
     simulated: bool = False
     out_dir: str = ""
     cautions: tuple[str, ...] = CAUTIONS
+    firmware: str = ""  # firmware version from the handshake ("" when the board gives none)
+    board: tuple[tuple[str, str], ...] = ()  # more handshake facts: (label, value with unit)
+    road: tuple[Phase, ...] = ()  # the stages the job runs, in order
+    plan_title: str = "relay plan"
+    unattended: bool = False  # --yes: nothing is asked, the start needs no key
 
 
 class GainsLike(Protocol):
@@ -153,3 +171,30 @@ class FinishView:
     files: tuple[tuple[str, str], ...] = ()  # (what, path)
     gains: tuple[tuple[str, str], ...] = ()  # (label, value) of the accepted gains
     code: str = ""  # a short code-ready block of per-tick values
+    code_title: str = "per-tick code for your loop"
+
+
+@dataclass(frozen=True)
+class LiveContext:
+    """What the live screen needs beside the snapshot, kept by the front end across snapshots.
+
+    road: the stages of the job in order (the live road shows only these); t0: device time of
+    the job's first sample, s (the time axis counts from it); phase_t0: device time the current
+    phase began, s; expected: how long the current phase takes at most, s (None: unknown);
+    stage: 1-based position of the current phase on the road (0: not on it); log: the newest
+    lines the job said, oldest first.
+    """
+
+    road: tuple[Phase, ...] = ()
+    t0: float | None = None
+    phase_t0: float | None = None
+    expected: float | None = None
+    stage: int = 0
+    log: tuple[str, ...] = ()
+    reached: Phase | None = None  # the last stage on the road the job has entered
+
+    def elapsed(self, t_now: float | None) -> float | None:
+        """Seconds since the current phase began (device time), None when unknown."""
+        if t_now is None or self.phase_t0 is None:
+            return None
+        return max(0.0, t_now - self.phase_t0)

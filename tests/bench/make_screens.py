@@ -1,9 +1,12 @@
 """Regenerate the README screenshots in docs/screens/ from a demo run (simulated board).
 
     .venv/bin/python tests/bench/make_screens.py [--plant cart-wheel] [--speed 5] [--out DIR]
+        [--check DIR]
 
 Runs `autotune demo --yes` in-process on an in-memory terminal, keeps the last frame of each
-screen and writes them with rich's SVG export. Prints the files written. Asserts nothing.
+screen and writes them with rich's SVG export. With --check DIR it also writes every captured
+screen as plain text at 80x24 and 120x40 (the smallest and a large terminal) into DIR, to look
+at. Prints the files written. Asserts nothing.
 """
 
 from __future__ import annotations
@@ -20,7 +23,9 @@ sys.path.insert(0, str(ROOT))
 from autotune.commands import demo  # noqa: E402
 from autotune.job.requests import BoardRequest, JobRequest  # noqa: E402
 from autotune.simdevice import SIM  # noqa: E402
-from autotune.ui.export import export_svgs, record_demo  # noqa: E402
+from autotune.ui.export import export_svgs, export_texts, record_demo  # noqa: E402
+
+CHECK_SIZES = ((80, 24), (120, 40))
 
 
 def main() -> int:
@@ -31,6 +36,8 @@ def main() -> int:
     p.add_argument("--width", type=int, default=100)
     p.add_argument("--height", type=int, default=32)
     p.add_argument("--out", default=str(ROOT / "docs" / "screens"))
+    p.add_argument("--check", metavar="DIR", help="also write every screen as text at "
+                   "80x24 and 120x40 into DIR")
     args = p.parse_args()
     ns = argparse.Namespace(plant=args.plant, config=None, loop=None, speed=args.speed,
                             seed=args.seed)
@@ -49,6 +56,10 @@ def main() -> int:
     print(f"demo exit code {code}; screens captured: {', '.join(sorted(captured))}")
     for path in export_svgs(captured, out, args.width, args.height):
         print(f"wrote {path.relative_to(ROOT) if path.is_relative_to(ROOT) else path}")
+    if args.check:
+        for w, h in CHECK_SIZES:
+            for path in export_texts(captured, Path(args.check), w, h):
+                print(f"wrote {path}")
     return 0 if code == 0 else 1
 
 

@@ -74,8 +74,8 @@ def test_space_aborts_and_device_reports_zero_within_two_ticks(tmp_path: Path) -
         child.expect("robot is on blocks")
         child.expect("Type yes and Enter")
         child.sendline("yes")
-        child.expect(r"\[relay")
-        child.expect(r"cycle 2:")
+        child.expect(r"\nrelay ")  # the relay's lines
+        child.expect(r"\nrelay +2 ")  # the row of cycle 2 in the per-cycle table
         child.send(" ")
         child.expect(pexpect.EOF)
     finally:
@@ -196,7 +196,7 @@ def test_cli_sim_run_writes_contract_files(tmp_path: Path) -> None:
                           stdin=subprocess.DEVNULL, capture_output=True, text=True,
                           cwd=str(tmp_path), env=env(), timeout=120)
     assert proc.returncode == 0, proc.stderr
-    assert "[relay" in proc.stdout and "identified Ku" in proc.stdout
+    assert "\nrelay " in proc.stdout and "identified Ku" in proc.stdout
     s = read_session(out / "session.jsonl")
     # one session for the whole job: relay, analysis, the confirmation step (accepted)
     assert s.reason == "completed" and s.warnings == []
