@@ -264,7 +264,10 @@ def step_lines(view: StepView) -> list[str]:
         lines.append(("PASS: " if v.passed else "NOT MET: ") + v.reason
                      + ("" if v.passed else f" (suggested: {action})"))
         for c in v.checks:
-            lines.append(f"  {'ok  ' if c.passed else 'FAIL'} {c.message}")
+            status = getattr(c, "status", "pass" if c.passed else "fail")
+            word = {"pass": "ok  ", "fail": "FAIL", "not judged": "n/j ", "off": "off "}.get(
+                status, "FAIL")
+            lines.append(f"  {word} {c.message}")
     lines.append(f"  {'figure':<22}{'measured':>11}{'predicted':>11}{'difference':>12}")
     for r in view.rows:
         diff = "—" if r.difference is None else f"{r.difference:+.3g}"

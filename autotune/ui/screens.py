@@ -414,11 +414,18 @@ def step_figures_table(rows: Sequence[object]) -> Table:
     return table
 
 
+CHECK_MARKS = {"pass": ("✓ ", theme.OK), "fail": ("✗ ", theme.BAD),
+               "not judged": ("? ", theme.WARN), "off": ("– ", theme.MUTED)}
+"""How each check status is drawn: "not judged" is never a tick."""
+
+
 def verdict_checks(verdict: object, one_line: bool = False) -> Text:
     """The spec checks, ticked or crossed: one a line, or all on one line by name."""
     checks = Text()
     for c in getattr(verdict, "checks", ()) if verdict is not None else ():
-        checks.append("✓ " if c.passed else "✗ ", style=theme.OK if c.passed else theme.BAD)
+        status = getattr(c, "status", "pass" if c.passed else "fail")
+        mark, style = CHECK_MARKS.get(status, ("✗ ", theme.BAD))
+        checks.append(mark, style=style)
         if one_line:
             checks.append(c.name.replace("_", " ") + "   ")
         else:
@@ -457,9 +464,10 @@ def step_screen(view: StepView, width: int = MIN_WIDTH, height: int = MIN_HEIGHT
         chart_legend(series),
     ]
     if side_by_side:
-        lower = Table.grid(padding=(0, 3))
-        lower.add_column()
-        lower.add_column()
+        # the figures keep their natural width; the checks take what is left and wrap
+        lower = Table.grid(padding=(0, 3), expand=True)
+        lower.add_column(no_wrap=True)
+        lower.add_column(ratio=1)
         lower.add_row(step_figures_table(view.rows), checks)
         parts.append(lower)
     else:
