@@ -2,6 +2,7 @@
 
     python -m mock_device --plant FILE.toml|cart-wheel|mast-pan (--pty | --tcp HOST:PORT)
                           [--speed X] [--baud N] [--faults SPEC] [--seed N]
+                          [--exit-with-parent]
 
 The first stdout line is the port to open (pty path or socket:// URL); logs go to stderr.
 Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or plant file.
@@ -10,6 +11,7 @@ Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 from mock_device.config import SCENARIOS, MockConfigError, load_config
@@ -85,6 +87,9 @@ def build_parser() -> argparse.ArgumentParser:
         help="fault injection, e.g. corrupt=0.01,jitter=0.002,seed=3 (see mock_device.faults)",
     )
     p.add_argument("--seed", type=int, default=None, help="sensor noise seed (default: plant file)")
+    p.add_argument("--exit-with-parent", action="store_true",
+                   help="end when the process that started this one ends (for tools that "
+                        "start a simulated board of their own)")
     return p
 
 
@@ -123,6 +128,7 @@ def main(argv: list[str] | None = None) -> int:
         speed=args.speed,
         baud=args.baud,
         link_faults=LinkFaults(spec) if spec.any_link else None,
+        parent=os.getppid() if args.exit_with_parent else None,
     )
     install_signal_handlers(server)
     sys.stdout.write(transport.url() + "\n")
