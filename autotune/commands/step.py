@@ -26,6 +26,7 @@ from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_
 from autotune.core.pid import PidGains
 from autotune.core.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
+from autotune.ui.operator import red_alarm, typed_confirmation
 
 HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
 
@@ -247,7 +248,8 @@ def run_batch(cfg: Config, args: argparse.Namespace, choice: Choice, out_dir: Pa
 
     options = RunOptions(port=str(cfg.connection.port), yes=args.yes, out_dir=out_dir,
                          plant=cfg.connection.plant, speed=cfg.connection.speed,
-                         faults=args.faults, seed=args.seed, verb="step", stdout=stdout)
+                         faults=args.faults, seed=args.seed, verb="step", stdout=stdout,
+                         confirm=typed_confirmation(None, stdout), alarm=red_alarm)
     batch = Batch()
     size = step_size(cfg, args)
     run = PoweredRun(cfg, options, header_extra={"step_request": {

@@ -25,6 +25,7 @@ from autotune.config import (
 )
 from autotune.errors import EXIT_OK, UserError
 from autotune.job.powered import RunOptions
+from autotune.ui.operator import red_alarm, typed_confirmation
 
 HELP = "run the relay experiment on one loop and propose PID gains (powers the motor)"
 
@@ -110,7 +111,7 @@ def run(args: argparse.Namespace) -> int:
         return _run_bench_view(cfg, args, port, out_dir)
     options = RunOptions(port=port, yes=args.yes, out_dir=out_dir, plant=cfg.connection.plant,
                          speed=cfg.connection.speed, faults=args.faults, seed=args.seed,
-                         verb="tune")
+                         verb="tune", confirm=typed_confirmation(), alarm=red_alarm)
     printer = LinePrinter(sys.stdout)
     outcome = run_tune(cfg, options, on_update=printer, csv=args.csv)
     res = outcome.result

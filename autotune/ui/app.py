@@ -29,9 +29,10 @@ from rich.console import Console, RenderableType
 from rich.live import Live
 
 from autotune.core.progress import RunSnapshot
-from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_OK, UserError
+from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_OK, EXIT_USAGE, UserError
 from autotune.keys import AbortKeys
 from autotune.ui import plain, screens
+from autotune.ui.operator import red_alarm
 from autotune.ui.views import FinishView, ProposalRow, ProposalsView, StartView, StepView
 
 ABORT = "<abort>"  # what the key queue carries for an abort key
@@ -256,6 +257,14 @@ class _ConfirmGate(io.TextIOBase):
     def readline(self, size: int | None = -1) -> str:  # noqa: ARG002
         return "yes\n" if self.job.confirm_start() else "no\n"
 
+    def confirm(self) -> bool:
+        """RunOptions.confirm: the start screen's answer; refuses when nobody can answer."""
+        if not self.isatty():
+            raise UserError("refusing to power the motor without confirmation: no keys to "
+                            "answer with; pass --yes once the cautions are met",
+                            exit_code=EXIT_USAGE)
+        return self.job.confirm_start()
+
 
 @dataclass
 class StepAttempt:
@@ -310,9 +319,11 @@ class BenchJob:
         from autotune.job.powered import RunOptions
 
         st = self.settings
+        gate = _ConfirmGate(self)
         return RunOptions(port=st.port, yes=False, out_dir=out_dir, plant=st.plant,
-                          speed=st.speed, seed=st.seed, stdin=_ConfirmGate(self),
-                          stdout=self.sink, verb=verb, keys=False, cautions_shown=True)
+                          speed=st.speed, seed=st.seed, stdin=gate, stdout=self.sink,
+                          verb=verb, keys=False, cautions_shown=True, confirm=gate.confirm,
+                          alarm=red_alarm)
 
     def start_view(self) -> StartView:
         """The start screen's view. It comes before the port is opened (nothing is opened

@@ -18,6 +18,7 @@ from autotune.errors import EXIT_FAILED, EXIT_UNSAFE
 from protocol.messages import FaultCode, GetLimits, SetLimits, SetOutput, Stream
 from tests.integration.test_faults_link import (
     SPEED,
+    TICK,
     assert_session_complete,
     run_faulty,
 )
@@ -175,17 +176,30 @@ def test_runaway_device_limits_trip_with_the_host_dead(mock_device, open_link) -
     assert os.path.exists(dev.port)
 
 
-def test_device_ignoring_stop_tells_operator_to_cut_power(tmp_path: Path, capfd) -> None:
-    """The device ignores Stop: the host repeats it, then says in capitals on stderr to cut
-    the power, and the run's exit code is EXIT_UNSAFE (what `autotune tune` exits with)."""
+def test_device_ignoring_stop_is_zeroed_by_its_watchdog_and_said(tmp_path: Path,
+                                                                 capfd) -> None:
+    """The device ignores Stop: from the stop request on the host sends nothing but Stop
+    frames (which do not feed the watchdog), so the device's own watchdog zeroes the output
+    within one watchdog period of the request (device time, from the session record); the
+    host says in capitals what happened, and the run's exit code is EXIT_UNSAFE (what
+    `autotune tune` exits with)."""
+    watchdog = 2.0  # device s
     outcome, tr, s = run_faulty(tmp_path, "ignore_stop=1",
                                 {"connection": {"loop": "device"},
-                                 "relay": {"max_cycles": 3, "min_cycles": 3}})
+                                 "relay": {"max_cycles": 3, "min_cycles": 3},
+                                 "safety": {"watchdog": watchdog}})
     assert outcome.exit_code == EXIT_UNSAFE, (outcome.reason, outcome.message)
-    assert outcome.stop_confirmed is False
     err = capfd.readouterr().err
-    assert "CUT THE MOTOR POWER NOW" in err
-    assert s.end is not None and s.end["stop_confirmed"] is False
-    assert s.end["exit_code"] == EXIT_UNSAFE
-    ev = [e for e in s.events if e["kind"] == "stop_unconfirmed"]
-    assert ev and ev[0]["attempts"] >= 2  # Stop was repeated
+    assert "THE DEVICE IGNORED STOP" in err and "CUT THE MOTOR POWER NOW" in err
+    assert "ignored Stop" in outcome.message
+    assert s.end is not None and s.end["exit_code"] == EXIT_UNSAFE
+    stop = next(e for e in s.events if e["kind"] == "stop_request")
+    done = next(e for e in s.events if e["kind"] == "stopped")
+    assert done["answered"] is False and done["by_watchdog"] is True
+    assert done["attempts"] >= 2  # Stop was repeated
+    # zero output at most one watchdog period (plus the tick that latches it) after the
+    # request: the host fed the watchdog with nothing after it
+    zero = s.t[(s.t >= stop["t"]) & (s.out == 0.0)]
+    assert zero.size > 0 and zero[0] == done["t_zero"]
+    assert zero[0] - stop["t"] <= watchdog + TICK + 1e-9
+    assert np.all(s.out[s.t >= zero[0]] == 0.0)
