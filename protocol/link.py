@@ -75,6 +75,8 @@ READ_TIMEOUT = 0.05
 """Reader thread's read timeout, s: bounds how late it notices `close()`."""
 WRITE_TIMEOUT = 1.0
 """A write blocked this long (s) means the port is gone."""
+HB_PONG_WAIT = 1.0
+"""How long a heartbeat Ping waits for its Pong (s) before it counts as unanswered."""
 _WRAP = 1 << 32
 _HALF = 1 << 31
 
@@ -900,7 +902,8 @@ class Link:
     def _heartbeat_loop(self) -> None:
         """Send a Ping every heartbeat_interval s on a fixed schedule, never waiting for the
         Pong (a lost reply must not delay the next Ping: it feeds the device watchdog). Pongs
-        are matched in the reader thread (``_hb_pings``); unanswered ones count as timeouts."""
+        are matched in the reader thread (``_hb_pings``), late ones too; a Ping unanswered
+        after HB_PONG_WAIT counts as a timeout. While stop_only, no Ping goes out."""
         nonce = 0
         next_at = time.monotonic()
         while True:
@@ -920,7 +923,9 @@ class Link:
                 )
                 return
             with self._pending_lock:
-                stale = [q for q, t in self._hb_pings.items() if now - t > self.reply_timeout]
+                # a late Pong still measures the round trip (a slow link is not a dead one):
+                # a Ping counts as unanswered only after HB_PONG_WAIT
+                stale = [q for q, t in self._hb_pings.items() if now - t > HB_PONG_WAIT]
                 for q in stale:
                     del self._hb_pings[q]
                 self._counts["timeouts"] += len(stale)

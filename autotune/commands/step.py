@@ -26,6 +26,7 @@ from autotune.config import Config, SafetyConfig, StepConfig, load_config, with_
 from autotune.core.pid import PidGains
 from autotune.core.verdict import DEFAULT_DETUNE, Action, StepSpec, detune, format_comparison
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
+from autotune.recorder import check_gains, check_target, read_proposals
 from autotune.ui.operator import red_alarm, typed_confirmation
 
 HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
@@ -100,6 +101,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "capability)")
     p.add_argument("--yes", action="store_true",
                    help="no questions: accept when the step meets the spec (for scripts)")
+    p.add_argument("--force", action="store_true",
+                   help="run gains that look wrong (negative, or far beyond any published rule "
+                        "for the tuned loop) instead of refusing them")
     p.add_argument("--out", metavar="DIR",
                    help="directory for session.jsonl, result.json and gains.toml (default: "
                         "./autotune-sessions/step-YYYYmmdd-HHMMSS)")
@@ -118,30 +122,6 @@ class Choice:
     pid_extra: dict[str, float] = field(default_factory=dict)
 
 
-def _num(v: Any, what: str, path: str) -> float:
-    if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
-        raise UserError(f"{path}: {what}: expected a number, got {v!r}", exit_code=EXIT_USAGE)
-    return float(v)
-
-
-def pick_proposal(result: dict[str, Any], name: str | None, path: str) -> dict[str, Any]:
-    """The proposal `name` (or the default one, else the first) of a result.json dict."""
-    props = result.get("proposals")
-    if not isinstance(props, list) or not props:
-        raise UserError(f"{path}: has no proposals", exit_code=EXIT_USAGE)
-    if name is None:
-        for p in props:
-            if isinstance(p, dict) and p.get("default"):
-                return p
-        return props[0]
-    for p in props:
-        if isinstance(p, dict) and p.get("name") == name:
-            return p
-    names = ", ".join(str(p.get("name")) for p in props if isinstance(p, dict))
-    raise UserError(f"{path}: no proposal named {name!r} (there are: {names})",
-                    exit_code=EXIT_USAGE)
-
-
 def choose_gains(args: argparse.Namespace) -> Choice:
     """Gains from --kp/--ki/--kd and/or --from-result/--proposal."""
     if args.from_result is None and args.kp is None:
@@ -154,21 +134,19 @@ def choose_gains(args: argparse.Namespace) -> Choice:
     name, predicted = "manual", {}
     kp = ki = kd = None
     extra: dict[str, float] = {}
+    force = bool(getattr(args, "force", False))
+    ku = tu = None
     if args.from_result is not None:
-        from autotune.recorder import read_result
-
-        res = read_result(args.from_result)
-        prop = pick_proposal(res, args.proposal, args.from_result)
-        pool = [p for p in res.get("proposals", []) if isinstance(p, dict)]
-        name = str(prop.get("name", "proposal"))
-        kp = _num(prop.get("kp"), f"proposal {name} kp", args.from_result)
-        ki = _num(prop.get("ki", 0.0), f"proposal {name} ki", args.from_result)
-        kd = _num(prop.get("kd", 0.0), f"proposal {name} kd", args.from_result)
-        predicted = dict(prop.get("predicted") or {})
-        model = res.get("model") if isinstance(res.get("model"), dict) else None
-        for key in ("deriv_filter_n", "setpoint_weight", "tracking_time"):
-            if isinstance(prop.get(key), int | float) and not isinstance(prop.get(key), bool):
-                extra[key] = float(prop[key])
+        props = read_proposals(args.from_result, force=force)  # validated before any motion
+        prop = props.pick(args.proposal)
+        pool = props.proposals
+        ku, tu = props.ultimate_gain, props.ultimate_period
+        name = prop["name"]
+        kp, ki, kd = prop["kp"], prop["ki"], prop["kd"]
+        predicted = dict(prop["predicted"])
+        model = props.model
+        extra = {k: prop[k] for k in ("deriv_filter_n", "setpoint_weight", "tracking_time")
+                 if k in prop}
     if args.from_result is None:
         kp, ki, kd = args.kp, args.ki or 0.0, args.kd or 0.0
     elif (args.kp, args.ki, args.kd) != (None, None, None):
@@ -178,9 +156,8 @@ def choose_gains(args: argparse.Namespace) -> Choice:
         if (kp, ki, kd) != (prop.get("kp"), prop.get("ki", 0.0), prop.get("kd", 0.0)):
             name, predicted = f"{name} (edited)", {}
     assert kp is not None and ki is not None and kd is not None
-    for what, v in (("kp", kp), ("ki", ki), ("kd", kd)):
-        if not math.isfinite(v):
-            raise UserError(f"--{what} must be a finite number", exit_code=EXIT_USAGE)
+    kp, ki, kd = check_gains(kp, ki, kd, where=args.from_result or "--kp/--ki/--kd",
+                             ultimate_gain=ku, ultimate_period=tu, force=force)
     return Choice(name, PidGains(kp, ki, kd), predicted, pool, model, extra)
 
 
@@ -412,6 +389,8 @@ def run(args: argparse.Namespace, stdout: TextIO | None = None, stdin: Any = Non
         raise UserError(f"--setpoint-weight must lie between 0 and 1, got "
                         f"{args.setpoint_weight:g}", exit_code=EXIT_USAGE)
     choice = choose_gains(args)
+    if args.gains_file:
+        check_target(args.gains_file)  # before any motion: only a regular file or a new path
     spec = StepSpec(
         max_overshoot=args.max_overshoot if args.max_overshoot is not None
         else cfg.design.max_overshoot,

@@ -10,11 +10,12 @@ from autotune.config import Config
 
 def session_header(cfg: Config, *, verb: str, port: str, info: Any,
                    limits: dict[str, float] | None, pv_start: float | None,
-                   stale_faults: list[str], speed: float, sim: Any = None,
+                   t_start: float | None, stale_faults: list[str], speed: float, sim: Any = None,
                    faults: str | None = None, **extra: Any) -> dict[str, Any]:
     """The header record's fields (the recorder adds type, format, version and tool).
 
-    info: the device's DeviceInfo; limits: the read-back limits; pv_start: PV units; speed:
+    info: the device's DeviceInfo; limits: the read-back limits; pv_start: PV units; t_start:
+    device time (s) the run's duration counts from; speed:
     the simulated board's time factor (1 for a real board); sim: the SimDevice for `--port sim`
     (its plant and speed are recorded) with its `faults` spec; extra: the verb's own fields.
     """
@@ -34,6 +35,7 @@ def session_header(cfg: Config, *, verb: str, port: str, info: Any,
         },
         "limits": limits,
         "pv_start": pv_start,
+        "t_start": t_start,
         "stale_faults_cleared": stale_faults,
         "axis": cfg.connection.axis,
         "sign": cfg.connection.sign,

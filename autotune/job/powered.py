@@ -353,7 +353,7 @@ class PoweredRun:
             return
         header = session_header(
             self.cfg, verb=self.options.verb, port=self.options.port, info=self.info,
-            limits=self.limits_readback, pv_start=self.pv_start,
+            limits=self.limits_readback, pv_start=self.pv_start, t_start=self.t_start,
             stale_faults=self.stale_faults, speed=self.speed, sim=self.sim,
             faults=self.options.faults, **self.header_extra, **extra)
         self.recording.writer = SessionWriter(Path(self.options.out_dir) / "session.jsonl",
