@@ -324,20 +324,46 @@ def read_session(path: str | Path, *, phases: Collection[str] | None = None) -> 
             raise SessionFileError(p, f"cannot read: {exc.strerror or exc}") from None
 
 
+_SCAN = json.JSONDecoder().scan_once  # the C scanner: one value from a position, no wrappers
+_NUMBER = (float, int)
+
+
+def _parse(raw: bytes) -> Any:
+    """One JSON value of a line (bytes, UTF-8); ValueError when it is not exactly one."""
+    text = raw.decode("utf-8").strip()
+    if not text.startswith("{"):
+        return json.loads(text)  # the clear error, or a value that is not an object
+    try:
+        obj, end = _SCAN(text, 0)
+    except StopIteration:
+        raise ValueError("not JSON") from None
+    if end != len(text):
+        raise ValueError("trailing text")
+    return obj
+
+
 def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
     warnings: list[str] = []
     header: dict[str, Any] | None = None
-    cols = {k: array("d") for k in SAMPLE_KEYS}
+    t_col, pv_col, out_col, sp_col = (array("d") for _ in SAMPLE_KEYS)
     extra_cols: dict[str, list[Any]] = {}
     strings: dict[str, str] = {}  # one object per distinct string value (phase names)
     events: list[dict[str, Any]] = []
     end: dict[str, Any] | None = None
     ns = 0
     t_prev = -math.inf
+    hi = WIRE_FLOAT_MAX
+    lo = -hi
+    last_keys: tuple[str, ...] = ()
+    last_extra: list[tuple[str, list[Any]]] = []
     for j, raw, last in _lines(f):
         complete = raw.endswith(b"\n")
         try:
-            line = raw.decode("utf-8")
+            rec = _parse(raw)
+            if not isinstance(rec, dict):
+                raise ValueError("not an object")
+        except RecursionError:
+            raise SessionFileError(p, f"line {j} is nested too deeply") from None
         except UnicodeDecodeError:
             if j == 1:
                 raise SessionFileError(p, "not a session file (not UTF-8 text)") from None
@@ -345,16 +371,10 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
                 warnings.append(f"line {j} is cut short (the run was interrupted); ignored it")
                 break
             raise SessionFileError(p, f"line {j} is not UTF-8 text") from None
-        if j == 1 and not line.strip():
-            raise SessionFileError(p, "empty file, not a session file")
-        try:
-            rec = json.loads(line)
-            if not isinstance(rec, dict):
-                raise ValueError("not an object")
-        except RecursionError:
-            raise SessionFileError(p, f"line {j} is nested too deeply") from None
         except ValueError:
             if j == 1:
+                if not raw.strip():
+                    raise SessionFileError(p, "empty file, not a session file") from None
                 raise SessionFileError(p, "not a session file (line 1 is not a JSON object)")\
                     from None
             if last:
@@ -370,7 +390,14 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
             continue
         kind = rec.get("type")
         if kind == "sample":
-            t = _value(rec.get("t"), j, "t", p)
+            t, pv, out, sp = rec.get("t"), rec.get("pv"), rec.get("out"), rec.get("sp")
+            if (type(t) in _NUMBER and type(pv) in _NUMBER and type(out) in _NUMBER
+                    and type(sp) in _NUMBER and lo <= t <= hi and lo <= pv <= hi
+                    and lo <= out <= hi and lo <= sp <= hi):
+                pass  # the common case, checked in one go
+            else:
+                t, pv, out, sp = (_value(v, j, k, p) for k, v in
+                                  zip(SAMPLE_KEYS, (t, pv, out, sp), strict=True))
             if not t > t_prev:
                 problem = "is not a number" if math.isnan(t) else (
                     f"= {t:g} s does not increase (the sample before it is at {t_prev:g} s)")
@@ -379,26 +406,34 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
             phase = rec.get("phase")
             if phases is not None and isinstance(phase, str) and phase not in phases:
                 continue
-            values = [_value(rec.get(k), j, k, p) for k in SAMPLE_KEYS[1:]]
-            cols["t"].append(t)
-            for k, v in zip(SAMPLE_KEYS[1:], values, strict=True):
-                cols[k].append(v)
-            for k, v in rec.items():
-                if k in SAMPLE_KEYS or k == "type":
-                    continue
-                col = extra_cols.get(k)
-                if col is None:
-                    if len(extra_cols) >= MAX_EXTRA_KEYS:
-                        raise SessionFileError(p, f"line {j}: more than {MAX_EXTRA_KEYS} "
-                                               "different sample keys")
-                    col = extra_cols[k] = [None] * ns
-                if isinstance(v, str):
+            t_col.append(t)
+            pv_col.append(pv)
+            out_col.append(out)
+            sp_col.append(sp)
+            keys = tuple(rec)
+            if keys != last_keys:  # the keys changed: find (or open) their columns
+                last_keys = keys
+                last_extra = []
+                for k in keys:
+                    if k in SAMPLE_KEYS or k == "type":
+                        continue
+                    col = extra_cols.get(k)
+                    if col is None:
+                        if len(extra_cols) >= MAX_EXTRA_KEYS:
+                            raise SessionFileError(p, f"line {j}: more than {MAX_EXTRA_KEYS}"
+                                                   " different sample keys")
+                        col = extra_cols[k] = [None] * ns
+                    last_extra.append((k, col))
+            for k, col in last_extra:
+                v = rec[k]
+                if type(v) is str:
                     v = strings.setdefault(v, v)
                 col.append(v)
             ns += 1
-            for col in extra_cols.values():
-                if len(col) < ns:
-                    col.append(None)
+            if len(last_extra) != len(extra_cols):
+                for col in extra_cols.values():
+                    if len(col) < ns:
+                        col.append(None)
         elif kind == "event":
             events.append(rec)
         elif kind == "end":
@@ -421,10 +456,10 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
     return Session(
         path=str(p),
         header=header,
-        t=np.array(cols["t"], dtype=float),
-        pv=np.array(cols["pv"], dtype=float),
-        out=np.array(cols["out"], dtype=float),
-        sp=np.array(cols["sp"], dtype=float),
+        t=np.array(t_col, dtype=float),
+        pv=np.array(pv_col, dtype=float),
+        out=np.array(out_col, dtype=float),
+        sp=np.array(sp_col, dtype=float),
         extra=extra,
         events=events,
         end=end,

@@ -210,10 +210,10 @@ def test_device_fault_flag_stops_after_host_limits() -> None:
 # ------------------------------------------------------------------ signals
 def test_signal_outside_a_run_raises_interrupted_after_saving() -> None:
     saved: list[str] = []
-    with pytest.raises(signals.Interrupted) as err, signals.routed():
-        with signals.keep_on_interrupt(lambda: saved.append("x") or "result.json kept"):
-            os.kill(os.getpid(), signal.SIGTERM)
-            time.sleep(1.0)  # the handler runs here
+    with (pytest.raises(signals.Interrupted) as err, signals.routed(),
+          signals.keep_on_interrupt(lambda: saved.append("x") or "result.json kept")):
+        os.kill(os.getpid(), signal.SIGTERM)
+        time.sleep(1.0)  # the handler runs here
     assert saved == ["x"]
     assert err.value.name == "SIGTERM" and err.value.kept == ["result.json kept"]
     assert signal.getsignal(signal.SIGTERM) is signal.SIG_DFL  # restored

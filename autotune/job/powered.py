@@ -423,6 +423,10 @@ class PoweredRun:
             newest = self.newest
             if newest is not None and t is not None:
                 extra["t_newest"] = newest.t  # the newest sample received when decided
+                # the device time at the request: the newest sample's time plus the time
+                # since it arrived (speed-scaled; its transit from the board not counted)
+                extra["t_at_request"] = newest.t + max(
+                    0.0, time.monotonic() - newest.received_at) * self.speed
             if self._in_request is not None:
                 extra["during_request"] = self._in_request
             req.event = self.recording.hold_event(t, "stop_request", message or reason,

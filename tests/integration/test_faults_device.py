@@ -57,9 +57,11 @@ def test_spikes_cause_no_false_switches(tmp_path: Path) -> None:
     sw = np.nonzero((np.diff(out) != 0) & (out[1:] != 0) & (out[:-1] != 0))[0] + 1
     halves = np.diff(t[sw])
     assert halves.size >= 10
-    # a false switch would show as a half-period of a tick or two; none is shorter than a
-    # third of the typical one
-    assert halves.min() > np.median(halves) / 3, halves
+    # a switch a spike caused is undone within a few ticks (the PV is still on the other
+    # side: two samples there confirm the switch back), while the loop's own half-period is
+    # about 0.2 s (cart-wheel Tu ~ 0.42 s, its TOML). A busy host lengthens half-periods but
+    # does not make them that short: none lasts 5 ticks or less (device time, from the record)
+    assert halves.min() > 5 * TICK + 1e-9, halves
     spikes = np.sum(np.abs(np.diff(s.pv)) > 0.7)
     assert spikes > 0  # the spikes were there
 
@@ -197,9 +199,10 @@ def test_device_ignoring_stop_is_zeroed_by_its_watchdog_and_said(tmp_path: Path,
     done = next(e for e in s.events if e["kind"] == "stopped")
     assert done["answered"] is False and done["by_watchdog"] is True
     assert done["attempts"] >= 2  # Stop was repeated
-    # zero output at most one watchdog period (plus the tick that latches it) after the
-    # request: the host fed the watchdog with nothing after it
+    # zero output at most one watchdog period after the request (device time at the request
+    # from the session record), plus the tick that latches it and one tick for the transit
+    # of the samples: the host fed the watchdog with nothing after the request
     zero = s.t[(s.t >= stop["t"]) & (s.out == 0.0)]
     assert zero.size > 0 and zero[0] == done["t_zero"]
-    assert zero[0] - stop["t"] <= watchdog + TICK + 1e-9
+    assert zero[0] - stop["t_at_request"] <= watchdog + 2 * TICK + 1e-9
     assert np.all(s.out[s.t >= zero[0]] == 0.0)
