@@ -75,9 +75,15 @@ def _clean(value: Any) -> Any:
     return str(value)
 
 
+_ENCODE = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
+
+
 def dumps(obj: Any) -> str:
     """One JSON line (no newline) for `obj`, non-finite floats as null."""
-    return json.dumps(_clean(obj), separators=(",", ":"), allow_nan=False)
+    try:
+        return _ENCODE(obj)  # plain values (the common case, a sample): no copy
+    except (ValueError, TypeError):
+        return _ENCODE(_clean(obj))
 
 
 def _io_problem(exc: BaseException) -> str:

@@ -768,7 +768,9 @@ class PoweredRun:
         self.recording.event(t, "stopped" if stop.confirmed else "stop_unconfirmed",
                              stop.message, attempts=stop.attempts, t_zero=stop.t_zero,
                              answered=stop.answered, by_watchdog=stop.by_fault,
-                             restarted=stop.restarted, seconds=round(stop.seconds, 4))
+                             restarted=stop.restarted, seconds=round(stop.seconds, 4),
+                             device_faults=[{"name": f.name, "value": f.value, "t": f.t}
+                                            for f in self.device_faults])
         problem = self.recording.error
         if problem is None:
             return

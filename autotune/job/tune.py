@@ -36,6 +36,7 @@ from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
 from autotune.job.powered import PoweredRun, RunEnded, RunOptions
+from autotune.job.signals import keep_on_interrupt
 from autotune.recorder import export_csv, read_session, write_result
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
@@ -196,8 +197,9 @@ class TuneRun:
         # the stop path has run; the motor is stopped (or the operator was told to cut power)
         result = None
         out = run.outcome
-        if self.experiment is not None and self.experiment.cycles:
-            result = self._analyse(run)
+        with keep_on_interrupt(lambda: self._keep_measured(run)):
+            if self.experiment is not None and self.experiment.cycles:
+                result = self._analyse(run)
         session_path = result_path = None
         if self.options.out_dir is not None and run.writer is not None:
             session_path = run.writer.path
@@ -208,6 +210,20 @@ class TuneRun:
                 result_path = write_result(Path(self.options.out_dir) / "result.json", result)
         return TuneOutcome(out.exit_code, out.reason, out.message, result, session_path,
                            result_path, None if out.stop is None else out.stop.confirmed)
+
+    def _keep_measured(self, run: PoweredRun) -> str | None:
+        """A signal during the analysis (autotune.job.signals): end the session record and
+        write result.json with the plain relay figures measured; returns what was kept."""
+        cycles = len(self.experiment.cycles) if self.experiment else 0
+        run.end_session(cycles=cycles, interrupted="during the analysis")
+        if self.options.out_dir is None or not cycles:
+            return None if run.writer is None else f"session: {run.writer.path}"
+        self.analyse = False
+        result = self._analyse(run)
+        result["notes"].append("interrupted during the analysis: only the plain relay figures; "
+                               "`autotune analyze` on the session file analyses the cycles")
+        path = write_result(Path(self.options.out_dir) / "result.json", result)
+        return f"result.json with the relay figures written to {path}"
 
     # ------------------------------------------------------------------ helpers
     def _y(self, pv: float) -> float:
@@ -230,7 +246,8 @@ class TuneRun:
         from autotune.job.powered import float32
 
         sent_at = _time.monotonic()
-        give_up = sent_at + max(1.0, run.wall(duration))
+        give_up: float | None = None  # counted from the first sample after the command (a
+        #                               backlog of older ones, on a busy host, costs nothing)
         run.set_output(output)
         want = float32(output)
         got: list[Any] = []
@@ -238,10 +255,12 @@ class TuneRun:
         while True:
             rec = run.next_sample()
             if t0 is None:
-                fresh = rec.received_at >= sent_at
-                if (rec.output != want or not fresh) and _time.monotonic() < give_up:
-                    if fresh:
-                        run.set_output(output)
+                if rec.received_at < sent_at:
+                    continue  # queued before the command
+                if give_up is None:
+                    give_up = _time.monotonic() + max(1.0, run.wall(duration))
+                if rec.output != want and _time.monotonic() < give_up:
+                    run.set_output(output)
                     continue
                 t0 = rec.t
             got.append(rec)

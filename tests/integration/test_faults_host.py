@@ -231,3 +231,40 @@ def test_sigterm_at_the_prompt_exits_3(tmp_path: Path) -> None:
     assert "Traceback" not in child.before
     assert not (tmp_path / "run" / "session.jsonl").exists()
     assert wait_gone(str(tmp_path))
+
+
+def test_signal_during_the_analysis_keeps_the_relay_figures(tmp_path: Path) -> None:
+    """SIGTERM arrives (a real signal, sent to this process) the moment the analysis starts,
+    after the stop path has run: the signal ends the job, and on its way out the session gets
+    its end record and result.json the plain relay figures measured, and the line says so."""
+    from autotune.config import config_from_dict
+    from autotune.core.progress import Phase
+    from autotune.job.powered import RunOptions
+    from autotune.job.signals import Interrupted, routed
+    from autotune.job.tune import TuneRun
+
+    def on_update(snap: object) -> None:
+        if getattr(snap, "phase", None) is Phase.ANALYSIS:
+            os.kill(os.getpid(), signal.SIGTERM)
+            time.sleep(0.5)  # the handler runs here, in the analysis
+
+    cfg = config_from_dict({"safety": {"watchdog": 10.0},
+                            "relay": {"max_cycles": 8, "min_cycles": 6}}, "test.toml")
+    out = tmp_path / "out"
+    tr = TuneRun(cfg, RunOptions(port="sim", yes=True, out_dir=out, speed=20.0, keys=False),
+                 on_update=on_update, say=lambda line: None)
+    try:
+        with routed():
+            tr.execute()
+    except Interrupted as exc:
+        kept = exc.kept
+    else:
+        raise AssertionError("the signal did not end the job")
+    assert kept and "result.json with the relay figures" in kept[0]
+    s = read_session(out / "session.jsonl")
+    assert s.end is not None and s.end["interrupted"] == "during the analysis"
+    assert s.end["stop_confirmed"] is True and not s.warnings
+    result = json.loads((out / "result.json").read_text())
+    assert result["cycles"] and result.get("ultimate_gain_classic")
+    assert any("interrupted during the analysis" in n for n in result["notes"])
+    assert tr.run is not None and tr.run.sim is not None and tr.run.sim.process.poll() is not None
