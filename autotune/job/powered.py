@@ -29,7 +29,6 @@ than real time (1 for a real board).
 from __future__ import annotations
 
 import contextlib
-import math
 import sys
 import threading
 import time
@@ -37,11 +36,11 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
-from typing import Any, TextIO
+from typing import Any
 
 from autotune.cautions import CAUTION_ITEMS, CAUTION_TITLE
 from autotune.config import Config, check_against_device
-from autotune.core.progress import LimitGauge, LinkHealth, Phase, RunSnapshot
+from autotune.core.progress import Phase, RunSnapshot
 from autotune.core.safety import SafetyGuard, SafetyLimits
 from autotune.core.supervise import LinkQualityMonitor, ResetMonitor, Supervisor
 from autotune.errors import (
@@ -49,7 +48,6 @@ from autotune.errors import (
     EXIT_FAILED,
     EXIT_LINK,
     EXIT_OK,
-    EXIT_UNSAFE,
     EXIT_USAGE,
     UserError,
 )
@@ -58,13 +56,21 @@ from autotune.job.checks import SampleChecks, StopCause
 from autotune.job.header import session_header
 from autotune.job.limits import float32, load_limits, start_samples
 from autotune.job.recording import RECENT_SECONDS, RecentSamples, RunRecorder
+from autotune.job.snapshot import run_snapshot
 from autotune.job.stop import (
     CUT_POWER,
-    StopOutcome,
     StopSequence,
-    ignored_stop_alarm,
-    link_lost_alarm,
+    settle_outcome,
     stop_deadline,
+    stop_verdict,
+)
+from autotune.job.terms import (
+    RunEnded,
+    RunOptions,
+    RunOutcome,
+    StopOutcome,
+    is_finite,
+    link_ended,
 )
 from autotune.keys import AbortKeys
 from autotune.recorder import SessionWriter, check_out_dir
@@ -82,68 +88,6 @@ CAUTIONS = (CAUTION_TITLE, *(f"  - {item}" for item in CAUTION_ITEMS))
 LINK_RETRIES = 6  # resends of an unanswered request: on a line that loses 40% of its frames
 #                   seven attempts all fail one time in 600 (issue 8: the run goes on below
 #                   the loss threshold)
-
-
-class RunEnded(Exception):  # noqa: N818 (a control-flow signal, not an error)
-    """Ends the powered part of a run: `reason` goes to the session end record.
-
-    reason: "converged", "aborted", "limit:<which>", "fault:<which>", "precheck:<which>", ...
-    message: one line for the operator; exit_code: what the process returns.
-    """
-
-    def __init__(self, reason: str, message: str = "", exit_code: int = EXIT_FAILED,
-                 t: float | None = None) -> None:
-        super().__init__(message or reason)
-        self.reason = reason
-        self.message = message or reason
-        self.exit_code = exit_code
-        self.t = t
-
-
-@dataclass
-class RunOptions:
-    """How to run (from the front end).
-
-    port: URL for serial.serial_for_url or "sim"; yes: no questions; out_dir: where
-    session.jsonl / result.json go (None: nothing written); plant/faults/seed: for "sim";
-    speed: how many times faster than the wall clock the device's time runs (the simulated
-    board's --speed; 1 for a real board): host-side waits are divided by it;
-    stdin: the stream abort keys are read from; stdout: where `say` prints by default;
-    verb: for messages and the header; keys: watch abort keys when stdin is a terminal;
-    cautions_shown: a start screen showed the cautions before `confirm` is asked.
-    confirm: the front end's "ask the operator": called once the cautions are shown, True to
-    go ahead (it may raise UserError, e.g. when there is nobody to ask); None with `yes`
-    False refuses to power anything. alarm: the front end's "raise an alarm" (one line in
-    capitals that must reach the operator); None prints it on stderr.
-    """
-
-    port: str
-    yes: bool = False
-    out_dir: Path | None = None
-    plant: str = "cart-wheel"
-    speed: float = 1.0
-    faults: str | None = None
-    seed: int | None = None
-    stdin: Any = None
-    stdout: TextIO | None = None
-    verb: str = "tune"
-    keys: bool = True
-    cautions_shown: bool = False
-    confirm: Callable[[], bool] | None = None
-    alarm: Callable[[str], None] | None = None
-
-
-@dataclass
-class RunOutcome:
-    """How a powered run ended (filled by the stop path). recording_error: why the session
-    file could not be written completely (None: it was)."""
-
-    reason: str = "unknown"
-    message: str = ""
-    exit_code: int = EXIT_FAILED
-    stop: StopOutcome | None = None
-    error: BaseException | None = None
-    recording_error: str | None = None
 
 
 @dataclass
@@ -591,39 +535,8 @@ class PoweredRun:
 
     # ------------------------------------------------------------------ snapshots
     def snapshot(self, **overrides: Any) -> RunSnapshot:
-        """The current state for the screen."""
-        info = self.info
-        gauges: list[LimitGauge] = []
-        if self.pv_start is not None and self.last_sample is not None:
-            s = self.cfg.safety
-            gauges.append(LimitGauge("pv_window", self.last_sample.pv - self.pv_start,
-                                     s.pv_window))
-            gauges.append(LimitGauge("output", self.last_sample.output, s.output_limit))
-            if self.t_start is not None:
-                gauges.append(LimitGauge("duration", self.last_sample.t - self.t_start,
-                                         s.max_duration, "s"))
-        health = LinkHealth()
-        if self.link is not None:
-            st = self.link.stats()
-            health = LinkHealth(st.rtt_median, st.rtt_p99, st.frames_good, st.seq_gaps,
-                                st.crc_errors)
-        fields_: dict[str, Any] = dict(
-            phase=self.phase,
-            message=self.message,
-            device=f"{info.device_name} {info.firmware}" if info is not None else "",
-            axis=self.axis,
-            loop_mode=self.loop_mode,
-            t=tuple(self.recent.t),
-            pv=tuple(self.recent.pv),
-            sp=tuple(self.recent.sp),
-            out=tuple(self.recent.out),
-            limits=tuple(gauges),
-            link=health,
-            alarm=self.alarm,
-        )
-        fields_.update(self.snapshot_extra)
-        fields_.update(overrides)
-        return RunSnapshot(**fields_)
+        """The current state for the screen (see autotune.job.snapshot)."""
+        return run_snapshot(self, **overrides)
 
     def publish(self, force: bool = False) -> None:
         """Hand a snapshot to on_update (at most ten a second unless forced)."""
@@ -681,30 +594,6 @@ class PoweredRun:
                                      "handshake again to confirm zero output")
             link.request(Stream(self.axis, 1, 1), timeout=0.25, retries=2)
 
-    def _settle_outcome(self, exc: BaseException | None) -> None:
-        out = self.outcome
-        req = self._stop_req
-        if isinstance(exc, RunEnded):
-            out.reason, out.message, out.exit_code = exc.reason, exc.message, exc.exit_code
-        elif exc is None:
-            if req is not None:
-                out.reason, out.message, out.exit_code = req.reason, req.message, req.exit_code
-            elif out.reason == "unknown":
-                out.reason, out.exit_code = "completed", EXIT_OK
-        elif isinstance(exc, KeyboardInterrupt):
-            out.reason, out.message, out.exit_code = "aborted", "interrupted", EXIT_ABORTED
-        elif isinstance(exc, UserError):
-            out.reason, out.message, out.exit_code = "error", str(exc), exc.exit_code
-            out.error = exc
-        else:
-            out.reason = f"error:{type(exc).__name__}"
-            out.message = f"internal error: {exc!r}"
-            out.exit_code = EXIT_FAILED
-            out.error = exc
-        # A stop request that raced a normal ending still wins.
-        if req is not None and out.reason in ("completed", "converged"):
-            out.reason, out.message, out.exit_code = req.reason, req.message, req.exit_code
-
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> bool:
         """The single stop path: runs on every exit from the powered block. The stop sequence
@@ -712,7 +601,9 @@ class PoweredRun:
         out = self.outcome
         try:
             with contextlib.suppress(Exception):
-                self._settle_outcome(exc)
+                req = self._stop_req
+                settle_outcome(out, exc, None if req is None else
+                               (req.reason, req.message, req.exit_code))
             if self._stop_req is None:
                 self.request_stop(out.reason, out.message, out.exit_code)
             self.phase = Phase.STOPPING
@@ -741,21 +632,13 @@ class PoweredRun:
 
     def _alarm_if_needed(self, stop: StopOutcome) -> None:
         out = self.outcome
-        alarm = None
-        if not stop.confirmed:
-            lost = self.link is not None and self.link.lost
-            out.message = f"{out.message}; zero output NOT confirmed"
-            alarm = link_lost_alarm(self.cfg.safety.watchdog) if lost else CUT_POWER
-            out.exit_code = EXIT_LINK if lost else EXIT_UNSAFE
-        elif stop.by_fault:
-            req = self._stop_req
-            after = (None if stop.t_zero is None or req is None or req.t is None
-                     or stop.restarted else stop.t_zero - req.t)
-            out.message = (f"{out.message}; the device ignored Stop and its watchdog zeroed "
-                           "the output")
-            alarm = ignored_stop_alarm(after)
-            out.exit_code = EXIT_UNSAFE
-        if alarm is not None:
+        req = self._stop_req
+        lost = self.link is not None and self.link.lost
+        verdict = stop_verdict(stop, lost=lost, watchdog=self.cfg.safety.watchdog,
+                               t_request=None if req is None else req.t)
+        if verdict is not None:
+            alarm, out.exit_code, note = verdict
+            out.message = f"{out.message}; {note}"
             self.alarm = alarm
             self.raise_alarm(alarm)
 
@@ -822,16 +705,3 @@ class PoweredRun:
                 with contextlib.suppress(Exception):
                     self.end_session()
             self._exits.close()  # signal handlers back; a signal left over raises here
-
-
-def link_ended(exc: BaseException) -> RunEnded:
-    """The RunEnded for a link error met while commanding: a device reset (boot id changed)
-    is `fault:device_reset`, anything else `fault:link_lost`."""
-    if isinstance(exc, DeviceReset):
-        return RunEnded("fault:device_reset", f"the device restarted: {exc}", EXIT_LINK)
-    return RunEnded("fault:link_lost", f"the link is lost: {exc}", EXIT_LINK)
-
-
-def is_finite(x: float | None) -> bool:
-    """True for a finite float."""
-    return x is not None and math.isfinite(x)

@@ -18,9 +18,10 @@ from __future__ import annotations
 import contextlib
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
+from autotune.errors import EXIT_ABORTED, EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_UNSAFE, UserError
+from autotune.job.terms import RunEnded, RunOutcome, StopOutcome
 from protocol.errors import LinkError
 from protocol.messages import Mode, Stop, Stopped
 
@@ -44,28 +45,6 @@ def ignored_stop_alarm(after: float | None) -> str:
     return ("THE DEVICE IGNORED STOP: ITS OWN WATCHDOG ZEROED THE OUTPUT" + when + ". "
             "DO NOT POWER IT AGAIN UNTIL ITS STOP WORKS; IF THE MOTOR STILL MOVES, CUT THE "
             "MOTOR POWER NOW.")
-
-
-@dataclass
-class StopOutcome:
-    """What the stop sequence achieved.
-
-    confirmed: a sample showed zero output for good (see the module docstring); attempts: Stop
-    frames sent; message: what went wrong (empty when nothing did); t_zero: device time (s) of
-    the first sample of the zero output; answered: the device replied Stopped; by_fault: the
-    zero output came from a fault the device latched while Stop went unanswered; seconds:
-    wall-clock time the sequence took; restarted: the device had restarted (t_zero is then on
-    its new clock).
-    """
-
-    confirmed: bool
-    attempts: int
-    message: str = ""
-    t_zero: float | None = None
-    answered: bool = False
-    by_fault: bool = False
-    seconds: float = 0.0
-    restarted: bool = False
 
 
 def stop_deadline(rtt: float, tick: float, speed: float, watchdog: float) -> float:
@@ -165,3 +144,47 @@ class StopSequence:
             out.message = (f"the device answered none of {out.attempts} Stop frames; the fault "
                            "it latched (its watchdog) zeroed the output")
         return out
+
+
+def settle_outcome(out: RunOutcome, exc: BaseException | None,
+                   request: tuple[str, str, int] | None) -> None:
+    """Fill `out` from how the powered block ended: `exc` (a RunEnded, a KeyboardInterrupt, a
+    UserError, a bug, or None) and the first stop request (reason, message, exit code; it wins
+    over a normal ending that raced it)."""
+    if isinstance(exc, RunEnded):
+        out.reason, out.message, out.exit_code = exc.reason, exc.message, exc.exit_code
+    elif exc is None:
+        if request is not None:
+            out.reason, out.message, out.exit_code = request
+        elif out.reason == "unknown":
+            out.reason, out.exit_code = "completed", EXIT_OK
+    elif isinstance(exc, KeyboardInterrupt):
+        out.reason, out.message, out.exit_code = "aborted", "interrupted", EXIT_ABORTED
+    elif isinstance(exc, UserError):
+        out.reason, out.message, out.exit_code = "error", str(exc), exc.exit_code
+        out.error = exc
+    else:
+        out.reason = f"error:{type(exc).__name__}"
+        out.message = f"internal error: {exc!r}"
+        out.exit_code = EXIT_FAILED
+        out.error = exc
+    if request is not None and out.reason in ("completed", "converged"):
+        out.reason, out.message, out.exit_code = request
+
+
+def stop_verdict(stop: StopOutcome, *, lost: bool, watchdog: float,
+                 t_request: float | None) -> tuple[str, int, str] | None:
+    """The alarm, the exit code and a note for the outcome's message when the stop did not
+    end cleanly (None when it did): zero output not confirmed (the link lost: exit 4, else
+    exit 5), or confirmed only by the device's own watchdog because Stop went unanswered
+    (exit 5). watchdog in s; t_request the stop request's device time (s)."""
+    if not stop.confirmed:
+        if lost:
+            return link_lost_alarm(watchdog), EXIT_LINK, "zero output NOT confirmed"
+        return CUT_POWER, EXIT_UNSAFE, "zero output NOT confirmed"
+    if stop.by_fault:
+        after = (None if stop.t_zero is None or t_request is None or stop.restarted
+                 else stop.t_zero - t_request)
+        return (ignored_stop_alarm(after), EXIT_UNSAFE,
+                "the device ignored Stop and its watchdog zeroed the output")
+    return None

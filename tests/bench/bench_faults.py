@@ -132,8 +132,9 @@ def host_rows(speed: float, tmp: Path) -> list[tuple[str, str, str, str, str]]:
                  f"{stop.attempts} Stop frame(s), {stop.seconds:.2f} s wall",
                  o.reason + (f", ALARM: {tr.run.alarm}" if tr.run.alarm else ", no alarm"),
                  holds(s, o)))
-    # a board that ignores Stop: its watchdog (1 s device) zeroes it
-    wd = 1.0
+    # a board that ignores Stop: its watchdog (3 s device: long enough for a busy host to
+    # feed it during the run) zeroes it
+    wd = 3.0
     o, tr, s, m = run("ignore_stop=1", {"connection": {"loop": "device"},
                                         "relay": {"max_cycles": 3, "min_cycles": 3},
                                         "safety": {"watchdog": wd}}, speed, tmp, "ignore-stop")
@@ -252,9 +253,11 @@ def main() -> None:
                      o.reason, holds(s, o)))
 
         # device reset and disconnect: wall latency from the last sample's arrival
-        for faults, label in (("reset_after=4", "device reset"),
-                              ("disconnect_after=4", "disconnect (pty closed)")):
-            o, tr, s, m = run(faults, dev, speed, tmp, label.split()[0])
+        long_relay = {"connection": {"loop": "device"},
+                      "relay": {"max_cycles": 200, "min_cycles": 190}}
+        for faults, label in (("reset_after=8", "device reset"),
+                              ("disconnect_after=8", "disconnect (pty closed)")):
+            o, tr, s, m = run(faults, long_relay, speed, tmp, label.split()[0])
             lat = None
             if "stop_wall" in m and "last_rx" in m:
                 lat = (m["stop_wall"] - m["last_rx"]) * speed
