@@ -348,11 +348,51 @@ def _parse(raw: bytes) -> Any:
     return obj
 
 
+class _Column:
+    """One extra sample key: its numbers (NaN where a sample had none) in a float64 array, 8
+    bytes a sample, until the first value that is not a number; from then on Python objects
+    (strings shared, one object per distinct value)."""
+
+    __slots__ = ("nums", "objs", "strings")
+
+    def __init__(self, missing: int, strings: dict[str, str]) -> None:
+        self.nums: array[float] | None = array("d", [math.nan]) * missing
+        self.objs: list[Any] | None = None
+        self.strings = strings
+
+    def __len__(self) -> int:
+        return len(self.nums) if self.nums is not None else len(self.objs or ())
+
+    def append(self, v: Any) -> None:
+        nums = self.nums
+        if nums is not None:
+            if v is None:
+                nums.append(math.nan)
+                return
+            if type(v) in _NUMBER:
+                try:
+                    nums.append(v)
+                    return
+                except OverflowError:  # an integer beyond float64: keep it as it is
+                    pass
+            self.objs = [None if math.isnan(x) else x for x in nums]
+            self.nums = None
+        if type(v) is str:
+            v = self.strings.setdefault(v, v)
+        assert self.objs is not None
+        self.objs.append(v)
+
+    def values(self) -> np.ndarray:
+        if self.nums is not None:
+            return np.frombuffer(self.nums, dtype=float)
+        return np.array(self.objs, dtype=object)
+
+
 def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
     warnings: list[str] = []
     header: dict[str, Any] | None = None
     t_col, pv_col, out_col, sp_col = (array("d") for _ in SAMPLE_KEYS)
-    extra_cols: dict[str, list[Any]] = {}
+    extra_cols: dict[str, _Column] = {}
     strings: dict[str, str] = {}  # one object per distinct string value (phase names)
     events: list[dict[str, Any]] = []
     end: dict[str, Any] | None = None
@@ -361,7 +401,7 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
     hi = WIRE_FLOAT_MAX
     lo = -hi
     last_keys: tuple[str, ...] = ()
-    last_extra: list[tuple[str, list[Any]]] = []
+    last_extra: list[tuple[str, _Column]] = []
     for j, raw, last in _lines(f):
         complete = raw.endswith(b"\n")
         try:
@@ -428,13 +468,10 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
                         if len(extra_cols) >= MAX_EXTRA_KEYS:
                             raise SessionFileError(p, f"line {j}: more than {MAX_EXTRA_KEYS}"
                                                    " different sample keys")
-                        col = extra_cols[k] = [None] * ns
+                        col = extra_cols[k] = _Column(ns, strings)
                     last_extra.append((k, col))
             for k, col in last_extra:
-                v = rec[k]
-                if type(v) is str:
-                    v = strings.setdefault(v, v)
-                col.append(v)
+                col.append(rec[k])
             ns += 1
             if len(last_extra) != len(extra_cols):
                 for col in extra_cols.values():
@@ -452,20 +489,14 @@ def _read_lines(p: Path, f: BinaryIO, phases: frozenset[str] | None) -> Session:
         raise SessionFileError(p, "empty file, not a session file")
     if end is None:
         warnings.append("no end record: the run was cut off; the data end at the last flush")
-    extra: dict[str, np.ndarray] = {}
-    for k, col in extra_cols.items():
-        if all(v is None or (isinstance(v, (int, float)) and not isinstance(v, bool))
-               for v in col):
-            extra[k] = np.array([math.nan if v is None else float(v) for v in col])
-        else:
-            extra[k] = np.array(col, dtype=object)
+    extra = {k: col.values() for k, col in extra_cols.items()}
     return Session(
         path=str(p),
         header=header,
-        t=np.array(t_col, dtype=float),
-        pv=np.array(pv_col, dtype=float),
-        out=np.array(out_col, dtype=float),
-        sp=np.array(sp_col, dtype=float),
+        t=np.frombuffer(t_col, dtype=float),
+        pv=np.frombuffer(pv_col, dtype=float),
+        out=np.frombuffer(out_col, dtype=float),
+        sp=np.frombuffer(sp_col, dtype=float),
         extra=extra,
         events=events,
         end=end,
