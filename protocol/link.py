@@ -385,6 +385,7 @@ class PendingRequest:
 
 
 _LOST = object()
+_WAKE = object()  # wakes a reader of the sample queue (a device reset was noticed)
 
 
 class Link:
@@ -598,6 +599,8 @@ class Link:
                 continue
             if item is _LOST:
                 raise LinkLost(self._lost or "link lost")
+            if item is _WAKE:
+                continue  # the reset check at the top of the loop
             return item
 
     def drain_samples(self) -> list[SampleRecord]:
@@ -611,7 +614,8 @@ class Link:
             if item is _LOST:
                 self.samples.put_nowait(_LOST)
                 return out
-            out.append(item)
+            if item is not _WAKE:
+                out.append(item)
 
     def poll_faults(self) -> list[FaultRecord]:
         """All Fault reports received and not yet polled."""
@@ -897,7 +901,11 @@ class Link:
     def _note_pong(self, pong: Pong) -> None:
         self.last_pong = pong
         if self._boot_id is not None and pong.boot_id != self._boot_id:
+            first = not self.device_reset
             self.device_reset = True
+            if first:  # a caller waiting for samples (none come after a reset) hears it now
+                with contextlib.suppress(queue.Full):
+                    self.samples.put_nowait(_WAKE)
 
     def _heartbeat_loop(self) -> None:
         """Send a Ping every heartbeat_interval s on a fixed schedule, never waiting for the
