@@ -464,6 +464,9 @@ class PoweredRun:
         self.last_sample = rec
         self._keepalive()
         self._record(rec, self.phase.value)
+        # the checks have seen this sample and any newer one: a cause they found names the
+        # ending before a command the device refused for the same reason (a latched fault)
+        self.check_stop()
         nak = self.link.last_nak
         if nak is not None:
             self.link.last_nak = None
@@ -471,7 +474,6 @@ class PoweredRun:
             raise RunEnded("fault:refused", f"the device refused a command: "
                            f"{NakError(msg.acked_type, msg.code, msg.detail)}", EXIT_FAILED,
                            rec.t)
-        self.check_stop()
         if publish:
             self.publish()
         return rec
