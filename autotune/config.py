@@ -33,6 +33,13 @@ from autotune.errors import ConfigError
 
 LoopMode = Literal["auto", "host", "device"]
 
+WIRE_FLOAT_MAX = 3.4028234663852886e38
+"""Largest float32, what the wire carries: a setting beyond it cannot be sent to the board."""
+INT_MAX = 2**31 - 1
+"""Largest integer setting (cycle counts and the like; a baud rate has its own bound)."""
+BAUD_MAX = 20_000_000
+"""Fastest serial rate accepted, bit/s (beyond any UART a controller board uses)."""
+
 
 @dataclass(frozen=True)
 class ConnectionConfig:
@@ -371,6 +378,10 @@ def load_config(path: str | Path | None) -> Config:
         raise ConfigError(p, None, f"cannot read: {exc.strerror or exc}") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(p, None, f"not valid TOML: {exc}") from None
+    except UnicodeDecodeError:
+        raise ConfigError(p, None, "not a TOML file (not UTF-8 text)") from None
+    except RecursionError:
+        raise ConfigError(p, None, "not a usable TOML file (nested too deeply)") from None
     return config_from_dict(data, p)
 
 
@@ -415,10 +426,32 @@ def _positive(cfg_source: str, key: str, value: float | int | None, *, allow_zer
         raise ConfigError(cfg_source, key, f"must be > 0, got {value!r}")
 
 
+def _check_ranges(cfg: Config, src: str) -> None:
+    """Every number of every section fits what carries it: floats the wire's float32 (less
+    than half of it, so that a window around a start value fits too), integers 32 bits."""
+    for section in SECTIONS:
+        part = getattr(cfg, section)
+        for f in fields(part):
+            v = getattr(part, f.name)
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                continue
+            key = f"{section}.{f.name}"
+            if isinstance(v, float) and not abs(v) <= WIRE_FLOAT_MAX / 2:
+                raise ConfigError(src, key, f"{v:g} is out of range: the wire format (float32) "
+                                  f"carries at most {WIRE_FLOAT_MAX:.3g}, and the limits "
+                                  "around a start value need room within it")
+            if isinstance(v, int) and not abs(v) <= INT_MAX:
+                raise ConfigError(src, key, f"{v} is out of range (at most {INT_MAX})")
+
+
 def validate(cfg: Config, source: str | None = None) -> None:
     """Reject impossible values and combinations; raises ConfigError naming the key."""
     src = source or cfg.source
     c, s, r, p, d, st = cfg.connection, cfg.safety, cfg.relay, cfg.prechecks, cfg.design, cfg.step
+    _check_ranges(cfg, src)
+    if not 0 < c.baudrate <= BAUD_MAX:
+        raise ConfigError(src, "connection.baudrate",
+                          f"must be 1..{BAUD_MAX} bit/s, got {c.baudrate}")
     if c.axis < 0 or c.axis > 255:
         raise ConfigError(src, "connection.axis", f"must be 0..255, got {c.axis}")
     if c.sign not in (1, -1):

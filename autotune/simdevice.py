@@ -1,7 +1,14 @@
-"""The built-in simulated board for `--port sim`: the mock device as its own process on a pty."""
+"""The built-in simulated board for `--port sim`: the mock device as its own process on a pty.
+
+The board always ends with the tool: `close()` on every path out of a run, an exit handler for
+anything that skips it, and the board's own `--exit-with-parent` for a tool that is killed.
+A board that cannot start (a bad plant file or fault spec) is a bad input: exit 2.
+"""
 
 from __future__ import annotations
 
+import atexit
+import contextlib
 import os
 import select
 import subprocess
@@ -11,7 +18,7 @@ import time
 from dataclasses import dataclass, field
 from types import TracebackType
 
-from autotune.errors import EXIT_LINK, UserError
+from autotune.errors import EXIT_USAGE, UserError
 
 SIM = "sim"
 
@@ -36,14 +43,10 @@ class SimDevice:
         return f.read().decode(errors="replace")
 
     def close(self, timeout: float = 3.0) -> None:
-        """Terminate the device process (SIGTERM, then SIGKILL)."""
-        if self.process.poll() is None:
-            self.process.terminate()
-            try:
-                self.process.wait(timeout)
-            except subprocess.TimeoutExpired:
-                self.process.kill()
-                self.process.wait(timeout)
+        """Terminate the device process (SIGTERM, then SIGKILL); safe to call again."""
+        _end_process(self.process, timeout)
+        with contextlib.suppress(ValueError):
+            atexit.unregister(self.close)
         if self.process.stdout is not None:
             self.process.stdout.close()
 
@@ -59,6 +62,18 @@ class SimDevice:
         self.close()
 
 
+def _end_process(proc: subprocess.Popen[bytes], timeout: float) -> None:
+    if proc.poll() is None:
+        with contextlib.suppress(OSError):
+            proc.terminate()
+        try:
+            proc.wait(timeout)
+        except subprocess.TimeoutExpired:
+            with contextlib.suppress(OSError):
+                proc.kill()
+            proc.wait(timeout)
+
+
 def start_sim_device(
     plant: str = "cart-wheel",
     speed: float = 1.0,
@@ -72,7 +87,8 @@ def start_sim_device(
     `plant` is a built-in scenario name or a plant TOML path; `speed` runs simulated time that many
     times faster than the wall clock.
     """
-    cmd = [sys.executable, "-m", "mock_device", "--plant", plant, "--pty", "--speed", str(speed)]
+    cmd = [sys.executable, "-m", "mock_device", "--plant", plant, "--pty", "--speed", str(speed),
+           "--exit-with-parent"]
     if faults:
         cmd += ["--faults", faults]
     if seed is not None:
@@ -89,30 +105,34 @@ def launch(cmd: list[str], plant: str, speed: float, startup_timeout: float = 10
     errfile = tempfile.TemporaryFile()  # noqa: SIM115 (lives as long as the device)
     proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=errfile)
     assert proc.stdout is not None
-    deadline = time.monotonic() + startup_timeout
-    line = b""
-    fd = proc.stdout.fileno()
-    while not line.endswith(b"\n"):
-        remaining = deadline - time.monotonic()
-        if remaining <= 0 or proc.poll() is not None:
-            break
-        ready, _, _ = select.select([fd], [], [], remaining)
-        if ready:
-            chunk = os.read(fd, 1)
-            if not chunk:
+    try:
+        deadline = time.monotonic() + startup_timeout
+        line = b""
+        fd = proc.stdout.fileno()
+        while not line.endswith(b"\n"):
+            remaining = deadline - time.monotonic()
+            if remaining <= 0 or proc.poll() is not None:
                 break
-            line += chunk
+            ready, _, _ = select.select([fd], [], [], remaining)
+            if ready:
+                chunk = os.read(fd, 1)
+                if not chunk:
+                    break
+                line += chunk
+    except BaseException:  # a signal while waiting: the board must not outlive this
+        _end_process(proc, 3.0)
+        raise
     url = line.decode(errors="replace").strip()
     if not url:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
+        _end_process(proc, 3.0)
         errfile.seek(0)
         reason = errfile.read().decode(errors="replace").strip().splitlines()
         raise UserError(
             f"{what} did not start"
             + (f": {reason[-1]}" if reason else " (no port announced within "
                f"{startup_timeout:.0f} s)"),
-            exit_code=EXIT_LINK,
+            exit_code=EXIT_USAGE,
         )
-    return SimDevice(process=proc, url=url, plant=plant, speed=speed, stderr_file=errfile)
+    sim = SimDevice(process=proc, url=url, plant=plant, speed=speed, stderr_file=errfile)
+    atexit.register(sim.close)
+    return sim

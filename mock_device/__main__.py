@@ -2,7 +2,7 @@
 
     python -m mock_device --plant FILE.toml|cart-wheel|mast-pan (--pty | --tcp HOST:PORT)
                           [--speed X] [--baud N] [--faults SPEC] [--seed N] [--period S]
-                          [--protocol-version N]
+                          [--protocol-version N] [--exit-with-parent]
 
 The first stdout line is the port to open (pty path or socket:// URL); logs go to stderr.
 Exit codes: 0 after SIGTERM/SIGINT or a disconnect fault, 2 for bad arguments or plant file.
@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import os
 import re
 import sys
 
@@ -109,6 +110,9 @@ def build_parser() -> argparse.ArgumentParser:
                    choices=(m.PROTOCOL_VERSION, *m.OLDER_VERSIONS),
                    help="wire protocol version to speak: an older one emulates an older board "
                         f"(default: {m.PROTOCOL_VERSION})")
+    p.add_argument("--exit-with-parent", action="store_true",
+                   help="end when the process that started this one ends (for tools that "
+                        "start a simulated board of their own)")
     return p
 
 
@@ -154,6 +158,7 @@ def main(argv: list[str] | None = None) -> int:
         speed=args.speed,
         baud=args.baud,
         link_faults=LinkFaults(spec) if spec.any_link else None,
+        parent=os.getppid() if args.exit_with_parent else None,
     )
     install_signal_handlers(server)
     sys.stdout.write(transport.url() + "\n")

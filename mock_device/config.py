@@ -53,6 +53,11 @@ __all__ = [
 ]
 
 SCENARIOS = ("cart-wheel", "cart-wheel-loaded", "mast-pan")
+COEFFICIENT_MAX = 1e12
+"""Largest |coefficient| of num and den once both are divided by den[0]: far beyond any motor
+loop (time constants down to a microsecond), well inside what the simulation keeps finite."""
+WIRE_MAX = 3.4028234663852886e38
+"""Largest float32 (the wire format): values reported to the host must fit."""
 
 
 class MockConfigError(ValueError):
@@ -221,6 +226,17 @@ def _check(
 
     if plant.den[0] == 0.0:
         raise err("[plant] den", "leading coefficient must not be 0")
+    for key, coefs in (("num", plant.num), ("den", plant.den)):
+        for c in coefs:
+            scaled = c / plant.den[0]
+            if not abs(scaled) <= COEFFICIENT_MAX:
+                raise err(f"[plant] {key}", f"coefficient {c:g} is out of range: divided by "
+                          f"den[0] = {plant.den[0]:g} every coefficient must lie within "
+                          f"+/-{COEFFICIENT_MAX:g}")
+    if all(c == 0.0 for c in plant.num):
+        raise err("[plant] num", "all coefficients are 0: the plant would never move")
+    if not plant.delay <= 3600.0:
+        raise err("[plant] delay", f"must be at most 3600 s, got {plant.delay}")
     if len(plant.num) > len(plant.den):
         raise err("[plant] num", "more coefficients than den: the plant must be proper")
     if plant.delay < 0.0:
@@ -229,6 +245,11 @@ def _check(
         raise err("[actuator] limit", f"must be > 0, got {actuator.limit}")
     if not 0.0 <= actuator.deadband < actuator.limit:
         raise err("[actuator] deadband", f"must be in [0, limit), got {actuator.deadband}")
+    for key, value in (("[plant] load", plant.load), ("[actuator] limit", actuator.limit),
+                       ("[sensor] offset", sensor.offset), ("[sensor] noise", sensor.noise),
+                       ("[device] max_output", device.max_output)):
+        if not abs(value) <= 1e9:
+            raise err(key, f"{value:g} is out of range: at most 1e9 in magnitude")
     if sensor.noise < 0.0:
         raise err("[sensor] noise", f"must be >= 0, got {sensor.noise}")
     if sensor.resolution < 0.0:

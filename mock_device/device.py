@@ -122,6 +122,7 @@ class Device:
         self._log = log
         self.fault_spec = faults if faults is not None else config.faults
         self.faults = DeviceFaults(self.fault_spec)
+        self._no_ack = self.fault_spec.no_ack_types
         rng = np.random.default_rng(dev.seed if seed is None else seed)
         self.plant = LtiPlant(
             config.plant.num, config.plant.den, config.plant.delay, max_step=dev.period / 10
@@ -219,9 +220,20 @@ class Device:
 
     # ------------------------------------------------------------ frames
     def handle_frame(self, raw: RawFrame) -> list[Outgoing]:
-        """Handle one good frame from the host (decoding errors are answered with Nak)."""
-        self.last_rx_k = self.k
+        """Handle one good frame from the host (decoding errors are answered with Nak).
+
+        Every good frame except Stop feeds the watchdog (a Stop never lengthens the time the
+        output may stay on while the host is otherwise silent). A request whose type is in the
+        ``no_ack`` fault is acted on but not answered."""
+        if raw.type != m.Stop.TYPE:
+            self.last_rx_k = self.k
         self.last_received = raw.type
+        out = self._handle_frame(raw)
+        if raw.type in self._no_ack:
+            out = [o for o in out if o.seq != raw.seq or o.msg.TYPE not in m.RESPONSE_TYPES]
+        return out
+
+    def _handle_frame(self, raw: RawFrame) -> list[Outgoing]:
         if not 0x01 <= raw.type <= 0x3F:
             return [Outgoing(m.Nak(raw.type, m.NakCode.UNKNOWN_TYPE, float(raw.type)), raw.seq)]
         try:
@@ -235,9 +247,12 @@ class Device:
         return self.handle(msg, raw.seq)
 
     def handle(self, msg: m.Message, seq: int) -> list[Outgoing]:
-        """Handle one decoded request; returns the replies (seq echoed) and any extra frames."""
-        self.last_rx_k = self.k
+        """Handle one decoded request; returns the replies (seq echoed) and any extra frames.
+        Stop is idempotent: every Stop (a resent one too) zeroes the output and is answered
+        with Stopped after the next tick."""
         t = msg.TYPE
+        if t != m.Stop.TYPE:
+            self.last_rx_k = self.k
 
         def ack() -> list[Outgoing]:
             return [Outgoing(m.Ack(t), seq)]

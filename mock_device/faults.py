@@ -26,7 +26,11 @@ Device faults (applied in the device state machine; see DeviceFaults):
   unstable=R         a divergent mode is added to the PV from the first Hello on:
                      A*(exp(R*t) - 1) with A = unstable_size PV units (default 1.0), R in 1/s
   unstable_size=A    see unstable
-  ignore_stop=1      Stop frames are ignored entirely (no reply, output kept)
+  ignore_stop=1      Stop frames are ignored entirely (no reply, output kept; like every Stop
+                     they do not feed the watchdog, so the watchdog still zeroes the output)
+  no_ack=NAMES       requests of these types (message names joined by "+", e.g.
+                     StartRelay+SetPid; not Stop) are acted on but never answered, so the host
+                     retries them
   seed=N             seed of the fault random generator (default 0)
 """
 
@@ -38,6 +42,8 @@ from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
+
+from protocol.messages import REGISTRY
 
 __all__ = ["FaultSpec", "FaultSpecError", "LinkFaults", "DeviceFaults", "parse_fault_spec"]
 
@@ -71,7 +77,13 @@ class FaultSpec:
     unstable: float = 0.0
     unstable_size: float = 1.0
     ignore_stop: bool = False
+    no_ack: str = ""
     seed: int = 0
+
+    @property
+    def no_ack_types(self) -> frozenset[int]:
+        """Type ids of the requests the device acts on without answering (``no_ack``)."""
+        return _no_ack_types(self.no_ack)
 
     @property
     def any_link(self) -> bool:
@@ -97,9 +109,26 @@ _NONNEG = {"latency", "jitter", "garbage", "spike_size", "unstable", "unstable_s
 _TIMES = {"disconnect_after", "reset_after", "stuck_after"}
 _BOOLS = {"reverse_sign", "ignore_stop"}
 _INTS = {"garbage_len", "seed"}
+_NAMES = {"no_ack"}
+
+
+def _no_ack_types(names: str) -> frozenset[int]:
+    by_name = {cls.__name__: t for t, cls in REGISTRY.items() if 0x01 <= t <= 0x3F}
+    out = set()
+    for name in filter(None, (n.strip() for n in names.split("+"))):
+        if name not in by_name or name == "Stop":
+            known = "+".join(sorted(n for n in by_name if n != "Stop"))
+            raise FaultSpecError(f"no_ack: {name!r} is not a request type (known: {known})")
+        out.add(by_name[name])
+    return frozenset(out)
 
 
 def _coerce(key: str, value: Any) -> Any:
+    if key in _NAMES:
+        if not isinstance(value, str):
+            raise FaultSpecError(f"{key}: expected message names joined by '+', got {value!r}")
+        _no_ack_types(value)
+        return value.strip()
     if key in _BOOLS:
         if isinstance(value, bool):
             return value

@@ -196,6 +196,8 @@ class Server:
         baud: UART pacing in bit/s (None: no pacing).
         link_faults: byte-level faults (None: none).
         clock: monotonic wall clock, s; sleep: waits that many wall seconds (both for tests).
+        parent: a process id: the loop ends once this process is gone (our parent changed),
+            so a simulated board started by a tool never outlives it, even a killed one.
     """
 
     def __init__(
@@ -209,6 +211,7 @@ class Server:
         clock: Callable[[], float] = time.monotonic,
         sleep: Callable[[float], None] = time.sleep,
         log: TextIO = sys.stderr,
+        parent: int | None = None,
     ) -> None:
         if not speed > 0:
             raise ValueError("speed must be > 0")
@@ -229,6 +232,8 @@ class Server:
         self._start = 0.0
         self.ticks = 0
         self.tx_overflows = 0
+        self.parent = parent
+        self._parent_checked = 0.0
 
     def stop(self, *_args: object) -> None:
         """Ask the loop to finish (signal handler)."""
@@ -279,19 +284,34 @@ class Server:
             frames = self.decoder.feed(data)
             for frame in frames:
                 self._enqueue(self.device.handle_frame(frame), now)
-            if frames:
+            if any(f.type != m.Stop.TYPE for f in frames):
                 # The host was heard at simulated time `now`, which is ahead of the tick counter
                 # while the loop catches up after the process was descheduled: those catch-up
-                # ticks are not host silence, so the watchdog counts from `now`.
+                # ticks are not host silence, so the watchdog counts from `now` (Stop frames do
+                # not feed the watchdog: see Device.handle_frame).
                 heard_k = int(now / self.device.period)
                 self.device.last_rx_k = max(self.device.last_rx_k, heard_k)
 
+    def _parent_gone(self) -> bool:
+        """True when the process we were started for has ended (checked every 0.2 s wall)."""
+        if self.parent is None:
+            return False
+        wall = self.clock()
+        if wall - self._parent_checked < 0.2:
+            return False
+        self._parent_checked = wall
+        return os.getppid() != self.parent
+
     def run(self) -> int:
-        """Serve until stopped or a disconnect fault; returns the exit code."""
+        """Serve until stopped, a disconnect fault or the parent's end; returns the exit code."""
         period = self.device.period
         self._start = self.clock()
         last_garbage = 0.0
         while self.running:
+            if self._parent_gone():
+                print("mock_device: the process that started it has ended: exiting",
+                      file=self.log)
+                return 0
             now = self._sim_now()
             # run every tick that is due (catch up without skipping)
             while self.ticks * period <= now and self.running:

@@ -63,6 +63,10 @@ class LinkLost(LinkError):
     """The port went away (cable unplugged, pty closed, socket closed) or the device fell silent."""
 
 
+class StopOnly(LinkError):
+    """A frame other than Stop refused: a stop is in progress (see Link.enter_stop_only)."""
+
+
 class DeviceReset(LinkError):
     """The device restarted (its boot id changed) since the handshake."""
 

@@ -39,6 +39,7 @@ from protocol.errors import (
     PortBusy,
     PortNotFound,
     PortPermission,
+    StopOnly,
     VersionMismatch,
 )
 from protocol.framing import FrameDecoder
@@ -76,6 +77,8 @@ READ_TIMEOUT = 0.05
 """Reader thread's read timeout, s: bounds how late it notices `close()`."""
 WRITE_TIMEOUT = 1.0
 """A write blocked this long (s) means the port is gone."""
+HB_PONG_WAIT = 1.0
+"""How long a heartbeat Ping waits for its Pong (s) before it counts as unanswered."""
 _WRAP = 1 << 32
 _HALF = 1 << 31
 
@@ -300,7 +303,93 @@ class _Waiter:
         self.received_at = 0.0
 
 
+class PendingRequest:
+    """One request in flight (from `Link.begin`): one frame, one sequence number for every
+    resend, so a reply to any of the sends matches, however late it comes.
+
+    ``send()`` writes the frame (again); ``wait(timeout)`` waits up to ``timeout`` s for the
+    reply; ``result()`` returns it (raises NakError for a Nak, LinkTimeout when none came);
+    ``close()`` stops listening (also as a context manager). Host monotonic seconds.
+    """
+
+    def __init__(self, link: Link, msg: Message, check_reset: bool = True) -> None:
+        self.link = link
+        self.msg = msg
+        self.check_reset = check_reset
+        self.seq = link._next_seq()
+        self.sends = 0
+        self.sent_at = 0.0  #: host time of the last send, s
+        self._frame = encode(msg, self.seq)
+        self._waiter = _Waiter(expected_reply(msg.TYPE))
+        with link._pending_lock:
+            link._pending[self.seq] = self._waiter
+
+    @property
+    def done(self) -> bool:
+        """True once the reply (or the link's loss) arrived."""
+        return self._waiter.event.is_set()
+
+    @property
+    def reply(self) -> Message | None:
+        return self._waiter.reply
+
+    @property
+    def received_at(self) -> float:
+        return self._waiter.received_at
+
+    def send(self) -> float:
+        """Write the frame (a resend after the first: counted in ``retries``); returns the host
+        time it went out. Raises LinkLost, DeviceReset, StopOnly."""
+        link = self.link
+        link._raise_if_dead(self.check_reset)
+        if self.sends:
+            with link._pending_lock:
+                link._counts["retries"] += 1
+        self.sent_at = link._write(self._frame, self.msg.TYPE)
+        self.sends += 1
+        return self.sent_at
+
+    def wait(self, timeout: float) -> bool:
+        """Wait up to ``timeout`` s for the reply; True when it is there. Raises LinkLost and
+        DeviceReset (checked at least every 0.1 s)."""
+        deadline = time.monotonic() + max(0.0, timeout)
+        while not self._waiter.event.is_set():
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                break
+            self._waiter.event.wait(min(remaining, 0.1))
+            self.link._raise_if_dead(self.check_reset)
+        self.link._raise_if_dead(self.check_reset)
+        return self._waiter.reply is not None
+
+    def result(self) -> Message:
+        """The reply; NakError for a Nak, LinkTimeout when none came (counted)."""
+        self.link._raise_if_dead(self.check_reset)
+        reply = self._waiter.reply
+        if reply is None:
+            with self.link._pending_lock:
+                self.link._counts["timeouts"] += 1
+            n = max(1, self.sends)
+            raise LinkTimeout(f"no reply to {type_name(self.msg.TYPE)} from {self.link.url} "
+                              f"({n} attempt{'s' if n > 1 else ''})")
+        if isinstance(reply, Nak):
+            raise NakError(reply.acked_type, reply.code, reply.detail)
+        return reply
+
+    def close(self) -> None:
+        with self.link._pending_lock:
+            self.link._pending.pop(self.seq, None)
+
+    def __enter__(self) -> PendingRequest:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        self.close()
+
+
 _LOST = object()
+_WAKE = object()  # wakes a reader of the sample queue (a device reset was noticed)
 
 
 class Link:
@@ -348,6 +437,7 @@ class Link:
         self._hb_pings: dict[int, float] = {}  # heartbeat Ping seq -> host time sent, s
         self._pending_lock = threading.Lock()
         self._lost: str | None = None
+        self._stop_only = False
         self._closing = False
         self._last_rx = time.monotonic()
         self._last_unsolicited: int | None = None
@@ -452,15 +542,39 @@ class Link:
         )
         return reply
 
+    def begin(self, msg: Message, check_reset: bool = True) -> PendingRequest:
+        """Register ``msg`` as a request in flight without sending it yet: call ``send()`` on
+        the result (and again to retry, same sequence number), then ``wait``/``result``, and
+        ``close()`` it. For callers that must go on with other work while a reply is due."""
+        return PendingRequest(self, msg, check_reset)
+
     def send(self, msg: Message) -> int:
         """Send ``msg`` without waiting for its reply; returns its sequence number.
 
-        A Nak to it is counted and kept in ``last_nak``. Raises LinkLost, DeviceReset.
+        A Nak to it is counted and kept in ``last_nak``. Raises LinkLost, DeviceReset, StopOnly.
         """
         self._raise_if_dead()
         seq = self._next_seq()
-        self._write(encode(msg, seq))
+        self._write(encode(msg, seq), msg.TYPE)
         return seq
+
+    @property
+    def stop_only(self) -> bool:
+        """True while only Stop frames may go out (see enter_stop_only)."""
+        return self._stop_only
+
+    def enter_stop_only(self) -> None:
+        """From now on write nothing but Stop frames: every other send (the heartbeat's Pings
+        included) is refused with StopOnly, so the host no longer feeds the device watchdog
+        and a device that ignores Stop is zeroed by its own watchdog. Takes effect for every
+        frame not yet started (under the write lock)."""
+        with self._write_lock:
+            self._stop_only = True
+
+    def leave_stop_only(self) -> None:
+        """Allow every frame again (once the device has confirmed zero output)."""
+        with self._write_lock:
+            self._stop_only = False
 
     def ping(self, timeout: float | None = None) -> float:
         """One Ping/Pong round trip; returns the round-trip time, s (also recorded in stats)."""
@@ -496,6 +610,8 @@ class Link:
                 continue
             if item is _LOST:
                 raise LinkLost(self._lost or "link lost")
+            if item is _WAKE:
+                continue  # the reset check at the top of the loop
             return item
 
     def drain_samples(self) -> list[SampleRecord]:
@@ -509,7 +625,8 @@ class Link:
             if item is _LOST:
                 self.samples.put_nowait(_LOST)
                 return out
-            out.append(item)
+            if item is not _WAKE:
+                out.append(item)
 
     def poll_faults(self) -> list[FaultRecord]:
         """All Fault reports received and not yet polled."""
@@ -530,28 +647,41 @@ class Link:
         """
         self._sample_handler = handler
 
-    def stop(self, timeout: float = 1.0) -> bool:
-        """Send Stop until Stopped arrives or ``timeout`` s pass; True when the device reported
-        zero output. Never raises (works after DeviceReset too)."""
+    def stop(self, timeout: float = 1.0, resend: float | None = None,
+             until: Callable[[], bool] | None = None) -> bool:
+        """Send one Stop request, resending the same frame (same sequence number: Stop is
+        idempotent) every ``resend`` s (default: from the measured round-trip time, see
+        `resend_interval`) until Stopped arrives, ``until()`` holds (e.g. a zero-output sample
+        was seen), or ``timeout`` s pass. A reply to any of the sends counts, however late.
+        True when Stopped arrived. Never raises (works after DeviceReset too)."""
         deadline = time.monotonic() + timeout
-        while self._lost is None:
-            remaining = deadline - time.monotonic()
-            if remaining <= 0:
-                return False
-            try:
-                reply, _, _ = self._transact(
-                    Stop(), min(self.reply_timeout, remaining), 0, check_reset=False
-                )
-            except LinkTimeout:
-                continue
-            except LinkError:
-                if self._lost is not None:
+        every = self.resend_interval() if resend is None else resend
+        with self.begin(Stop(), check_reset=False) as req:
+            next_send = 0.0
+            while self._lost is None:
+                now = time.monotonic()
+                if now >= next_send:
+                    with contextlib.suppress(LinkError):
+                        req.send()
+                    next_send = now + every
+                if isinstance(req.reply, Stopped):
+                    return True
+                if until is not None and until():
                     return False
-                time.sleep(min(0.01, max(0.0, deadline - time.monotonic())))
-                continue
-            if isinstance(reply, Stopped):
-                return True
-        return False
+                if now >= deadline:
+                    return False
+                with contextlib.suppress(LinkError):
+                    req.wait(min(0.01, max(0.0, deadline - now), max(0.0, next_send - now)))
+            return isinstance(req.reply, Stopped)
+
+    def resend_interval(self) -> float:
+        """How long to wait for a reply before sending a request again, s: twice the 99th
+        percentile of the measured round-trip times (the reply timeout before any was
+        measured), at least 20 ms and at most the reply timeout when that is longer."""
+        rtts = list(self._rtts)
+        if not rtts:
+            return self.reply_timeout
+        return max(0.02, 2.0 * percentile(rtts, 99))
 
     def start_heartbeat(self) -> None:
         """Start the Ping thread (every ``heartbeat_interval`` s). Idempotent."""
@@ -642,11 +772,14 @@ class Link:
         if check_reset and self.device_reset:
             raise DeviceReset("the device restarted (boot id changed): its state and limits are gone")
 
-    def _write(self, frame: bytes) -> float:
-        """Write one frame under the lock; returns host monotonic time just before writing."""
+    def _write(self, frame: bytes, msg_type: int) -> float:
+        """Write one frame of type ``msg_type`` under the lock; returns host monotonic time
+        just before writing. Raises LinkLost, StopOnly (not a Stop while stop_only)."""
         with self._write_lock:
             if self._lost is not None:
                 raise LinkLost(self._lost)
+            if self._stop_only and msg_type != Stop.TYPE:
+                raise StopOnly(f"{type_name(msg_type)} not sent: a stop is in progress")
             started = time.monotonic()
             try:
                 self._ser.write(frame)
@@ -664,42 +797,13 @@ class Link:
         self, msg: Message, timeout: float, retries: int, check_reset: bool = True
     ) -> tuple[Message, float, float]:
         self._raise_if_dead(check_reset)
-        seq = self._next_seq()
-        waiter = _Waiter(expected_reply(msg.TYPE))
-        with self._pending_lock:
-            self._pending[seq] = waiter
-        frame = encode(msg, seq)
-        sent_at = 0.0
-        try:
-            for attempt in range(retries + 1):
-                if attempt:
-                    with self._pending_lock:
-                        self._counts["retries"] += 1
-                sent_at = self._write(frame)
-                deadline = sent_at + timeout
-                while not waiter.event.is_set():
-                    remaining = deadline - time.monotonic()
-                    if remaining <= 0:
-                        break
-                    waiter.event.wait(min(remaining, 0.1))
-                    self._raise_if_dead(check_reset)
-                if waiter.event.is_set():
+        with self.begin(msg, check_reset) as req:
+            for _ in range(retries + 1):
+                req.send()
+                if req.wait(timeout):
                     break
-        finally:
-            with self._pending_lock:
-                self._pending.pop(seq, None)
-        self._raise_if_dead(check_reset)
-        reply = waiter.reply
-        if reply is None:
-            with self._pending_lock:
-                self._counts["timeouts"] += 1
-            raise LinkTimeout(
-                f"no reply to {type_name(msg.TYPE)} from {self.url} "
-                f"({retries + 1} attempt{'s' if retries else ''} of {timeout:g} s)"
-            )
-        if isinstance(reply, Nak):
-            raise NakError(reply.acked_type, reply.code, reply.detail)
-        return reply, sent_at, waiter.received_at
+            reply = req.result()
+        return reply, req.sent_at, req.received_at
 
     def _set_lost(self, reason: str) -> None:
         if self._lost is None:
@@ -808,12 +912,17 @@ class Link:
     def _note_pong(self, pong: Pong) -> None:
         self.last_pong = pong
         if self._boot_id is not None and pong.boot_id != self._boot_id:
+            first = not self.device_reset
             self.device_reset = True
+            if first:  # a caller waiting for samples (none come after a reset) hears it now
+                with contextlib.suppress(queue.Full):
+                    self.samples.put_nowait(_WAKE)
 
     def _heartbeat_loop(self) -> None:
         """Send a Ping every heartbeat_interval s on a fixed schedule, never waiting for the
         Pong (a lost reply must not delay the next Ping: it feeds the device watchdog). Pongs
-        are matched in the reader thread (``_hb_pings``); unanswered ones count as timeouts."""
+        are matched in the reader thread (``_hb_pings``), late ones too; a Ping unanswered
+        after HB_PONG_WAIT counts as a timeout. While stop_only, no Ping goes out."""
         nonce = 0
         next_at = time.monotonic()
         while True:
@@ -833,17 +942,25 @@ class Link:
                 )
                 return
             with self._pending_lock:
-                stale = [q for q, t in self._hb_pings.items() if now - t > self.reply_timeout]
+                # a late Pong still measures the round trip (a slow link is not a dead one):
+                # a Ping counts as unanswered only after HB_PONG_WAIT
+                stale = [q for q, t in self._hb_pings.items() if now - t > HB_PONG_WAIT]
                 for q in stale:
                     del self._hb_pings[q]
                 self._counts["timeouts"] += len(stale)
+            if self._stop_only:
+                continue  # only Stop frames go out now: the device watchdog is left to run
             nonce = (nonce + 1) & (_WRAP - 1)
             seq = self._next_seq()
             frame = encode(Ping(nonce, int(now * 1e6) & (_WRAP - 1)), seq)
             with self._pending_lock:
                 self._hb_pings[seq] = now
             try:
-                sent_at = self._write(frame)
+                sent_at = self._write(frame, Ping.TYPE)
+            except StopOnly:
+                with self._pending_lock:
+                    self._hb_pings.pop(seq, None)
+                continue
             except LinkError:
                 return
             with self._pending_lock:

@@ -21,7 +21,7 @@ import pytest
 import serial
 
 from autotune.cli import main
-from autotune.errors import EXIT_LINK, EXIT_USAGE
+from autotune.errors import EXIT_LINK, EXIT_USAGE, UserError
 from autotune.recorder import read_session
 from protocol.link import classify_open_error
 from tests.integration.conftest import start_mock_device
@@ -247,3 +247,203 @@ def test_tcp_listener_binds_loopback_by_default(where: str) -> None:
         for s in (proc.stdout, proc.stderr):
             if s is not None:
                 s.close()
+
+
+# ------------------------------------------------------------------ issue 18: found before motion
+def assert_nothing_connected(out: str, out_dir: Path) -> None:
+    assert "connected to" not in out
+    assert not (out_dir / "session.jsonl").exists()
+
+
+@pytest.mark.parametrize("body, key, problem", [
+    (None, None, "not UTF-8"),  # a binary file
+    ("[safety]\npv_window = 1e308\n", "safety.pv_window", "wire format"),
+    ("[safety]\noutput_limit = 1e39\n", "safety.output_limit", "wire format"),
+    (f"[connection]\nbaudrate = {2**63 - 1}\n", "connection.baudrate", "out of range"),
+    ("[connection]\nbaudrate = 50000000\n", "connection.baudrate", "bit/s"),
+    ("[relay]\nmax_cycles = 9999999999\n", "relay.max_cycles", "out of range"),
+    ("[safety]\npv_window = " + "[" * 5000 + "]" * 5000 + "\n", None, "TOML"),
+])
+def test_config_out_of_range_or_binary_exit_2_before_connecting(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], body: str | None, key: str | None,
+        problem: str) -> None:
+    cfg = tmp_path / "bad.toml"
+    if body is None:
+        cfg.write_bytes(bytes(range(256)) * 8)
+    else:
+        cfg.write_text(body)
+    out_dir = tmp_path / "out"
+    code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--config", str(cfg),
+                             "--out", str(out_dir))
+    assert code == EXIT_USAGE
+    line = one_line_error(err)
+    assert str(cfg) in line and problem in line
+    if key is not None:
+        assert key in line
+    assert_nothing_connected(out, out_dir)
+
+
+def test_out_not_a_directory_or_not_writable_exit_2_before_connecting(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    afile = tmp_path / "afile"
+    afile.write_text("x")
+    for out_dir, problem in ((afile, "not a directory"), (afile / "sub", "not writable")):
+        code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--out",
+                                 str(out_dir))
+        assert code == EXIT_USAGE
+        line = one_line_error(err)
+        assert str(out_dir) in line and problem in line
+        assert "connected to" not in out
+    # a session file that is a symbolic link is not written through
+    target = tmp_path / "elsewhere.txt"
+    target.write_text("keep me")
+    d = tmp_path / "linked"
+    d.mkdir()
+    (d / "session.jsonl").symlink_to(target)
+    code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--out", str(d))
+    assert code == EXIT_USAGE
+    assert "symbolic link" in one_line_error(err) and "connected to" not in out
+    assert target.read_text() == "keep me" and (d / "session.jsonl").is_symlink()
+
+
+def test_out_on_a_read_only_filesystem_exit_2(tmp_path: Path,
+                                              capsys: pytest.CaptureFixture[str]) -> None:
+    """A read-only mount (a small tmpfs; root may write anywhere else)."""
+    mnt = tmp_path / "ro"
+    mnt.mkdir()
+    if subprocess.run(["mount", "-t", "tmpfs", "-o", "ro,size=64k", "tmpfs", str(mnt)],
+                      capture_output=True).returncode != 0:
+        pytest.skip("cannot mount a tmpfs here")
+    try:
+        code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--out",
+                                 str(mnt / "run"))
+    finally:
+        subprocess.run(["umount", str(mnt)], capture_output=True)
+    assert code == EXIT_USAGE
+    line = one_line_error(err)
+    assert "not writable" in line and "read-only" in line
+    assert "connected to" not in out
+
+
+def session_with(tmp_path: Path, name: str, samples: list[str]) -> Path:
+    header = json.dumps({"type": "header", "format": "autotune-session", "version": 1,
+                         "config": {}})
+    p = tmp_path / name
+    p.write_text("\n".join([header, *samples, json.dumps({"type": "end", "reason": "x"})])
+                 + "\n")
+    return p
+
+
+def sample_line(t: object, pv: object = 0.0, out: float = 1.0) -> str:
+    return f'{{"type":"sample","t":{t},"pv":{pv},"out":{out},"sp":0.0,"phase":"relay"}}'
+
+
+@pytest.mark.parametrize("name, lines, problem", [
+    ("nested.jsonl", [sample_line(0.0), "[" * 100000 + "]" * 100000], "nested too deeply"),
+    ("equal.jsonl", [sample_line(0.5) for _ in range(20)], "does not increase"),
+    ("reversed.jsonl", [sample_line(round(1.0 - 0.01 * k, 2)) for k in range(50)],
+     "does not increase"),
+    ("huge.jsonl", [sample_line(0.01 * k, 1e308) for k in range(20)], "not a value"),
+    ("inf.jsonl", [sample_line(0.01 * k, "1e999") for k in range(20)], "not a value"),
+    ("nan_t.jsonl", [sample_line("null")], "not a number"),
+])
+def test_analyze_refuses_unusable_sessions(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                           name: str, lines: list[str], problem: str) -> None:
+    p = session_with(tmp_path, name, lines)
+    code, _, err = run_cli(capsys, "analyze", str(p))
+    assert code == EXIT_USAGE
+    line = one_line_error(err)
+    assert str(p) in line and problem in line
+    assert not (tmp_path / "result.json").exists()
+
+
+def test_analyze_refuses_to_write_over_a_device_or_a_link(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """result.json goes only over a regular file or a new path: /dev/null and a symbolic link
+    are left as they are."""
+    from autotune.recorder import write_result
+
+    with pytest.raises(UserError, match="a device, not a regular file"):
+        write_result("/dev/null", {"x": 1})
+    assert Path("/dev/null").is_char_device()
+    target = tmp_path / "target.json"
+    target.write_text("{}")
+    link = tmp_path / "result.json"
+    link.symlink_to(target)
+    with pytest.raises(UserError, match="symbolic link"):
+        write_result(link, {"x": 1})
+    assert link.is_symlink() and target.read_text() == "{}"
+    fifo = tmp_path / "fifo"
+    os.mkfifo(fifo)
+    with pytest.raises(UserError, match="pipe"):
+        write_result(fifo, {"x": 1})
+    plain = tmp_path / "plain.json"
+    plain.write_text("old")
+    write_result(plain, {"x": 1})
+    assert json.loads(plain.read_text()) == {"x": 1}
+    assert sorted(q.name for q in tmp_path.iterdir()) == ["fifo", "plain.json", "result.json",
+                                                           "target.json"]  # no temp left
+
+
+def result_file(tmp_path: Path, proposals: object, **extra: object) -> Path:
+    p = tmp_path / "result.json"
+    p.write_text(json.dumps({"proposals": proposals, "ultimate_gain": 50.0,
+                             "ultimate_period": 0.4, **extra}))
+    return p
+
+
+@pytest.mark.parametrize("proposals, problem", [
+    ([1, 2], "proposal 1 is not an object"),
+    ([{"kp": 1.0}], "no usable name"),
+    ([{"name": "a", "kp": "big"}], "kp must be a finite number"),
+    ([{"name": "a", "kp": 1.0, "ki": None}], "ki must be a finite number"),
+    ([{"name": "a", "kp": 1e308}], "too large for the wire format"),
+    ([{"name": "a", "kp": -3.0}], "negative"),
+    ([{"name": "a", "kp": 10.0, "ki": -1.0}], "negative"),
+    ([{"name": "a", "kp": 400.0}], "beyond any published tuning rule"),
+    ([{"name": "a", "kp": 10.0, "kd": 100.0}], "beyond any published tuning rule"),
+    ([{"name": "a", "kp": 10.0, "setpoint_weight": 3.0}], "setpoint_weight"),
+    ([{"name": "a", "kp": 10.0, "predicted": [1]}], "predicted is not an object"),
+    ([], "has no proposals"),
+    ({"a": 1}, "has no proposals"),
+])
+def test_step_refuses_bad_proposals_before_connecting(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], proposals: object,
+        problem: str) -> None:
+    res = result_file(tmp_path, proposals)
+    out_dir = tmp_path / "out"
+    code, out, err = run_cli(capsys, "step", "--port", "sim", "--yes", "--from-result",
+                             str(res), "--out", str(out_dir))
+    assert code == EXIT_USAGE, err
+    line = one_line_error(err)
+    assert str(res) in line and problem in line
+    assert_nothing_connected(out, out_dir)
+
+
+def test_step_refuses_negative_manual_gains_unless_forced(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from autotune.recorder import check_gains, read_proposals
+
+    code, out, err = run_cli(capsys, "step", "--port", "sim", "--yes", "--kp", "-2",
+                             "--out", str(tmp_path / "o"))
+    assert code == EXIT_USAGE and "negative" in one_line_error(err)
+    assert "--force" in one_line_error(err)
+    assert_nothing_connected(out, tmp_path / "o")
+    # --force lets a negative or oversized gain through the one validating reader
+    assert check_gains(-2.0, 0.0, 0.0, where="x", force=True) == (-2.0, 0.0, 0.0)
+    res = result_file(tmp_path, [{"name": "wild", "kp": 400.0}])
+    assert read_proposals(res, force=True).pick(None)["kp"] == 400.0
+    with pytest.raises(UserError, match="too large"):
+        check_gains(1e39, 0.0, 0.0, where="x", force=True)  # never: the wire cannot carry it
+
+
+def test_bad_plant_file_is_exit_2_not_a_link_error(tmp_path: Path,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    plant = tmp_path / "huge.toml"
+    plant.write_text("[plant]\nnum = [1e308]\nden = [1.0, 1.0]\n")
+    code, out, err = run_cli(capsys, "tune", "--port", "sim", "--plant", str(plant), "--yes",
+                             "--out", str(tmp_path / "o"))
+    assert code == EXIT_USAGE
+    line = one_line_error(err)
+    assert "simulated board did not start" in line and "[plant] num" in line
+    assert "out of range" in line

@@ -120,7 +120,7 @@ def test_given_gains_judged_on_a_session(sessions, tmp_path, capsys) -> None:
     res = json.loads(single.read_text())
     rp = next(p for p in res["proposals"] if p["name"] == "robust-pid")
     g = PidGains(rp["kp"], rp["ki"], rp["kd"])
-    gains = write_gains_file(tmp_path / "gains.toml",
+    gains, _ = write_gains_file(tmp_path / "gains.toml",
                              GainsRecord(g, TS, output_limit=30.0,
                                          setpoint_weight=rp["setpoint_weight"]))
     capsys.readouterr()
@@ -145,7 +145,7 @@ def test_given_gains_judged_on_a_session(sessions, tmp_path, capsys) -> None:
     ms = json.loads(judged.read_text())["gains"]["predicted"]["ms"]
     assert ms > 1.45
     assert ms == pytest.approx(sampled_ms(m["num"], m["den"], m["delay"], g, TS), rel=0.02)
-    other = write_gains_file(tmp_path / "axis1.toml", GainsRecord(g, TS, axis=1))
+    other, _ = write_gains_file(tmp_path / "axis1.toml", GainsRecord(g, TS, axis=1))
     assert main(["analyze", str(sessions["empty"]), "--gains", str(other)]) == 2
     assert "holds gains for axis 1, but empty is axis 0" in capsys.readouterr().err
     bad = tmp_path / "bad.toml"

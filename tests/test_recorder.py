@@ -176,3 +176,73 @@ def test_result_and_csv(tmp_path: Path) -> None:
     assert len(rows) == 21
     assert float(rows[3][1]) == pytest.approx(math.sin(2 / 5), abs=1e-15)
     assert rows[3][4] == "relay"
+
+
+def test_extra_keys_that_come_and_go_stay_aligned(tmp_path: Path) -> None:
+    """A key that first appears late, one that stops, one on every other sample: each column
+    is as long as the samples, None/NaN where a sample had no value (read in one pass)."""
+    p = tmp_path / "s.jsonl"
+    with SessionWriter(p, {}) as w:
+        for k in range(30):
+            extra = {"phase": "rest" if k < 10 else "relay"}
+            if k >= 20:
+                extra["state"] = 1
+            if k < 5:
+                extra["early"] = k
+            if k % 2:
+                extra["odd"] = "x"
+            w.sample(0.01 * k, float(k), 0.0, 0.0, **extra)
+        w.end("x")
+    s = read_session(p)
+    assert {k: v.size for k, v in s.extra.items()} == dict.fromkeys(
+        ("phase", "early", "odd", "state"), 30)
+    assert np.isnan(s.extra["state"][:20]).all() and (s.extra["state"][20:] == 1).all()
+    assert list(s.extra["early"][:5]) == [0, 1, 2, 3, 4] and np.isnan(s.extra["early"][5:]).all()
+    assert list(s.extra["odd"][:4]) == [None, "x", None, "x"]
+    relay = read_session(p, phases={"relay"})  # only the samples kept are held
+    assert relay.t.size == 20 and set(relay.extra["phase"]) == {"relay"}
+    np.testing.assert_array_equal(relay.pv, np.arange(10, 30, dtype=float))
+    assert "early" not in relay.extra  # only on samples that were not kept
+
+
+def test_refused_sample_contents(tmp_path: Path) -> None:
+    head = b'{"type":"header","format":"autotune-session","version":1}\n'
+    cases = [
+        (b'{"type":"sample","t":0.1,"pv":0,"out":0,"sp":0}\n'
+         b'{"type":"sample","t":0.1,"pv":0,"out":0,"sp":0}\n', "line 3: sample time = 0.1 s"),
+        (b'{"type":"sample","t":1e999,"pv":0,"out":0,"sp":0}\n', "not a value a device"),
+        (b'{"type":"sample","t":0,"pv":0,"out":1e300,"sp":0}\n', r"out = 1e\+300"),
+        (b'{"type":"sample","t":0,"pv":0,"out":0,"sp":0,"x":' + b"[" * 50000 + b"]" * 50000
+         + b"}\n", "nested too deeply"),
+        (b"".join(b'{"type":"sample","t":%d,"pv":0,"out":0,"sp":0,"k%d":1}\n' % (k, k)
+                  for k in range(300)), "more than 256 different sample keys"),
+    ]
+    for body, words in cases:
+        p = tmp_path / "bad.jsonl"
+        p.write_bytes(head + body)
+        with pytest.raises(SessionFileError, match=words):
+            read_session(p)
+
+
+def test_writer_keeps_its_first_failure_and_never_raises(tmp_path: Path) -> None:
+    """A write that fails (here: the file closed under it, as a full disk fails a flush)
+    leaves `error` set, calls on_error once, and drops everything after it."""
+    p = tmp_path / "s.jsonl"
+    seen: list[str] = []
+    w = SessionWriter(p, {}, on_error=seen.append)
+    w.sample(0.0, 0.0, 0.0, 0.0)
+    w._f.close()  # every later write fails
+    w.event(0.1, "x")
+    w.sample(0.2, 0.0, 0.0, 0.0)
+    w.close()
+    assert w.error is not None and len(seen) == 1
+    assert read_session(p).t.size == 1  # what was written before the failure is there
+
+
+def test_writer_refuses_to_write_through_a_link(tmp_path: Path) -> None:
+    target = tmp_path / "target"
+    target.write_text("keep")
+    (tmp_path / "session.jsonl").symlink_to(target)
+    with pytest.raises(UserError, match="symbolic link"):
+        SessionWriter(tmp_path / "session.jsonl", {})
+    assert target.read_text() == "keep"

@@ -124,15 +124,17 @@ def session_inputs(session: Any) -> dict[str, Any]:
 
 def run(args: argparse.Namespace) -> int:
     from autotune.core import analysis
-    from autotune.recorder import read_session, write_result
+    from autotune.recorder import check_target, read_session, write_result
 
     if len(args.session) > 1 or args.gains:
         from autotune.commands.sessions import run_several
 
         return run_several(args)
     args.session = args.session[0]
-
-    session = read_session(args.session)
+    if args.json:
+        check_target(args.json)  # before the work: only a regular file or a new path
+    # only the phases the analysis reads are kept in memory (the rest is streamed past)
+    session = read_session(args.session, phases=("relay", "precheck:rest"))
     inp = session_inputs(session)
     if inp["t"].size < 10:
         raise UserError(f"{args.session}: no relay samples to analyse")

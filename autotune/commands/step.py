@@ -10,8 +10,8 @@ another proposal, repeat, or quit.
 from __future__ import annotations
 
 import argparse
-import math
 import sys
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -27,8 +27,8 @@ from autotune.commands.options import (
 from autotune.config import DesignConfig, SpecConfig, StepConfig, load_config, with_overrides
 from autotune.core.pid import PidGains
 from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
-from autotune.job.requests import BoardRequest, GainsChoice, JobRequest, pick_proposal
-from autotune.recorder import read_result
+from autotune.job.requests import BoardRequest, GainsChoice, JobRequest
+from autotune.recorder import check_gains, check_target, read_proposals
 from autotune.ui.app import run_job
 
 HELP = "try PID gains on the loop with one setpoint step and judge the response (powers the motor)"
@@ -125,50 +125,47 @@ def _overrides(args: argparse.Namespace) -> dict[str, object]:
 def choose_gains(args: argparse.Namespace, filter_n: float
                  ) -> tuple[GainsChoice, tuple[dict[str, Any], ...], dict[str, Any] | None]:
     """The gains to try (from --kp/--ki/--kd and/or --from-result/--proposal), the proposals
-    of the result and its model."""
+    of the result and its model; every gain checked before anything is connected
+    (autotune.recorder.check_gains: finite, and unless --force not negative nor far beyond
+    every published rule for the result's Ku and Tu)."""
     if args.from_result is None and args.kp is None:
         raise UserError("no gains given: use --kp (and --ki, --kd) or --from-result FILE",
                         exit_code=EXIT_USAGE)
     if args.proposal is not None and args.from_result is None:
         raise UserError("--proposal needs --from-result FILE", exit_code=EXIT_USAGE)
+    force = bool(args.force)
     pool: tuple[dict[str, Any], ...] = ()
     model = None
+    ku = tu = None
     if args.from_result is not None:
-        res = read_result(args.from_result)
-        pool = tuple(p for p in res.get("proposals") or () if isinstance(p, dict))
-        prop = pick_proposal(pool, args.proposal, args.from_result)
-        model = res.get("model") if isinstance(res.get("model"), dict) else None
-        choice = GainsChoice.of_proposal(prop, filter_n)
+        props = read_proposals(args.from_result, force=force)  # validated before any motion
+        pool, model = tuple(props.proposals), props.model
+        ku, tu = props.ultimate_gain, props.ultimate_period
+        choice = GainsChoice.of_proposal(props.pick(args.proposal), filter_n)
     else:
         choice = GainsChoice("manual", PidGains(args.kp, args.ki or 0.0, args.kd or 0.0),
                              deriv_filter_n=filter_n)
     given = (args.kp, args.ki, args.kd)
+    g = choice.gains
     if args.from_result is not None and given != (None, None, None):
-        g = choice.gains
         new = PidGains(*(v if v is not None else old
                          for v, old in zip(given, (g.kp, g.ki, g.kd), strict=True)))
         if new != g:
-            choice = GainsChoice(f"{choice.name} (edited)", new,
-                                 setpoint_weight=choice.setpoint_weight,
-                                 deriv_filter_n=choice.deriv_filter_n,
-                                 tracking_time=choice.tracking_time)
+            choice = replace(choice, name=f"{choice.name} (edited)", gains=new, predicted={},
+                             runnable=True, why_not="", default=False, violations=())
     g = choice.gains
-    for what, v in (("kp", g.kp), ("ki", g.ki), ("kd", g.kd)):
-        if not math.isfinite(v):
-            raise UserError(f"--{what} must be a finite number", exit_code=EXIT_USAGE)
+    kp, ki, kd = check_gains(g.kp, g.ki, g.kd, where=args.from_result or "--kp/--ki/--kd",
+                             ultimate_gain=ku, ultimate_period=tu, force=force)
+    choice = replace(choice, gains=PidGains(kp, ki, kd))
     if args.setpoint_weight is not None:
         if not 0.0 <= args.setpoint_weight <= 1.0:
             raise UserError(f"--setpoint-weight must lie between 0 and 1, got "
                             f"{args.setpoint_weight:g}", exit_code=EXIT_USAGE)
-        choice = GainsChoice(choice.name, g, choice.predicted, float(args.setpoint_weight),
-                             choice.deriv_filter_n, choice.tracking_time, choice.runnable,
-                             choice.why_not, choice.default, choice.violations)
+        choice = replace(choice, setpoint_weight=float(args.setpoint_weight))
     if args.tracking_time is not None:
         if not args.tracking_time > 0:
             raise UserError("--tracking-time must be > 0 s", exit_code=EXIT_USAGE)
-        choice = GainsChoice(choice.name, g, choice.predicted, choice.setpoint_weight,
-                             choice.deriv_filter_n, float(args.tracking_time), choice.runnable,
-                             choice.why_not, choice.default, choice.violations)
+        choice = replace(choice, tracking_time=float(args.tracking_time))
     return choice, pool, model
 
 
@@ -176,6 +173,8 @@ def run(args: argparse.Namespace) -> int:
     cfg = with_overrides(load_config(args.config), _overrides(args))
     board = BoardRequest.of(cfg, args.faults, args.seed)
     choice, pool, model = choose_gains(args, cfg.step.deriv_filter_n)
+    if args.gains_file:
+        check_target(args.gains_file)  # before any motion: only a regular file or a new path
     out = Path(args.out) if args.out else default_out_dir("step")
     req = JobRequest(cfg=cfg, board=board, out_dir=out, verb="step", yes=args.yes,
                      force=args.force, relay=False, gains=choice, proposals=pool, model=model,

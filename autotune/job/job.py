@@ -22,9 +22,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import math
-import signal
 import sys
-import threading
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
@@ -61,6 +59,7 @@ from autotune.errors import (
     UserError,
 )
 from autotune.gainsfile import code_block, record_from_outcome, write_gains_file
+from autotune.job import signals
 from autotune.job.operator import (
     Decision,
     GainsMenu,
@@ -75,11 +74,18 @@ from autotune.job.powered import PoweredRun, RunEnded, RunOptions
 from autotune.job.requests import BoardRequest, GainsChoice, JobRequest
 from autotune.job.step import StepEnded, run_step
 from autotune.job.tune import TuneRun, choose_loop
-from autotune.recorder import export_csv, read_session, write_result
+from autotune.recorder import (
+    check_out_dir,
+    check_target,
+    export_csv,
+    read_session,
+    write_result,
+)
 from protocol.budget import check_loop_budget
 from protocol.messages import StoreGains
 
 HOLD_SWITCH_INTERVAL = 0.0005  # s, interpreter switch interval while computing under power
+HOLD_RESULT_WAIT = 30.0  # s of wall clock an analysis cut short by a stop may still take
 
 RECOVERABLE = ("aborted", "limit:", "fault:pv_window", "fault:pv_rate", "fault:output_limit")
 """End reasons of a step after which the operator may go on (the motor confirmed stopped)."""
@@ -188,10 +194,13 @@ class TuningJob:
     # ================================================================== entry point
     def run(self) -> JobOutcome:
         req = self.req
-        prepare_out_dir(req.out_dir)
+        # before anything is asked or connected: where the files go can take them
+        check_out_dir(req.out_dir, ("session.jsonl", "result.json", "gains.toml", "gains.h"))
+        check_target(req.gains_path)
         opts = RunOptions(port=req.board.port, yes=req.yes, out_dir=req.out_dir,
                           plant=req.board.plant, speed=req.board.speed, faults=req.board.faults,
-                          seed=req.board.seed, verb=req.verb, keys=False, cautions_shown=True)
+                          seed=req.board.seed, verb=req.verb, keys=False, cautions_shown=True,
+                          confirm=self._confirm_start, alarm=self.op.alarm)
         header: dict[str, Any] = {"job": {"verb": req.verb, "relay": req.relay,
                                           "confirm_step": req.confirm_step}}
         if req.gains is not None:
@@ -199,7 +208,7 @@ class TuningJob:
             header["step_request"] = {"proposal": req.gains.name, "kp": g.kp, "ki": g.ki,
                                       "kd": g.kd, "source": str(req.result_source or "")}
         run = PoweredRun(self.cfg, opts, header_extra=header, on_update=self.op.update,
-                         say=self.op.say, confirm=self._confirm_start)
+                         say=self.op.say)
         self.run_ = run
         try:
             try:
@@ -225,7 +234,7 @@ class TuningJob:
                           list(self.steps), self.stages, list(self.files))
 
     # ================================================================== connect + start
-    def _confirm_start(self, info: Any) -> None:
+    def _confirm_start(self, info: Any) -> bool:
         """After the handshake, before anything is powered: the start screen, then --yes or the
         operator's deliberate confirmation."""
         start = self._start_info(info)
@@ -237,13 +246,12 @@ class TuningJob:
         self.op.say(budget)
         if self.req.yes:
             self.op.say("--yes given: going ahead without asking.")
-            return
+            return True
         if not self.op.can_ask:
             raise UserError("refusing to power the motor without confirmation: stdin is not a "
                             "terminal; run it from a terminal, or pass --yes once the cautions "
                             "above are met", exit_code=EXIT_USAGE)
-        if not self.op.confirm_power(start.action):
-            raise UserError("not confirmed; nothing was powered", exit_code=EXIT_ABORTED)
+        return self.op.confirm_power(start.action)
 
     def _start_info(self, info: Any) -> StartInfo:
         cfg, req = self.cfg, self.req
@@ -365,13 +373,19 @@ class TuningJob:
         # interval hands it to the sample loop and the heartbeat within a millisecond
         old = sys.getswitchinterval()
         sys.setswitchinterval(min(old, HOLD_SWITCH_INTERVAL))
+        pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="analysis")
+        fut = pool.submit(work)
         try:
-            with ThreadPoolExecutor(max_workers=1, thread_name_prefix="analysis") as pool:
-                fut = pool.submit(work)
-                while not fut.done():
-                    run.next_sample()
-                return fut.result()
+            while not fut.done():
+                run.next_sample()
+            return fut.result()
+        except RunEnded:
+            # the stop went out at once (request_stop); keep what is being computed
+            with contextlib.suppress(Exception):
+                self.result = fut.result(timeout=HOLD_RESULT_WAIT)
+            raise
         finally:
+            pool.shutdown(wait=False)
             sys.setswitchinterval(old)
 
     # ------------------------------------------------------------------ choosing gains
@@ -747,25 +761,13 @@ class TuningJob:
     @contextlib.contextmanager
     def _waiting(self) -> Iterator[None]:
         """While the operator is asked (nothing powered): abort keys answer the question
-        instead of stopping a run, and SIGTERM ends the job like Ctrl-C."""
+        instead of stopping a run, the samples go on being recorded, and a signal ends the
+        job at once (exit 3, what was measured kept) instead of waiting for an answer."""
         self.op.watch_abort(None)
         run = self.run_
         idle = run.idle() if run is not None and not run.armed else contextlib.nullcontext()
-        old = None
-        main = threading.current_thread() is threading.main_thread()
-        if main:
-            def interrupt(signum: int, frame: Any) -> None:
-                raise KeyboardInterrupt
-
-            with contextlib.suppress(ValueError, OSError):
-                old = signal.signal(signal.SIGTERM, interrupt)
-        try:
-            with idle:
-                yield
-        finally:
-            if old is not None:
-                with contextlib.suppress(ValueError, OSError):
-                    signal.signal(signal.SIGTERM, old)
+        with signals.diverted(_interrupt), idle:
+            yield
 
     def _settle(self, run: PoweredRun) -> None:
         """The job's exit code and reason from how the powered run ended."""
@@ -831,15 +833,9 @@ class TuningJob:
             last_step=self.reports[-1] if self.reports else None, notes=tuple(self.notes)))
 
 
-def prepare_out_dir(path: Path) -> None:
-    """Make the output directory before anything is opened; a clear error when it cannot be."""
-    try:
-        path.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise UserError(f"--out {path}: cannot create the directory: {exc.strerror}",
-                        exit_code=EXIT_USAGE) from None
-    if not path.is_dir():
-        raise UserError(f"--out {path}: not a directory", exit_code=EXIT_USAGE)
+def _interrupt(name: str) -> bool:
+    """A signal while the operator is asked: the job ends (autotune.job.signals)."""
+    raise signals.Interrupted(name)
 
 
 def tune_request(cfg: Any, options: RunOptions) -> JobRequest:

@@ -10,7 +10,7 @@ per second, kd in seconds).
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -157,18 +157,3 @@ class JobRequest:
         if self.confirm_step:
             out += [("proposals", None), ("step", None)]
         return tuple(out)
-
-
-def pick_proposal(proposals: Sequence[Mapping[str, Any]], name: str | None,
-                  source: str) -> Mapping[str, Any]:
-    """The proposal `name` (None: the default one, else the first) of a result's proposals."""
-    if not proposals:
-        raise UserError(f"{source}: has no proposals", exit_code=EXIT_USAGE)
-    if name is None:
-        return next((p for p in proposals if p.get("default")), proposals[0])
-    for p in proposals:
-        if p.get("name") == name:
-            return p
-    names = ", ".join(str(p.get("name")) for p in proposals)
-    raise UserError(f"{source}: no proposal named {name!r} (there are: {names})",
-                    exit_code=EXIT_USAGE)

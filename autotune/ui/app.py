@@ -38,6 +38,7 @@ from autotune.job.operator import (
 from autotune.job.requests import JobRequest
 from autotune.keys import AbortKeys
 from autotune.ui import plain, screens
+from autotune.ui.operator import red_alarm
 from autotune.ui.screens import ROW_KEYS
 from autotune.ui.tracker import LiveTracker
 from autotune.ui.views import (
@@ -281,6 +282,7 @@ class TerminalOperator:
         self.tracker = LiveTracker()
         self.tag = "connect"  # the stage the next plain line belongs to
         self._on_start = False
+        self.alarms: list[str] = []  # said again once the full screen is closed
 
     @property
     def can_ask(self) -> bool:
@@ -324,8 +326,11 @@ class TerminalOperator:
 
     def alarm(self, text: str) -> None:
         self.log.append(text)
+        self.alarms.append(text)
         self.tracker.said(f"ALARM: {text}")
         self.term.line(plain.tagged("ALARM", text))
+        if self.term.live is None:
+            red_alarm(text)  # on stderr too, red on a terminal
 
     def watch_abort(self, stop: Callable[[str], None] | None) -> None:
         self.term.on_abort = stop
@@ -534,6 +539,9 @@ def run_job(request: JobRequest, console: Console | None = None, stdin: Any = No
             term.console.print(screens.finish_screen(view, term.size()[0]))
         else:
             term.lines(plain.finish_lines(view))
+    if term.rich:
+        for text in op.alarms:  # the full screen is gone: the alarm must stay in view
+            red_alarm(text)
     return outcome
 
 

@@ -14,10 +14,23 @@ How the figures are read (device ticks of the cart-wheel board, 10 ms):
   detect     the host's stop request (its device time is the sample it decided on), or the
              device's Fault report for the host-silent row.
   zero       the first sample showing zero applied output (from the stop path's record).
+The host's own failures (issue 18), read from the stop request on (device ticks):
+  full disk       the session file hits a file-size limit (RLIMIT_FSIZE) during the relay: the
+                  stop sequence still runs whole; zero output from the request.
+  0.3 s latency   every frame from the board 0.3 s late (wall): Stop resent with one sequence
+                  number, the late Stopped reply counts; no alarm.
+  ignored Stop    the board ignores Stop: from the request on the host sends only Stop frames
+                  (which do not feed the watchdog), so the board's watchdog zeroes the output;
+                  goal: at most one watchdog period after the request.
+  during a retry  the checks decide while the runner waits for a reply: "age" is how far the
+                  sample decided on lags the newest sample the host had (goal: at most one tick).
 """
 
 from __future__ import annotations
 
+import contextlib
+import resource
+import signal
 import sys
 import time
 from pathlib import Path
@@ -30,6 +43,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from autotune.config import config_from_dict  # noqa: E402
+from autotune.errors import UserError  # noqa: E402
 from autotune.job.job import Quiet, TuningJob, tune_request  # noqa: E402
 from autotune.job.powered import PoweredRun, RunOptions  # noqa: E402
 from autotune.job.tune import TuneRun  # noqa: E402
@@ -44,7 +58,7 @@ def ticks(dt: float | None) -> str:
 
 def run(faults: str, cfg: dict[str, Any], speed: float, tmp: Path, name: str
         ) -> tuple[Any, TuneRun, Any, dict[str, float]]:
-    base = {"safety": {"watchdog": 10.0}}
+    base: dict[str, Any] = {"safety": {"watchdog": 10.0}}
     for k, v in cfg.items():
         base.setdefault(k, {}).update(v)
     config = config_from_dict(base, f"{name}.toml")
@@ -65,9 +79,97 @@ def run(faults: str, cfg: dict[str, Any], speed: float, tmp: Path, name: str
         outcome = job.run()
     finally:
         PoweredRun.request_stop = orig  # type: ignore[method-assign]
-    s = read_session(outcome.session_path) if outcome.session_path else None
-    assert job.stages is not None
+    s = None
+    if outcome.session_path:
+        with contextlib.suppress(Exception):
+            s = read_session(outcome.session_path)
     return outcome, job.stages, s, marks
+
+
+@contextlib.contextmanager
+def file_size_limit(nbytes: int) -> Any:
+    """Writes beyond `nbytes` fail with EFBIG (a full disk) while the block runs."""
+    soft, hard = resource.getrlimit(resource.RLIMIT_FSIZE)
+    old = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    resource.setrlimit(resource.RLIMIT_FSIZE, (nbytes, hard))
+    try:
+        yield
+    finally:
+        resource.setrlimit(resource.RLIMIT_FSIZE, (soft, hard))
+        signal.signal(signal.SIGXFSZ, old)
+
+
+def stop_figures(tr: TuneRun) -> tuple[float | None, Any]:
+    """(device time of the stop request, the StopOutcome) from the runner itself (the file
+    may not hold them)."""
+    req = tr.run._stop_req if tr.run is not None else None
+    return (None if req is None else req.t), (tr.run.outcome.stop if tr.run else None)
+
+
+def host_rows(speed: float, tmp: Path) -> list[tuple[str, str, str, str, str]]:
+    """The rows of the host's own failures (issue 18)."""
+    rows = []
+    # full disk: 48 kB for the session file (filled during the relay)
+    with file_size_limit(48 * 1024):
+        o, tr, s, m = run("", {"connection": {"loop": "device"},
+                               "relay": {"max_cycles": 60, "min_cycles": 55}},
+                          speed, tmp, "full-disk")
+    t_req, stop = stop_figures(tr)
+    zero = None if stop is None or stop.t_zero is None or t_req is None else stop.t_zero - t_req
+    rows.append(("full disk (session file at 48 kB)", "at the failed write",
+                 ticks(zero) + (" (confirmed)" if stop and stop.confirmed else " NOT CONFIRMED"),
+                 o.reason, f"cut at {s.t.size if s else '?'} samples; said: "
+                 f"{tr.run.outcome.recording_error}; board ended: "
+                 f"{tr.run.sim.process.poll() is not None}"))
+    # 0.3 s of wall-clock latency on every frame from the board
+    o, tr, s, m = run(f"latency={0.3 * speed:g}", {"connection": {"loop": "device"},
+                                                   "relay": {"max_cycles": 3, "min_cycles": 3}},
+                      speed, tmp, "latency")
+    t_req, stop = stop_figures(tr)
+    rtt = tr.run.link.stats().rtt_median
+    rows.append((f"0.3 s latency (rtt {rtt:.2f} s wall)", "-",
+                 ticks(stop.t_zero - t_req if stop and stop.t_zero is not None and t_req
+                       is not None else None) + f" (samples {ticks(0.3 * speed)} late), "
+                 f"{stop.attempts} Stop frame(s), {stop.seconds:.2f} s wall",
+                 o.reason + (f", ALARM: {tr.run.alarm}" if tr.run.alarm else ", no alarm"),
+                 holds(s, o)))
+    # a board that ignores Stop: its watchdog (3 s device: long enough for a busy host to
+    # feed it during the run) zeroes it
+    wd = 3.0
+    o, tr, s, m = run("ignore_stop=1", {"connection": {"loop": "device"},
+                                        "relay": {"max_cycles": 3, "min_cycles": 3},
+                                        "safety": {"watchdog": wd}}, speed, tmp, "ignore-stop")
+    stop = tr.run.outcome.stop
+    ev = next((e for e in s.events if e["kind"] == "stop_request"), None) if s else None
+    after = (None if stop is None or stop.t_zero is None or ev is None
+             else stop.t_zero - ev["t_at_request"])
+    rows.append((f"device ignores Stop (watchdog {wd:g} s)",
+                 f"{stop.attempts} Stop frames, none answered",
+                 "-" if after is None else f"{after:.3f} s = {after / wd:.2f} watchdog "
+                 f"periods ({ticks(after)} ticks)", f"{o.reason}, exit {o.exit_code}",
+                 holds(s, o)))
+    # the checks while a request is retried: 5% corruption, and a board that never answers
+    # StartRelay (the duration limit falls during its retries)
+    for faults, cfg, label in (
+            ("corrupt=0.03,corrupt_rx=0.01,seed=7", {"connection": {"loop": "device"}},
+             "3% corruption"),
+            ("no_ack=StartRelay", {"connection": {"loop": "device"},
+                                   "safety": {"max_duration": 6.0}},
+             "StartRelay unanswered, duration limit")):
+        try:
+            o, tr, s, m = run(faults, cfg, speed, tmp, "retry-" + label.split()[0])
+        except UserError as exc:  # the line too bad to arm: said, not a row
+            rows.append((f"{label} (during a retry)", "-", "-", f"not armed: {exc}", "-"))
+            continue
+        ev = next((e for e in s.events if e["kind"] == "stop_request"), None) if s else None
+        age = None if ev is None or "t_newest" not in ev else ev["t_newest"] - ev["t"]
+        during = ev.get("during_request") if ev else None
+        rows.append((f"{label} (during a retry)",
+                     f"age {ticks(age)} ticks" + (f", during {during}" if during else
+                                                   ", between requests"),
+                     ticks(stopped_t(s) - ev["t"] if ev and stopped_t(s) else None),
+                     o.reason, holds(s, o)))
+    return rows
 
 
 def event_t(s: Any, kind: str) -> float | None:
@@ -152,9 +254,11 @@ def main() -> None:
                      o.reason, holds(s, o)))
 
         # device reset and disconnect: wall latency from the last sample's arrival
-        for faults, label in (("reset_after=4", "device reset"),
-                              ("disconnect_after=4", "disconnect (pty closed)")):
-            o, tr, s, m = run(faults, dev, speed, tmp, label.split()[0])
+        long_relay = {"connection": {"loop": "device"},
+                      "relay": {"max_cycles": 200, "min_cycles": 190}}
+        for faults, label in (("reset_after=8", "device reset"),
+                              ("disconnect_after=8", "disconnect (pty closed)")):
+            o, tr, s, m = run(faults, long_relay, speed, tmp, label.split()[0])
             lat = None
             if "stop_wall" in m and "last_rx" in m:
                 lat = (m["stop_wall"] - m["last_rx"]) * speed
@@ -162,16 +266,7 @@ def main() -> None:
             rows.append((label, ticks(lat) + f" (~{lat / speed * 1000:.0f} ms wall)"
                          if lat is not None else "-", zero, o.reason, holds(s, o)))
 
-        # device ignoring Stop
-        t0 = time.monotonic()
-        o, tr, s, m = run("ignore_stop=1", {"connection": {"loop": "device"},
-                                            "relay": {"max_cycles": 3, "min_cycles": 3}},
-                          speed, tmp, "ignore-stop")
-        ev = [e for e in s.events if e["kind"] == "stop_unconfirmed"]
-        wall = time.monotonic() - m.get("stop_wall", t0)
-        rows.append(("device ignores Stop",
-                     f"{ev[0]['attempts'] if ev else '?'} Stop rounds, {wall:.1f} s wall",
-                     "never: CUT POWER told, exit 5", o.reason, holds(s, o)))
+        rows += host_rows(speed, tmp)
 
         # host silent: the device watchdog (a Link that stops sending)
         rows.append(host_silent_row(speed))

@@ -72,16 +72,18 @@ def test_tune_and_step_on_board_sim(tmp_path: Path, c_build) -> None:
     figures = (result["ultimate_gain"], result["ultimate_period"], ku, ku0, tu, tu0)
     assert 0.85 * ku <= result["ultimate_gain"] <= 1.15 * ku0, figures
     assert 0.9 * tu0 <= result["ultimate_period"] <= 1.1 * tu, figures
-    assert result["step"] is not None and (tmp_path / "tune" / "step" / "gains.toml").exists()
+    assert result["step"] is not None and (tmp_path / "tune" / "gains.toml").exists()
     assert "device loop" in out
     best = next(p for p in result["proposals"] if p.get("default"))
     dev = start_board_sim(GAIN, LAG, DELAY, lag2=LAG2, noise=0.02, resolution=0.05,
                           speed=SPEED)
     try:
+        # the tune's own result: the proposal with its setpoint weight and prediction; the
+        # step size left to the plan (raised until the noise cannot hide the band)
         p = autotune("step", "--port", dev.url, "--yes", "--speed", str(SPEED), "--config",
-                     config_file(tmp_path), "--loop",
-                     "device", "--kp", str(best["kp"]), "--ki", str(best["ki"]), "--kd",
-                     str(best["kd"]), "--size", "0.5", "--out", str(tmp_path / "step"))
+                     config_file(tmp_path), "--loop", "device", "--from-result",
+                     str(tmp_path / "tune" / "result.json"), "--proposal", best["name"],
+                     "--out", str(tmp_path / "step"))
     finally:
         dev.close()
     assert p.returncode == 0, p.stdout[-2000:] + p.stderr[-2000:]

@@ -238,9 +238,9 @@ def test_bad_frames_counted_and_dropped(board, open_link) -> None:
     ]
     before = link.stats()
     for data in frames:
-        link._write(data)  # raw bytes on the line (the receiver is what is under test)
+        link._write(data, m.Ping.TYPE)  # raw bytes on the line (the receiver is under test)
     assert link.ping() >= 0.0  # the board still answers
-    link._write(encode_frame(m.Ping.TYPE, 78, m.Ping(3, 4).pack()))  # and reads the next frame
+    link._write(encode_frame(m.Ping.TYPE, 78, m.Ping(3, 4).pack()), m.Ping.TYPE)  # next frame
     assert link.ping() >= 0.0
     after = link.stats()
     assert after.naks == before.naks and after.unmatched == before.unmatched + 1  # Pong 78

@@ -26,6 +26,10 @@ TICK = 0.01  # s, the cart-wheel scenario's device tick
 # A generous watchdog (device time): a busy test machine may starve the host (or the device
 # process) for a tenth of a second of wall clock, which is 2 s of an accelerated device.
 BASE_CFG: dict[str, Any] = {"safety": {"watchdog": 10.0}}
+# a relay that runs on past the faults placed 8 s of device time after the handshake (late
+# enough for a slow host to have armed, whatever the load of the machine)
+LONG_RELAY: dict[str, Any] = {"connection": {"loop": "device"},
+                              "relay": {"max_cycles": 200, "min_cycles": 190}}
 
 
 def merged(cfg: dict[str, Any]) -> dict[str, Any]:
@@ -110,8 +114,7 @@ def test_link_quality_above_threshold_stops(tmp_path: Path) -> None:
 
 
 def test_disconnect_stops_and_is_recorded(tmp_path: Path) -> None:
-    outcome, tr, s = run_faulty(tmp_path, "disconnect_after=4",
-                                {"connection": {"loop": "device"}})
+    outcome, tr, s = run_faulty(tmp_path, "disconnect_after=8", LONG_RELAY)
     assert outcome.reason == "fault:link_lost", (outcome.reason, outcome.message)
     assert outcome.exit_code == EXIT_LINK
     # the port is gone: zero output cannot be confirmed; the operator is told (watchdog, cut
@@ -123,8 +126,7 @@ def test_disconnect_stops_and_is_recorded(tmp_path: Path) -> None:
 
 
 def test_device_reset_detected_by_boot_id(tmp_path: Path) -> None:
-    outcome, tr, s = run_faulty(tmp_path, "reset_after=4",
-                                {"connection": {"loop": "device"}})
+    outcome, tr, s = run_faulty(tmp_path, "reset_after=8", LONG_RELAY)
     assert outcome.reason == "fault:device_reset", (outcome.reason, outcome.message)
     assert outcome.exit_code != 0
     assert_session_complete(s, "fault:device_reset")
