@@ -290,6 +290,11 @@ class Supervisor:
         """Arm the no-response detector (see ResponseMonitor)."""
         self.response = ResponseMonitor(bias, level, band, hold_time)
 
+    def disarm_response(self) -> None:
+        """The no-response detector watches the open-loop stages only (prechecks, relay): under
+        closed-loop control a steady output with a steady PV is what settling looks like."""
+        self.response = None
+
     def link_due(self, t: float) -> bool:
         """True when the runner should read the link counters for `check_link`."""
         return self.link is not None and self.fault is None and self.link.due(t)

@@ -70,7 +70,7 @@ from autotune.job.operator import (
     StepReport,
     model_words,
 )
-from autotune.job.powered import PoweredRun, RunEnded, RunOptions
+from autotune.job.powered import PoweredRun, RunEnded, RunOptions, plain_alarm
 from autotune.job.requests import BoardRequest, GainsChoice, JobRequest
 from autotune.job.step import StepEnded, run_step
 from autotune.job.tune import TuneRun, choose_loop
@@ -135,7 +135,7 @@ class Quiet:
             self._say(line)
 
     def alarm(self, text: str) -> None:
-        self.say(text)
+        plain_alarm(text)  # an alarm must reach somebody even with nobody to ask
 
     def watch_abort(self, stop: Callable[[str], None] | None) -> None:
         pass
@@ -221,6 +221,9 @@ class TuningJob:
                     raise UserError(f"{exc}; {run.alarm}", exit_code=run.outcome.exit_code) \
                         from exc
                 raise
+            except signals.Interrupted:
+                self._set("aborted", "interrupted by a signal", EXIT_ABORTED)
+                raise  # the command line says which signal and what was kept
             except KeyboardInterrupt:
                 self._set("aborted", "interrupted", EXIT_ABORTED)
             self._settle(run)
@@ -251,7 +254,8 @@ class TuningJob:
             raise UserError("refusing to power the motor without confirmation: stdin is not a "
                             "terminal; run it from a terminal, or pass --yes once the cautions "
                             "above are met", exit_code=EXIT_USAGE)
-        return self.op.confirm_power(start.action)
+        with signals.diverted(_interrupt):  # a signal at the prompt ends the job
+            return self.op.confirm_power(start.action)
 
     def _start_info(self, info: Any) -> StartInfo:
         cfg, req = self.cfg, self.req
@@ -338,30 +342,33 @@ class TuningJob:
         stages.prechecks(run)
         end = stages.relay(run)
         self.bias = end.bias
-        if not (end.analysable and self.analyse):
-            self.result = stages.analyse(run, end.reason, end.message)
+        if not (end.reason == "converged" and self.analyse and self.req.confirm_step):
+            # nothing follows under power: the stop path first, the analysis after it
+            # (_write_files)
             raise RunEnded(end.reason, end.message, end.exit_code, end.t)
-        run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles; the output holds the "
-                      f"balanced bias {end.bias:.4g}")
-        self.result = self._hold_while(run, lambda: stages.analyse(run, end.reason,
-                                                                   end.message))
+        if self.req.yes:
+            # the step follows without a drop: the relay's balanced bias holds meanwhile
+            stages.hold_bias(run, end.bias)
+            run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles; the output holds "
+                          f"the balanced bias {end.bias:.4g}")
+            self.result = self._hold_while(run, lambda: stages.analyse(run, end.reason,
+                                                                       end.message))
+        else:
+            self._halt(run, "the relay is done")  # the operator will be asked
+            run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles (motor unpowered)")
+            self.result = stages.analyse(run, end.reason, end.message)
         self._write_result()  # kept whatever happens next
         self.proposals = tuple(p for p in self.result.get("proposals") or ()
                                if isinstance(p, Mapping))
         self.model_dict = self.result.get("model") if isinstance(self.result.get("model"),
                                                                  Mapping) else None
-        if end.reason != "converged":
-            raise RunEnded(end.reason, end.message, end.exit_code, end.t)
         if not self.proposals:
             raise RunEnded("converged", f"{end.message}; no gains could be proposed (see the "
                            "notes in result.json)", EXIT_FAILED, end.t)
-        if not self.req.confirm_step:
-            raise RunEnded("converged", end.message, EXIT_OK, end.t)
         run.set_phase(Phase.PROPOSALS, f"{len(self.proposals)} proposals")
         if self.req.yes:
             self.op.show_gains(self._menu(self._default_index() or 0))
             return self._unattended_first()
-        self._halt(run, "the proposals are ready")
         i = self._default_index()
         return self._choose(run, 0 if i is None else i, "" if i is not None else
                             "no default: no design is safe on the model (see the notes)")
@@ -810,7 +817,14 @@ class TuningJob:
         return res
 
     def _write_files(self, run: PoweredRun) -> None:
-        """The session's end record, result.json and the optional CSV; kept on every exit."""
+        """The session's end record, result.json and the optional CSV; kept on every exit.
+        A relay cut short (abort, signal, limit) still leaves its plain figures."""
+        st = self.stages
+        if self.result is None and st is not None and st.experiment is not None and \
+                st.experiment.cycles:
+            with contextlib.suppress(Exception):
+                out = run.outcome
+                self.result = st.analyse(run, out.reason, out.message)
         cycles = len(self.stages.experiment.cycles) if (
             self.stages is not None and self.stages.experiment is not None) else 0
         with contextlib.suppress(Exception):

@@ -12,9 +12,10 @@ Phases (all durations in device time, seconds):
   breakaway  (optional) a slow output ramp measures the deadband; the relay starts above it
   relay      host loop (the relay runs here, one SetOutput per sample) or device loop
              (StartRelay on the board; the host follows, supervises and sends new settings)
-The relay ends with the output held at its balanced bias (the motor still powered, so a loaded
-axis does not drop); the recorded relay samples go to `autotune.core.analysis.analyse_relay`
-and `autotune.core.design.propose`.
+When a confirmation step follows unattended, the job holds the output at the relay's balanced
+bias (`hold_bias`: the motor still powered, so a loaded axis does not drop) while the recorded
+relay samples go to `autotune.core.analysis.analyse_relay` and `autotune.core.design.propose`;
+otherwise the motor is stopped first.
 
 Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
 -centre, so it works with a loop whose positive output raises its PV. The device-side relay
@@ -115,8 +116,9 @@ class RelayEnd:
 
 class TuneRun:
     """The identification stages of a job, run on an armed PoweredRun by autotune.job.job:
-    `prechecks(run)`, `relay(run)` (returns a RelayEnd with the output held at the balanced
-    bias, the motor still powered) and `analyse(...)` (the result dict: figures, proposals).
+    `prechecks(run)`, `relay(run)` (returns a RelayEnd, the motor still powered), `hold_bias`
+    (the output held at the relay's balanced bias) and `analyse(...)` (the result dict:
+    figures, proposals).
     analyse=False skips the model fit and design (relay figures only)."""
 
     def __init__(self, cfg: Config, *, analyse: bool = True) -> None:
@@ -146,7 +148,8 @@ class TuneRun:
         self._prechecks(run)
 
     def relay(self, run: PoweredRun) -> RelayEnd:
-        """The relay experiment to its end; the output is left at the balanced bias."""
+        """The relay experiment to its end (the relay still drives the output: `hold_bias`
+        or the stop path comes next)."""
         self.run = run
         return self._relay(run)
 
@@ -397,11 +400,13 @@ class TuneRun:
             pv_resolution=self.rest.resolution if self.rest else 0.0,
         )
 
-    def _hold_bias(self, run: PoweredRun, bias: float) -> None:
+    def hold_bias(self, run: PoweredRun, bias: float) -> None:
         """End the relay at its balanced bias: a host loop holds it; a board relay is replaced
         by that output where the board takes host outputs (else its relay runs on until the
         next stage takes over)."""
         run.clear_sample_extra()
+        if run.supervisor is not None:
+            run.supervisor.disarm_response()  # closed-loop stages follow
         if run.loop_mode == "host" or run.info.has_host_loop:
             run.set_output(bias)
             run.event("relay_end", {"bias": bias})
@@ -458,9 +463,7 @@ class TuneRun:
                     message = ("no response: the PV did not move while the relay drove the "
                                "output; check the sensor, its wiring and the motor power")
                 code = EXIT_OK if reason == "converged" else EXIT_FAILED
-                bias = exp.settings.bias
-                self._hold_bias(run, bias)
-                return RelayEnd(reason, message, code, rec.t, bias)
+                return RelayEnd(reason, message, code, rec.t, exp.settings.bias)
             if device:
                 if step.new_settings is not None:
                     start_relay(step.new_settings)

@@ -221,7 +221,7 @@ def test_sigterm_at_the_prompt_exits_3(tmp_path: Path) -> None:
         "--config", str(quick_config(tmp_path)), "--out", str(tmp_path / "run")],
         cwd=str(tmp_path), env=env(), timeout=30, encoding="utf-8")
     try:
-        child.expect("Type 'yes'")
+        child.expect("Type yes and Enter")
         child.kill(signal.SIGTERM)
         child.expect(pexpect.EOF)
     finally:
@@ -237,6 +237,8 @@ def test_signal_during_the_analysis_keeps_the_analysis(tmp_path: Path) -> None:
     """SIGTERM arrives (a real signal, sent to this process) the moment the analysis starts,
     while the output holds the relay's balanced bias: the motor is stopped at once, the job
     ends with exit 3, and the analysis that was under way is still written to result.json."""
+    from dataclasses import replace
+
     from autotune.config import config_from_dict
     from autotune.core.progress import Phase
     from autotune.job.job import Quiet, TuningJob, tune_request
@@ -252,9 +254,10 @@ def test_signal_during_the_analysis_keeps_the_analysis(tmp_path: Path) -> None:
     cfg = config_from_dict({"safety": {"watchdog": 10.0},
                             "relay": {"max_cycles": 8, "min_cycles": 6}}, "test.toml")
     out = tmp_path / "out"
-    job = TuningJob(tune_request(cfg, RunOptions(port="sim", yes=True, out_dir=out,
-                                                 speed=20.0, keys=False)),
-                    Quiet(update=on_update))
+    # a confirmation step follows: the analysis runs while the balanced bias holds
+    req = replace(tune_request(cfg, RunOptions(port="sim", yes=True, out_dir=out, speed=20.0,
+                                               keys=False)), confirm_step=True)
+    job = TuningJob(req, Quiet(update=on_update))
     with routed():
         outcome = job.run()
     assert sent and outcome.exit_code == EXIT_ABORTED, (outcome.reason, outcome.message)
