@@ -251,8 +251,7 @@ def test_signal_during_the_analysis_keeps_the_analysis(tmp_path: Path) -> None:
             os.kill(os.getpid(), signal.SIGTERM)
 
     sent: list[bool] = []
-    cfg = config_from_dict({"safety": {"watchdog": 10.0},
-                            "relay": {"max_cycles": 8, "min_cycles": 6}}, "test.toml")
+    cfg = config_from_dict({"safety": {"watchdog": 10.0}}, "test.toml")
     out = tmp_path / "out"
     # a confirmation step follows: the analysis runs while the balanced bias holds
     req = replace(tune_request(cfg, RunOptions(port="sim", yes=True, out_dir=out, speed=20.0,
