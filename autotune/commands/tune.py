@@ -119,7 +119,7 @@ def run(args: argparse.Namespace) -> int:
         if ku is not None and tu is not None:
             print(f"ultimate gain Ku = {ku:.4g} (output units per PV unit), "
                   f"ultimate period Tu = {tu:.4g} s")
-        kc, tc = res.get("ultimate_gain_classic"), res.get("ultimate_period_classic")
+        kc, tc = res.get("ultimate_gain_df"), res.get("ultimate_period_df")
         if kc is not None and tc is not None:
             print(f"plain describing function: Ku = {kc:.4g}, Tu = {tc:.4g} s")
         for prop in res.get("proposals", []) or []:

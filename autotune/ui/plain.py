@@ -61,8 +61,9 @@ def estimate_line(snap: RunSnapshot) -> str | None:
     ch = estimate_changes(snap.estimates)[-1]
     delta = "" if ch is None else f", change {ch * 100:.1f}%"
     conv = ", converged" if snap.converged else ""
+    plain = f" (plain {fmt(e.ku_df)})" if e.ku_df is not None else ""
     return (f"cycle {e.index}: period {fmt(e.period)} s, p-p {fmt(e.amplitude)}, "
-            f"Ku {fmt(e.ku)}, Tu {fmt(e.tu)} s{delta}{conv}")
+            f"Ku {fmt(e.ku)}{plain}, Tu {fmt(e.tu)} s{delta}{conv}")
 
 
 def snapshot_lines(snap: RunSnapshot) -> list[str]:

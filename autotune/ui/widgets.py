@@ -170,7 +170,8 @@ def estimates_table(
     max_rows: int = 6,
     tolerance: float = 0.02,
 ) -> Table:
-    """The last `max_rows` cycles: period, amplitude, Ku, Tu and the change from the cycle before.
+    """The last `max_rows` cycles: period, amplitude, Ku (refined from the harmonics) beside the
+    plain describing-function Ku, Tu and the change from the cycle before.
 
     A change within `tolerance` (relative) is green; the title says when the run has converged.
     """
@@ -187,7 +188,7 @@ def estimates_table(
         header_style=theme.MUTED,
         expand=False,
     )
-    for name in ("cyc", "period s", "p-p", "Ku", "Tu s", "Δ"):
+    for name in ("cyc", "period s", "p-p", "Ku", "Ku plain", "Tu s", "Δ"):
         table.add_column(name, justify="right", no_wrap=True)
     changes = estimate_changes(estimates)
     shown = list(zip(estimates, changes, strict=True))[-max_rows:] if max_rows > 0 else []
@@ -196,9 +197,10 @@ def estimates_table(
             delta = Text("—", style=theme.MUTED)
         else:
             delta = Text(f"{ch * 100:.1f}%", style=theme.OK if ch <= tolerance else theme.WARN)
-        table.add_row(str(e.index), fmt(e.period), fmt(e.amplitude), fmt(e.ku), fmt(e.tu), delta)
+        table.add_row(str(e.index), fmt(e.period), fmt(e.amplitude), fmt(e.ku),
+                      Text(fmt(e.ku_df), style=theme.MUTED), fmt(e.tu), delta)
     if not estimates:
-        table.add_row("—", "", "", "", "", "")
+        table.add_row("—", "", "", "", "", "", "")
     return table
 
 
