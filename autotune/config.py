@@ -546,7 +546,8 @@ def relay_plan(relay: RelayConfig, *, start_amplitude: float | None = None,
         max_time=relay.max_time,
         converge_tol=relay.converge_tol,
         min_cycles=relay.min_cycles,
-        stall_time=max(relay.stall_time, 5.0 * response_time),
+        stall_time=(None if relay.stall_time is None
+                    else max(relay.stall_time, 5.0 * response_time)),
         start_amplitude=start_amplitude if start_amplitude is not None
         else relay.start_amplitude,
         pv_window=pv_window, deadband=deadband, tick=tick, pv_noise=pv_noise,

@@ -291,3 +291,13 @@ def sim_record(sim: TuneSim, relay_cfg=None, output_limit: float = 30.0,
                      rest=sim.rest.as_dict(), direction=sim.direction.as_dict(),
                      pv_resolution=pv_resolution, t_first_motion=sim.t_pulse,
                      end_reason=sim.experiment.end_reason)
+
+
+def make_plan(**kw):
+    """A RelayPlan with the config's [relay] defaults (autotune.config.RelayConfig, the one place
+    for them) and the given overrides (config keys and the plan's own settings alike)."""
+    from autotune.config import RelayConfig, relay_plan
+
+    keys = set(RelayConfig.__dataclass_fields__) - {"start_amplitude"}
+    cfg = {k: kw.pop(k) for k in list(kw) if k in keys}
+    return relay_plan(RelayConfig(**cfg), **kw)

@@ -62,16 +62,17 @@ def measurement_tolerances(period: float, amplitude_pp: float, *, hysteresis: fl
 
     A reading is the mean over `cycles_per_reading` consecutive cycles. Period: 3 x the
     standard deviation of the difference of two readings, each period being the difference of
-    two switching instants (`switch_jitter`; consecutive cycles share a switch, so a reading of
-    n cycles has the jitter of one period divided by n), and at least one tick. Amplitude: a
-    peak-to-peak reading is off by up to one quantisation step and 2 x noise.
+    two switching instants (`switch_jitter`): a reading of n cycles spans two switches, so its
+    jitter is sqrt(2) sd / n, and the difference of two readings sqrt(2) times that (readings
+    that share a switch differ by up to sqrt(6) / sqrt(4) times more: the bound taken is
+    2 sqrt(2) sd / n), and at least one tick. Amplitude: a peak-to-peak reading is off by up
+    to one quantisation step and 2 x noise.
     """
     if not (period > 0 and amplitude_pp > 0):
         return math.inf, math.inf
     n = max(int(cycles_per_reading), 1)
     sd = switch_jitter(0.5 * amplitude_pp, period, hysteresis, noise_std, resolution, tick)
-    # one period: sqrt(2) sd; a reading of n cycles: sqrt(2) sd / n; a difference: x sqrt(2)
-    tol_p = max(3.0 * 2.0 * sd / n, tick) / period
+    tol_p = max(3.0 * 2.0 * math.sqrt(2.0) * sd / n, tick) / period
     tol_a = (resolution + 2.0 * noise_std) / amplitude_pp
     return tol_p, tol_a
 

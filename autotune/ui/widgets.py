@@ -188,7 +188,7 @@ def estimates_table(
         header_style=theme.MUTED,
         expand=False,
     )
-    for name in ("cyc", "period s", "p-p", "Ku", "Ku plain", "Tu s", "Δ"):
+    for name in ("cyc", "period s", "p-p", "Ku (plain)", "Tu s", "Δ"):
         table.add_column(name, justify="right", no_wrap=True)
     changes = estimate_changes(estimates)
     shown = list(zip(estimates, changes, strict=True))[-max_rows:] if max_rows > 0 else []
@@ -197,10 +197,12 @@ def estimates_table(
             delta = Text("—", style=theme.MUTED)
         else:
             delta = Text(f"{ch * 100:.1f}%", style=theme.OK if ch <= tolerance else theme.WARN)
-        table.add_row(str(e.index), fmt(e.period), fmt(e.amplitude), fmt(e.ku),
-                      Text(fmt(e.ku_df), style=theme.MUTED), fmt(e.tu), delta)
+        ku = Text(fmt(e.ku))
+        if e.ku_df is not None:
+            ku.append(f" ({fmt(e.ku_df, 3)})", style=theme.MUTED)
+        table.add_row(str(e.index), fmt(e.period), fmt(e.amplitude), ku, fmt(e.tu), delta)
     if not estimates:
-        table.add_row("—", "", "", "", "", "", "")
+        table.add_row("—", "", "", "", "", "")
     return table
 
 
