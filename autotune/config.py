@@ -93,7 +93,7 @@ class RelayConfig:
     start_amplitude: first relay amplitude d (output units); None = a quarter of the output limit.
     target_amplitude: PV oscillation amplitude (peak, PV units) the adaptation aims for.
     hysteresis: relay hysteresis (PV units); None = from the rest precheck,
-        max(3 x noise, 2 x resolution), the resolution from the board or the direction pulse.
+        max(3 x noise, resolution), the resolution from the board or the direction pulse.
     asymmetry: relay asymmetry a in [0, 1): the high step is d (1 + a), the low one d (1 - a).
         An asymmetric relay moves the mean output, so the mean PV change over whole periods
         gives the static gain of a self-regulating loop, and the half-period ratio its

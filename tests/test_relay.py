@@ -342,7 +342,8 @@ def test_adaptation_and_balancing_together() -> None:
     assert exp.end_reason == "converged"
     last = exp.cycles[-1]
     assert abs(last.high_time - last.low_time) <= 0.05 * max(last.high_time, last.low_time)
-    assert last.amplitude == pytest.approx(0.4, rel=pl.amplitude_tolerance)
+    # the target is a guide: the second amplitude's swing stands up to twice it
+    assert 0.4 * (1 - pl.amplitude_tolerance) <= last.amplitude <= 2.0 * 0.4
     assert np.max(np.abs(u)) <= limit and np.max(np.abs(y)) <= window
     assert any(e.detail.get("why") == "no switch" for e in exp.events)
 
@@ -395,8 +396,8 @@ def test_one_correction_reaches_a_linear_target_and_a_second_amplitude_is_run() 
     run_host(exp, FopdtPlant(2.0, 1.0, 0.5, dt), dt)
     probe = [e for e in exp.events if e.kind.startswith("amplitude_")]
     assert len(probe) == 1 and probe[0].detail["why"] == "second amplitude"
-    # a at d = 1 sits (just) above the target: the probe goes down
-    assert probe[0].detail["to"] == pytest.approx(1.0 / pl.probe_ratio)
+    # up (no limit in the way), and its swing, probe_ratio times the target, is accepted
+    assert probe[0].detail["to"] == pytest.approx(pl.probe_ratio * 1.0)
     assert exp.end_reason == "converged"
     assert exp.dead_zone_estimate() == pytest.approx(0.0, abs=0.02)
 
@@ -511,7 +512,7 @@ def test_device_loop_adapts_and_balances_through_new_settings() -> None:
     last = exp.cycles[-1]
     assert last.amplitude_d == exp.settings.amplitude and last.bias == exp.settings.bias
     assert abs(last.high_time - last.low_time) <= 0.05 * max(last.high_time, last.low_time)
-    assert last.amplitude == pytest.approx(0.4, rel=pl.amplitude_tolerance)
+    assert 0.4 * (1 - pl.amplitude_tolerance) <= last.amplitude <= 2.0 * 0.4
     assert np.max(np.abs(u)) <= limit and np.max(np.abs(y)) <= window
     for s in sent:  # every setting sent fits the output limit without clamping
         assert s.bias + s.amp_high <= limit + 1e-9 and s.bias - s.amp_low >= -limit - 1e-9

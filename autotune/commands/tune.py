@@ -58,7 +58,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "output limit)")
     p.add_argument("--hysteresis", type=float, metavar="EPS",
                    help="relay hysteresis, PV units (default: from the rest check, "
-                        "max(3 x noise, 2 x resolution))")
+                        "max(3 x noise, resolution))")
     p.add_argument("--max-cycles", type=int, metavar="N",
                    help=f"stop the relay after N cycles (default: {_R.max_cycles})")
     p.add_argument("--max-time", type=float, metavar="S",

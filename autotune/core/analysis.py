@@ -308,7 +308,7 @@ def relay_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, *, centre: float =
 # ---------------------------------------------------------------------------- static gain
 def dc_point(t: np.ndarray, y: np.ndarray, u: np.ndarray, cycles: Sequence[Cycle],
              operating_point: tuple[float, float], *, ts: float, noise_std: float,
-             resolution: float = 0.0, hysteresis: float = 0.0) -> DcPoint:
+             resolution: float = 0.0) -> DcPoint:
     """Static gain from the mean PV and output over whole steady periods (asymmetric relay).
 
     In periodic steady state the mean PV change from the operating point (y_op, PV units) over
@@ -327,14 +327,10 @@ def dc_point(t: np.ndarray, y: np.ndarray, u: np.ndarray, cycles: Sequence[Cycle
     dy = float(np.mean(y[i0:i1])) - y_op
     n = len(cycles)
     per_y = np.array([float(np.mean(y[c.i_start:c.i_end])) for c in cycles])
-    per_u = np.array([float(np.mean(u[c.i_start:c.i_end])) for c in cycles])
     step = float(np.mean([2.0 * c.amplitude_d for c in cycles]))
-    a = float(np.mean([c.amplitude_pp for c in cycles])) / 2
-    period = span / n
-    sd_sw = switch_jitter(a, period, hysteresis, noise_std, resolution, ts)
-    du_sigma = max(step * sd_sw * math.sqrt(2.0 * n) / span,
-                   float(np.std(per_u, ddof=1)) / math.sqrt(n) if n > 1 else 0.0,
-                   1e-12 * max(abs(u_op), step))
+    # the output is known exactly; its mean over the window is off only by where the window
+    # ends: a tick at either edge
+    du_sigma = max(step * ts / span, 1e-12 * max(abs(u_op), step))
     dy_sigma = max(noise_std / math.sqrt(max(i1 - i0, 1)),
                    float(np.std(per_y, ddof=1)) / math.sqrt(n) if n > 1 else 0.0)
     if n >= 2:
@@ -498,7 +494,8 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
                   candidates: Sequence[str] = CANDIDATES, min_snr: float = 5.0,
                   resolution: float | None = None,
                   operating_point: tuple[float, float] | None = None,
-                  modes: bool = True, at_rest: bool | None = None) -> RelayAnalysis:
+                  modes: bool = True, at_rest: bool | None = None,
+                  integrating: bool = False) -> RelayAnalysis:
     """Analyse a relay experiment: Ku, Tu (refined and plain), model, uncertainty, warnings.
 
     t (s), y (PV units), u (output units, as applied and held over each tick; the record may
@@ -514,7 +511,9 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     (PV units, output units), for the static gain measured from an asymmetric relay; modes:
     try the candidates with a lightly damped mode when nothing simpler reproduces the points;
     at_rest: the record starts at rest (the rest check saw the PV still at the first output),
-    None: judged from the record (`_rest_at_start`).
+    None: judged from the record (`_rest_at_start`); integrating: the record shows an
+    integrating loop (autotune.core.deadzone.holding_dead_zone): self-regulating candidates
+    are offered only where the measured static gain says so.
     Raises AnalysisError when there is no complete steady relay cycle.
     """
     t = np.asarray(t, dtype=float)
@@ -549,8 +548,8 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     d = float(np.mean([c.amplitude_d for c in cycles]))
     bias = float(np.mean([c.bias for c in cycles]))
     span = float(t[-1] - t[0] + ts)
-    dc = (dc_point(t, y, u, cycles, operating_point, ts=ts, noise_std=noise, resolution=res,
-                   hysteresis=eps) if operating_point is not None else None)
+    dc = (dc_point(t, y, u, cycles, operating_point, ts=ts, noise_std=noise, resolution=res)
+          if operating_point is not None else None)
 
     half = 0.5 * float(np.mean([c.i_end - c.i_start for c in cycles]))
     if at_rest is None:
@@ -566,7 +565,7 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
                        fit_from=0 if at_rest else i0, candidates=candidates,
                        noise_floor=noise,
-                       check=lambda tf: check_model(tf, fourier, dc, span),
+                       check=lambda tf: check_model(tf, fourier, dc, span, integrating),
                        resonance=_resonance(fourier) if modes else None,
                        input_offset=not at_rest)
     tf = model.tf

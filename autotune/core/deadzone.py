@@ -189,7 +189,7 @@ def estimate_dead_zone(t: np.ndarray, y: np.ndarray, u: np.ndarray, stages: Sequ
     elif f0 > 0 > f1:
         raw = float(optimize.brentq(diff, 0.0, hi, xtol=1e-9 * max(ds), maxiter=100))
     elif f0 > 0:
-        raw = hi
+        return None  # no dead zone below the smaller relay level explains the stages
     else:  # no dead zone: the estimate lies below 0; extrapolate the relation linearly
         h = 1e-3 * max(ds)
         der = (diff(h) - f0) / h
@@ -213,3 +213,62 @@ def estimate_dead_zone(t: np.ndarray, y: np.ndarray, u: np.ndarray, stages: Sequ
             f"({', '.join(f'{d:.3g}' for d in ds)})")
     return DeadZoneEstimate(value if significant else 0.0, raw, sigma, significant,
                             tuple(ds), note, {"measured": value, "slope": slope})
+
+
+def holding_dead_zone(u: np.ndarray, stages: Sequence[Stage], u_hold: float,
+                      ts: float) -> DeadZoneEstimate | None:
+    """Dead zone of an integrating loop from the mean output at each relay amplitude.
+
+    An integrating loop oscillates steadily only when the mean drive the plant sees equals the
+    output that holds its PV still (u_hold, output units: the output at rest when the PV did
+    not drift). Behind a dead zone D an asymmetric relay's mean output is not that (its steps
+    shrink by D each), so at every stage D solves mean(dead_zone(u, D)) = u_hold. Stages that
+    agree (within 3 standard errors: the cycles' scatter of the mean, or a switch moved by a
+    tick) give the estimate; stages that disagree, or have no solution, say the loop is not
+    integrating (or not behind a plain dead zone): None. The first cycle of a stage is left
+    out (stages_from_cycles).
+    """
+    u = np.asarray(u, dtype=float)
+    if len(stages) < 2:
+        return None
+    ests: list[tuple[float, float]] = []
+    for s in stages:
+        seg = u[s.i_start:s.i_end]
+        hi = 0.95 * min(abs(s.bias + s.amplitude_d), abs(s.bias - s.amplitude_d),
+                        s.amplitude_d)
+        if not hi > 0 or seg.size < 4:
+            return None
+        span = seg.size * ts
+        per = [(i0, i1) for i0, i1 in s.bounds]
+
+        def f(x: float, seg: np.ndarray = seg) -> float:
+            return float(np.mean(dead_zone(seg, x))) - u_hold
+
+        sig_mean = 2.0 * s.amplitude_d * ts / span  # one switch moved by a tick
+        if len(per) >= 2:
+            means = [float(np.mean(dead_zone(u[i0:i1], 0.0))) for i0, i1 in per]
+            sig_mean = max(sig_mean, float(np.std(means, ddof=1)) / math.sqrt(len(means)))
+        f0, f1 = f(0.0), f(hi)
+        h = 1e-3 * s.amplitude_d
+        if abs(f0) <= 3.0 * sig_mean:
+            x = 0.0
+        elif f0 * f1 < 0:
+            x = float(optimize.brentq(f, 0.0, hi, xtol=1e-9 * s.amplitude_d))
+        else:
+            return None
+        der = abs(f(x + h) - f(max(x - h, 0.0))) / (x + h - max(x - h, 0.0))
+        if not der > 0:
+            return None
+        ests.append((x, sig_mean / der))
+    for i in range(len(ests)):
+        for j in range(i + 1, len(ests)):
+            if abs(ests[i][0] - ests[j][0]) > 3.0 * math.hypot(ests[i][1], ests[j][1]):
+                return None
+    wts = [1.0 / max(sg, 1e-12) ** 2 for _, sg in ests]
+    value = sum(w * x for (x, _), w in zip(ests, wts, strict=True)) / sum(wts)
+    sigma = 1.0 / math.sqrt(sum(wts))
+    ds = tuple(s.amplitude_d for s in stages)
+    significant = value > SIGNIFICANT_SIGMAS * sigma and value > NEGLIGIBLE_FRACTION * max(ds)
+    return DeadZoneEstimate(value if significant else 0.0, value, sigma, significant, ds,
+                            f"from the mean output at {len(stages)} relay amplitudes "
+                            "(integrating loop)", {"measured": value})

@@ -46,9 +46,10 @@ from autotune.core.deadzone import (
     DeadZoneEstimate,
     dead_zone,
     estimate_dead_zone,
+    holding_dead_zone,
     stages_from_cycles,
 )
-from autotune.core.model import MODE_KINDS, fit_models, sampled_response
+from autotune.core.model import MODE_KINDS, refit_residual, sampled_response
 
 ANALYSED_PHASES = ("precheck:rest", "precheck:direction", "precheck:breakaway", "relay")
 JOINT_SIGMAS = 3.0  # the joint fit searches the dead zone within this many standard errors
@@ -261,14 +262,15 @@ def analysis_inputs(record: RunRecord) -> AnalysisInputs:
 
 
 # ---------------------------------------------------------------------------- identify
-def _analyse(inp: AnalysisInputs, width: float, modes: bool = True) -> RelayAnalysis:
+def _analyse(inp: AnalysisInputs, width: float, modes: bool = True,
+             integrating: bool = False) -> RelayAnalysis:
     s = inp.settings
     eff = replace(s, amplitude=max(s.amplitude - width, 1e-9)) if width > 0 else s
     return analyse_relay(inp.t, inp.y, dead_zone(inp.u, width), eff, noise_std=inp.noise_std,
                          ts=inp.ts, output_limit=inp.output_limit, state=inp.state,
                          converge_tol=inp.converge_tol, min_cycles=inp.min_cycles,
                          resolution=inp.resolution, operating_point=inp.operating_point,
-                         modes=modes, at_rest=inp.at_rest)
+                         modes=modes, at_rest=inp.at_rest, integrating=integrating)
 
 
 def _stage_estimate(inp: AnalysisInputs, an: RelayAnalysis,
@@ -292,33 +294,55 @@ def _stage_estimate(inp: AnalysisInputs, an: RelayAnalysis,
     return estimate_dead_zone(inp.t, inp.y, inp.u, stages, ts)
 
 
-def _joint_dead_zone(inp: AnalysisInputs, an: RelayAnalysis, est: DeadZoneEstimate) -> float:
-    """The dead zone that lets the winning model kind explain the whole record best, searched
-    within JOINT_SIGMAS standard errors of the stage estimate (so that a model's misfit cannot
-    pass for a dead zone)."""
-    lo = max(0.0, est.raw - JOINT_SIGMAS * est.sigma)
-    hi = min(est.raw + JOINT_SIGMAS * est.sigma,
-             0.95 * min(est.stages) if est.stages else est.raw)
+def _holding_estimate(inp: AnalysisInputs) -> DeadZoneEstimate | None:
+    """`deadzone.holding_dead_zone` on the record's amplitude stages (asymmetric relay and an
+    operating point needed)."""
+    if not inp.settings.asymmetry or inp.operating_point is None:
+        return None
+    ts = inp.ts if inp.ts else float(np.median(np.diff(inp.t)))
+    cycles = relay_cycles(inp.t, inp.y, inp.u, centre=inp.settings.centre, state=inp.state)
+    return holding_dead_zone(inp.u, stages_from_cycles(inp.t, cycles), inp.operating_point[1],
+                             ts)
+
+
+def _joint_dead_zone(inp: AnalysisInputs, an: RelayAnalysis, lo: float, hi: float) -> float:
+    """The dead zone in [lo, hi] (output units) that lets a low-order model explain the whole
+    record best: the least-squares residual of the best plausible integrating and the best
+    plausible self-regulating plain candidate, each refitted (warm-started) as the dead zone
+    moves and minimised over it; the lower one wins. The window comes from the estimates
+    (stage swing, mean output, ramps), so that a model's misfit cannot pass for a dead zone.
+    For an integrating loop under an asymmetric relay the residual is sharp: only the right
+    dead zone gives the mean output that holds the PV still."""
     if not hi > lo:
-        return max(est.raw, 0.0)
-    g1 = an.fourier[0].g
-    ph = float(np.angle(g1))
-    ph = ph - 2 * math.pi if ph > 0 else ph
-    w1 = an.fourier[0].w
-    # the best of the plain kinds (a mode candidate needs its base fit to start from)
-    plain = [c for k, c in an.model.candidates.items() if k not in MODE_KINDS]
-    kind = min(plain, key=lambda c: c.aic).kind
+        return lo
+    plain = [c for k, c in an.model.candidates.items() if k not in MODE_KINDS and
+             getattr(an.model.checks.get(k), "plausible", True)]
+    fits = []
+    for integrating in (True, False):
+        group = [c for c in plain if c.tf.is_integrating == integrating]
+        if group:
+            fits.append(min(group, key=lambda c: c.aic))
+    best = (math.inf, lo)
+    for start in fits:
+        state = {"fit": start}
 
-    def rss(width: float) -> float:
-        fit = fit_models(inp.t, inp.y, dead_zone(inp.u, width), ts=an.ts, w1=w1, phase1=ph,
-                         fit_from=an.fit_from, candidates=[kind], noise_floor=0.0,
-                         input_offset=an.fit_from > 0)
-        return fit.residual
+        def rss(width: float, state: dict[str, Any] = state) -> float:
+            r, new = refit_residual(state["fit"], inp.t, inp.y, dead_zone(inp.u, width),
+                                    ts=an.ts, fit_from=an.fit_from,
+                                    input_offset=an.fit_from > 0)
+            state["fit"] = new
+            return r
 
-    res = optimize.minimize_scalar(rss, bounds=(lo, hi), method="bounded",
-                                   options={"xatol": 1e-3 * max(est.stages or (1.0,)),
-                                            "maxiter": 14})
-    return float(res.x)
+        grid = np.linspace(lo, hi, 7)
+        vals = [rss(float(x)) for x in grid]
+        k = int(np.argmin(vals))
+        a, b = grid[max(k - 1, 0)], grid[min(k + 1, grid.size - 1)]
+        res = optimize.minimize_scalar(rss, bounds=(float(a), float(b)), method="bounded",
+                                       options={"xatol": 1e-4 * max(hi, 1e-12),
+                                                "maxiter": 20})
+        if float(res.fun) < best[0]:
+            best = (float(res.fun), float(res.x))
+    return best[1]
 
 
 def identify(inp: AnalysisInputs) -> Identification:
@@ -343,33 +367,59 @@ def _identify(inp: AnalysisInputs) -> Identification:
     measured = inp.measured_dead_zone
     width = measured[0] if measured is not None else 0.0
     method = "breakaway ramps" if measured is not None and width > 0 else "none"
+    # an integrating loop under an asymmetric relay: the mean output at every amplitude says
+    # the dead zone directly (it must hold the PV still)
+    hold = _holding_estimate(inp)
+    integ = hold is not None and hold.significant
+    if integ and measured is None:
+        width = hold.value
     # first without the mode candidates: an unmeasured dead zone also spoils the fit
-    an = _analyse(inp, width, modes=False)
+    an = _analyse(inp, width, modes=False, integrating=integ)
     est = _stage_estimate(inp, an, width)
     d_final = inp.settings.amplitude
-    if est is not None and measured is None and est.significant:
-        width = _joint_dead_zone(inp, an, est)
-        method = "relay amplitudes"
-        an = _analyse(inp, width)
+    # the search window of the joint fit: every estimate that shows a dead zone, with
+    # JOINT_SIGMAS of its uncertainty (the ramps' spread, the stage swing's standard error)
+    windows = []
+    if est is not None and est.significant:
+        windows.append((est.raw, est.sigma))
+    if hold is not None and hold.significant:
+        windows.append((hold.raw, hold.sigma))
+    if measured is not None and measured[0] > 0:
+        windows.append((measured[0], max(measured[1], 0.01 * measured[0])))
+    if windows:
+        # each estimate with JOINT_SIGMAS of its uncertainty, and a tenth of itself at least
+        half = [max(JOINT_SIGMAS * s, 0.1 * v) for v, s in windows]
+        lo = max(0.0, min(v - h for (v, _), h in zip(windows, half, strict=True)))
+        hi = max(v + h for (v, _), h in zip(windows, half, strict=True))
+        if est is not None and est.stages:
+            hi = min(hi, 0.95 * min(est.stages))
+        width = _joint_dead_zone(inp, an, lo, hi)
+        from_relay = (est is not None and est.significant) or (hold is not None and
+                                                                hold.significant)
+        from_ramps = measured is not None and measured[0] > 0
+        method = ("relay amplitudes and breakaway ramps" if from_relay and from_ramps else
+                  "breakaway ramps" if from_ramps else "relay amplitudes")
+        an = _analyse(inp, width, modes=False, integrating=integ)
         # the model with the dead zone out carries the stages better: measure once more
         again = _stage_estimate(inp, an, width)
+        sigma = min(s for _, s in windows)
         if again is not None:
-            est = replace(again, value=width, significant=True,
-                          sigma=max(again.sigma, abs(again.raw - width) / 2.0))
-        else:
-            est = replace(est, value=width)
+            sigma = min(sigma, again.sigma)
+            est = again
+        sigma = max(sigma, 0.5 * min(abs(v - width) for v, _ in windows))
+        est = (replace(est, value=width, significant=True, sigma=sigma) if est is not None
+               else DeadZoneEstimate(width, width, sigma, True, (), method))
+        if from_relay and from_ramps and abs(windows[0][0] - measured[0]) > \
+                JOINT_SIGMAS * math.hypot(windows[0][1], windows[-1][1]):
+            warns.append(f"the breakaway ramps found a dead zone of {measured[0]:.3g} but the "
+                         f"swing at the relay amplitudes says {windows[0][0]:.3g}: friction "
+                         "that differs at rest and in motion, or backlash; the figure that "
+                         f"explains the whole record best ({width:.3g}) was used")
     if not an.model.reliable:
-        an = _analyse(inp, width, modes=True)
-    elif est is not None and measured is not None and measured[0] > 0 and \
-            abs(est.raw - measured[0]) > 3.0 * math.hypot(est.sigma, measured[1]):
-        warns.append(f"the breakaway ramps found a dead zone of {measured[0]:.3g} but the "
-                     f"swing at the relay amplitudes says {est.raw:.3g} +/- "
-                     f"{est.sigma:.2g}: friction that differs at rest and in motion, or "
-                     "backlash; the ramps' figure was used")
+        an = _analyse(inp, width, modes=True, integrating=integ)
     if width > 0:
         share = width / max(d_final, 1e-300)
-        sigma = (est.sigma if method == "relay amplitudes" and est is not None else
-                 (measured[1] if measured is not None else 0.0))
+        sigma = est.sigma if est is not None else (measured[1] if measured else 0.0)
         inflation = d_final / max(d_final - width, 1e-300) - 1.0
         warns.append(f"a dead zone of {width:.3g} +/- {sigma:.2g} (output units, "
                      f"{100 * share:.0f}% of the relay amplitude; {method}) was taken out: "
@@ -446,13 +496,9 @@ def result_fields(ident: Identification) -> dict[str, Any]:
     unc["static_gain"] = ident.static_gain_uncertainty
     unc["velocity_gain"] = ident.velocity_gain_uncertainty
     unc["normalized_dead_time"] = ident.normalized_dead_time_uncertainty
-    dz_sigma = None
-    if ident.dead_zone_method == "relay amplitudes" and dz is not None:
-        dz_sigma = dz.sigma
-    elif ident.inputs.measured_dead_zone is not None:
+    dz_sigma = dz.sigma if dz is not None else None
+    if dz_sigma is None and ident.inputs.measured_dead_zone is not None:
         dz_sigma = ident.inputs.measured_dead_zone[1]
-    elif dz is not None:
-        dz_sigma = dz.sigma
     unc["dead_zone"] = dz_sigma
     unc["ultimate_gain_df"] = an.uncertainty["ultimate_gain_df"]
     s = ident.inputs.settings

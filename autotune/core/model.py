@@ -258,6 +258,8 @@ class CandidateFit:
     aic: float
     offset: float  # fitted PV offset (PV units)
     input_offset: float  # fitted input offset (output units; integrating models), else 0
+    theta: tuple[float, ...] = ()  # the search vector it ended at (log time constants, delay)
+    order: int = 1  # lag_n: the order
 
 
 @dataclass(frozen=True)
@@ -485,21 +487,30 @@ def fit_models(
     log_hi = math.log(max(t[-1] - t[0], ts) * 1e3)
     free = int(fit_from) > 0  # not from rest: the initial state is fitted too
 
-    def optimise(prob: _Problem, starts: list[np.ndarray]) -> np.ndarray:
+    def optimise(prob: _Problem, starts: list[np.ndarray], tries: int = 1) -> np.ndarray:
+        """Least squares from the `tries` best starts (by their cost); the best end wins
+        (a short record's cost surface has local minima: a collapsed pair of lags, a dead
+        time shifted by a half-period)."""
         costs = [float(np.sum(prob.residual(s) ** 2)) for s in starts]
-        best = starts[int(np.argmin(costs))]
-        npar = best.size
+        order = np.argsort(costs)[:max(tries, 1)]
+        npar = starts[0].size
         lo = np.full(npar, log_lo)
         hi = np.full(npar, log_hi)
         lo[-1], hi[-1] = 0.0, max(t[-1] - t[0], ts)
         if prob.kind in MODE_KINDS:
             lo[2], hi[2] = ZETA_BOUNDS
-        x0 = np.clip(best, lo + 1e-9, hi - 1e-9)
-        sol = optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
-                                     x_scale=np.r_[np.ones(npar - 1), max(1.0 / w1, ts)],
-                                     xtol=1e-8, ftol=1e-10, gtol=1e-10,
-                                     max_nfev=120 if prob.kind in MODE_KINDS else 80)
-        return np.asarray(sol.x)
+        best_x, best_c = None, math.inf
+        for i in order:
+            x0 = np.clip(starts[int(i)], lo + 1e-9, hi - 1e-9)
+            sol = optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
+                                         x_scale=np.r_[np.ones(npar - 1), max(1.0 / w1, ts)],
+                                         xtol=1e-8, ftol=1e-10, gtol=1e-10,
+                                         max_nfev=120 if prob.kind in MODE_KINDS else 80)
+            c = 2.0 * float(sol.cost)
+            if c < best_c:
+                best_x, best_c = np.asarray(sol.x), c
+        assert best_x is not None
+        return best_x
 
     def record(kind: str, prob: _Problem, x: np.ndarray, order: int) -> CandidateFit:
         solved[kind] = x
@@ -517,7 +528,7 @@ def fit_models(
         aic = n_win * math.log(max(rss / n_win, 1e-300)) + 2 * npar_total
         input_offset = float(beta[2] / gain) if integrating and gain else 0.0
         fit = CandidateFit(kind, params, tf, math.sqrt(rss / n_win), aic, float(beta[1]),
-                           input_offset)
+                           input_offset, tuple(float(v) for v in x), order)
         fits[kind] = fit
         if check is not None:
             checks[kind] = check(tf)
@@ -553,7 +564,7 @@ def fit_models(
             if kind == "sopdt_zero" and "sopdt" in solved:
                 starts.append(solved["sopdt"])
                 starts.append(solved["sopdt"] + np.array([0.0, 0.0, -0.5 * solved["sopdt"][2]]))
-            x = optimise(prob, starts)
+            x = optimise(prob, starts, tries=3 if kind in ("sopdt", "sopdt_zero") else 2)
         fit = record(kind, prob, x, order)
         if fit.residual <= max(1.05 * noise_floor, 1e-9 * float(np.ptp(y))) and passed(kind):
             break
@@ -579,3 +590,38 @@ def fit_models(
     winner = min(pool, key=lambda f: f.aic)
     return FittedModel(winner.kind, dict(winner.params), winner.tf, winner.residual, fits,
                        checks, reliable)
+
+
+def refit_residual(fit: CandidateFit, t: np.ndarray, y: np.ndarray, u: np.ndarray, *,
+                   ts: float, fit_from: int = 0, input_offset: bool = True,
+                   u_ref: float | None = None) -> tuple[float, CandidateFit]:
+    """The rms residual (PV units) of the candidate kind of `fit` refitted to another output
+    record `u` (output units), the search started where `fit` ended (a smooth function of
+    small changes to u: for a search over a parameter of the input, e.g. a dead zone), and the
+    refitted candidate (its time constants and delay; gains as refitted)."""
+    t = np.asarray(t, dtype=float)
+    y = np.asarray(y, dtype=float)
+    u = np.asarray(u, dtype=float)
+    ref = float(u[0]) if u_ref is None else float(u_ref)
+    window = slice(int(fit_from), None)
+    prob = _Problem(fit.kind, u - ref, y, ts, window, fit.order, int(fit_from) > 0,
+                    input_offset)
+    x0 = np.asarray(fit.theta, dtype=float)
+    log_lo = math.log(ts * 1e-3)
+    log_hi = math.log(max(t[-1] - t[0], ts) * 1e3)
+    lo = np.full(x0.size, log_lo)
+    hi = np.full(x0.size, log_hi)
+    lo[-1], hi[-1] = 0.0, max(t[-1] - t[0], ts)
+    if fit.kind in MODE_KINDS:
+        lo[2], hi[2] = ZETA_BOUNDS
+    sol = optimize.least_squares(prob.residual, np.clip(x0, lo + 1e-9, hi - 1e-9),
+                                 bounds=(lo, hi), method="trf", xtol=1e-10, ftol=1e-12,
+                                 gtol=1e-12, max_nfev=60)
+    res, beta, shape = prob.solve(np.asarray(sol.x))
+    if fit.kind == "lag_n":
+        shape = {**shape, "order": float(fit.order)}
+    rms = float(np.sqrt(np.mean(res**2)))
+    tf = _build(fit.kind, shape, beta)
+    new = CandidateFit(fit.kind, {**fit.params, **shape}, tf, rms, fit.aic, float(beta[1]),
+                       fit.input_offset, tuple(float(v) for v in sol.x), fit.order)
+    return rms, new

@@ -7,7 +7,7 @@ direction expected for a positive output step (the runner passes +1 after applyi
 
 1. Rest: output held at bias; noise (standard deviation after removing a straight-line drift),
    drift (PV units/s), resolution (smallest non-zero PV step seen), suggested hysteresis
-   max(3 x noise, 2 x resolution) (common practice, no source).
+   max(3 x noise, resolution) (common practice, no source; `relay_hysteresis`).
 2. Direction: one small output pulse; the PV must move the expected way by more than 5 x noise
    within the timeout.
 3. Breakaway: a slow output ramp; the output at which the PV first moves beyond the noise bounds
@@ -151,7 +151,7 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
     else:
         slope, noise = 0.0, float(np.std(pa, ddof=1))
     res = smallest_step(pa)
-    hyst = max(3.0 * noise, 2.0 * res)
+    hyst = relay_hysteresis(noise, res)
     # slope standard error; quantisation counts as noise of at least resolution / sqrt(12)
     spread = float(np.sum(tc**2))
     noise_eff = max(noise, res / math.sqrt(12.0))
@@ -180,8 +180,13 @@ def pv_resolution(board: float = 0.0, rest: float = 0.0, pulse: float = 0.0) -> 
 
 def relay_hysteresis(noise_std: float, resolution: float) -> float:
     """Relay hysteresis (PV units) from the PV noise std and resolution: max(3 x noise,
-    2 x resolution) (common practice, no source); never 0 on a quantised sensor."""
-    return max(3.0 * noise_std, 2.0 * resolution)
+    1 x resolution) (common practice, no source); never 0 on a quantised sensor.
+
+    One step is enough against quantisation: a PV that flickers between the two levels around
+    the centre spans one step, and the relay switches only a full step beyond it. A wider
+    hysteresis costs time: the oscillation then sits arcsin(eps / a) before -180 degrees and
+    its period grows (for an integrating loop at a = 3 eps, by about half)."""
+    return max(3.0 * noise_std, resolution)
 
 
 def direction_threshold(noise_std: float, target_amplitude: float) -> float:

@@ -276,8 +276,8 @@ class RelayPlan:
     amplitude_tolerance: relative band around the target within which d is left alone.
     amplitude_stages: the experiment runs at this many relay amplitudes at least (two measure a
         dead zone: the swing goes as d - dead zone); when the first amplitude already lands in
-        the band, the second is `probe_ratio` times it from below the target (divided by it
-        from above, or where the limits do not allow a rise).
+        the band, the second is `probe_ratio` times it (divided by it where the limits do not
+        allow a rise).
     adapt_amplitude, balance_bias: adapt d to the target / balance the half-periods by the bias
         (symmetric relay only; an asymmetric relay's half-periods differ by design).
     bias_tolerance: half-periods count as balanced when |high - low| / mean half <= this.
@@ -867,10 +867,9 @@ class RelayExperiment:
         over the peak-to-peak swing). Outside it, d goes in one correction to where the PV
         amplitude is predicted to hit the target: proportional to d - dead zone, or along the
         secant through an earlier amplitude, by at most amplitude_step_factor. Inside it, while
-        fewer than plan.amplitude_stages amplitudes were run, d moves by probe_ratio (up from
-        below the target where the limits allow, else down) so that a second amplitude
-        measures the dead zone; the probe's own swing is accepted within probe_ratio - 1 + 5 %
-        of the target.
+        fewer than plan.amplitude_stages amplitudes were run, d moves by probe_ratio (up where
+        the limits allow, else down) so that a second amplitude measures the dead zone; the
+        probe's own swing is accepted up to twice the target (the target is a guide).
         """
         if not self.plan.adapt_amplitude or s.amplitude <= 0:
             return s
@@ -883,7 +882,7 @@ class RelayExperiment:
         slope = self._secant_slope(d)
         stages = len({round(h[0], 12) for h in self._history})
         if self._probed:  # the probe moved d on purpose: its swing stands unless far off
-            band = max(band, p.probe_ratio - 1.0 + 0.05)
+            band = max(band, 1.0)
         why = "target"
         # d aimed at the target
         if a <= 0:
@@ -893,11 +892,11 @@ class RelayExperiment:
             d_t = min(max(d_t, d / p.amplitude_step_factor, db + 0.1 * (d - db)),
                       d * p.amplitude_step_factor)
         elif stages < p.amplitude_stages:
-            # a second amplitude, towards the target: up from below it (where the limits
-            # allow), down from above it
+            # a second amplitude, up where the limits allow (a larger swing makes the
+            # hysteresis matter less and the cycles shorter), else down
             why = "second amplitude"
             up = d * p.probe_ratio
-            d_t = up if a < target and self._room_to_raise(up, d, cyc) else d / p.probe_ratio
+            d_t = up if self._room_to_raise(up, d, cyc) else d / p.probe_ratio
             self._probed = True
         else:
             d_t = d

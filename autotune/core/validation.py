@@ -29,7 +29,8 @@ from autotune.core.lti import DelayedTF
 CHECK_SIGMAS = 3.0
 POINT_TOLERANCE = 0.03  # relative miss a good low-order model may show at the fundamental
 HARMONIC_TOLERANCE = 0.12  # ... and at the higher harmonics (common practice, no source)
-SLOWEST_FACTOR = 5.0  # a lag longer than this many record lengths is beyond the record
+SLOWEST_FACTOR = 1.0  # a lag longer than the record is beyond it: the record shows less than
+#                       two thirds of its settling (common practice, no source)
 DC_TOLERANCE = 0.05  # relative miss of the static gain a good model may show
 
 
@@ -100,10 +101,12 @@ def slowest_time_constant(tf: DelayedTF) -> float:
 
 
 def check_model(tf: DelayedTF, points: Sequence[FourierPoint], dc: DcPoint | None,
-                record_span: float) -> ModelCheck:
+                record_span: float, integrating: bool = False) -> ModelCheck:
     """Check one candidate against the points, the measured static gain and the record.
 
-    record_span: length of the record (s). See the module docstring for the rules.
+    record_span: length of the record (s); integrating: the record shows an integrating loop
+    (its mean output holds the PV still at every relay amplitude): a self-regulating candidate
+    is then not offered unless the measured static gain backs it. See the module docstring.
     """
     reasons: list[str] = []
     misses: dict[int, float] = {}
@@ -128,6 +131,10 @@ def check_model(tf: DelayedTF, points: Sequence[FourierPoint], dc: DcPoint | Non
     else:
         k = tf.static_gain
         slow = slowest_time_constant(tf)
+        if integrating and not (dc is not None and dc.self_regulating):
+            ok = plausible = False
+            reasons.append("self-regulating, but the mean output holds the PV still at every "
+                           "relay amplitude: the loop is integrating")
         if dc is not None and dc.gain is not None:
             dc_miss = abs(k - dc.gain) / max(abs(dc.gain), 1e-300)
             allow = max(CHECK_SIGMAS * dc.sigma / max(abs(dc.gain), 1e-300), DC_TOLERANCE)

@@ -8,7 +8,7 @@ Phases (all durations in device time, seconds):
   direction  one output pulse of `prechecks.pulse_size` until the PV has moved beyond the
              threshold or `prechecks.pulse_timeout` passed; wrong way or no motion stops the
              run. The PV resolution is the board's declared one, else the rest's, else the
-             pulse's; the relay hysteresis defaults to max(3 x noise, 2 x resolution)
+             pulse's; the relay hysteresis defaults to max(3 x noise, resolution)
   breakaway  (prechecks.breakaway = true) two slow output ramps measure the dead zone; the
              relay starts above it
   relay      host loop (the relay runs here, one SetOutput per sample) or device loop

@@ -4,6 +4,7 @@ is autotune.core.convergence's: tests/test_convergence.py)."""
 from __future__ import annotations
 
 import io
+
 import pytest
 
 from autotune.core.progress import CycleEstimate, Phase, RunSnapshot
