@@ -103,17 +103,17 @@ class RelayConfig:
     max_time: the relay stops after this long (s, device time).
     bias: output at the operating point (output units), the relay switches bias +/- d.
     bias_tolerance: half-periods are balanced when they differ by less than this fraction.
-    amplitude_step_factor: one correction of d moves it by at most this factor (and d rises by
-        it when the relay does not switch for stall_time).
+    amplitude_step_factor: one correction raises d by at most this factor (a lower d is set
+        in one step; d also rises by it when the relay does not switch for stall_time).
     amplitude_stages: the relay runs at this many amplitudes at least; two measure a dead zone
         from the swing at both (1 = stay at the first amplitude that lands near the target).
     converge_tol: relative agreement of period and amplitude between the last steady cycles
         (widened to what the tick, PV noise and resolution can resolve).
     adapt_amplitude: adapt d towards the target amplitude (false: keep the start amplitude).
     balance_bias: adjust the bias until the half-periods match (symmetric relay only).
-    stall_time: no relay switch for this long (s), and for 5 times the direction pulse's
-        response time at least, raises d, or ends the run when it cannot rise (after the first
-        cycle: three periods).
+    stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot
+        rise; used only when the loop's own time scale is unknown: the wait is 10 times the
+        direction pulse's response time, and after the first cycle three periods.
     amplitude_tolerance: d is left alone while the PV amplitude lies within this fraction of
         the target (widened to the PV's peak-reading error); the target is a guide, and every
         change of d costs cycles.
@@ -530,8 +530,9 @@ def relay_plan(relay: RelayConfig, *, start_amplitude: float | None = None,
 
     start_amplitude (output units; None: the table's, which may be None too), pv_window (PV
     units, from [safety]), and what the prechecks measured: deadband (output units), tick (s),
-    pv_noise and pv_resolution (PV units), response_time (s: the direction pulse's, the stall
-    wait is 5 times it at least; common practice, no source). `internal`: RelayPlan's own settings (e.g.
+    pv_noise and pv_resolution (PV units), response_time (s: the direction pulse's; the relay
+    counts as stalled after 10 times it without a switch, the table's stall_time standing in
+    when it is unknown; common practice, no source). `internal`: RelayPlan's own settings (e.g.
     max_amplitude, settle_cycles), for tests and special runs.
     """
     return RelayPlan(
@@ -546,8 +547,8 @@ def relay_plan(relay: RelayConfig, *, start_amplitude: float | None = None,
         max_time=relay.max_time,
         converge_tol=relay.converge_tol,
         min_cycles=relay.min_cycles,
-        stall_time=(None if relay.stall_time is None
-                    else max(relay.stall_time, 5.0 * response_time)),
+        stall_time=(None if relay.stall_time is None else
+                    10.0 * response_time if response_time > 0 else relay.stall_time),
         start_amplitude=start_amplitude if start_amplitude is not None
         else relay.start_amplitude,
         pv_window=pv_window, deadband=deadband, tick=tick, pv_noise=pv_noise,

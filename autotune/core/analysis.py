@@ -671,7 +671,10 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
         warnings.append(f"half-periods differ by {100 * abs(asym):.0f}% (high {hi_t:.3g} s, low "
                         f"{lo_t:.3g} s): a static load (gravity, friction, a slope) offsets the "
                         "loop; let bias balancing finish or set the relay bias")
-    if output_limit is not None and float(np.max(np.abs(u))) >= output_limit * (1 - 1e-9):
+    planned = (settings.bias + settings.amplitude * (1 + getattr(settings, "asymmetry", 0.0))
+               if settings is not None else -math.inf)
+    if output_limit is not None and float(np.max(np.abs(u))) >= output_limit * (1 - 1e-9) \
+            and planned > output_limit * (1 + 1e-9):
         warnings.append(f"the output reached the output limit ({output_limit:g}) during the "
                         "experiment (saturation): lower the relay amplitude or bias")
     elif settings is not None and settings.amplitude > 0 and \

@@ -51,6 +51,9 @@ __all__ = [
 
 HIGH = 1
 LOW = -1
+SETTLED_BAND = 0.5  # once the amplitudes the plan asks for were run, a swing within this
+#                     fraction of the target is accepted (the target is a guide; common
+#                     practice, no source)
 
 
 def clamp(x: float, limit: float) -> float:
@@ -271,8 +274,8 @@ class RelayPlan:
 
     target_amplitude: wanted PV peak amplitude a (half peak-to-peak), PV units.
     start_amplitude: first relay amplitude d (output units); None keeps the settings' amplitude.
-    amplitude_step_factor: largest factor by which one correction raises (or lowers) d, and the
-        factor by which d rises when the relay stalls.
+    amplitude_step_factor: largest factor by which one correction raises d (a lower d is set
+        in one step), and the factor by which d rises when the relay stalls.
     amplitude_tolerance: relative band around the target within which d is left alone.
     amplitude_stages: the experiment runs at this many relay amplitudes at least (two measure a
         dead zone: the swing goes as d - dead zone); when the first amplitude already lands in
@@ -864,9 +867,11 @@ class RelayExperiment:
 
         `cyc` holds the mean figures of the `n` settled cycles. The band around the target is
         amplitude_tolerance widened to the peak-reading error of the PV (resolution + 2 noise
-        over the peak-to-peak swing). Outside it, d goes in one correction to where the PV
-        amplitude is predicted to hit the target: proportional to d - dead zone, or along the
-        secant through an earlier amplitude, by at most amplitude_step_factor. Inside it, while
+        over the peak-to-peak swing), and to SETTLED_BAND once plan.amplitude_stages
+        amplitudes were run. Outside it, d goes in one correction to where the PV amplitude is
+        predicted to hit the target: proportional to d - dead zone, or along the secant
+        through an earlier amplitude; up by at most amplitude_step_factor, down to a tenth at
+        most. Inside it, while
         fewer than plan.amplitude_stages amplitudes were run, d moves by probe_ratio (up where
         the limits allow, else down) so that a second amplitude measures the dead zone; the
         probe's own swing is accepted up to twice the target (the target is a guide).
@@ -883,14 +888,16 @@ class RelayExperiment:
         stages = len({round(h[0], 12) for h in self._history})
         if self._probed:  # the probe moved d on purpose: its swing stands unless far off
             band = max(band, 1.0)
+        elif stages >= p.amplitude_stages:  # enough amplitudes: another costs three cycles
+            band = max(band, SETTLED_BAND)
         why = "target"
-        # d aimed at the target
+        # d aimed at the target: up by at most amplitude_step_factor (a dead zone not yet
+        # known makes the swing grow faster than d), down in one step (to a tenth at most)
         if a <= 0:
             d_t = d * p.amplitude_step_factor
         elif abs(a - target) > band * target:
             d_t = d + (target - a) / slope if slope is not None else db + (d - db) * target / a
-            d_t = min(max(d_t, d / p.amplitude_step_factor, db + 0.1 * (d - db)),
-                      d * p.amplitude_step_factor)
+            d_t = min(max(d_t, db + 0.1 * (d - db)), d * p.amplitude_step_factor)
         elif stages < p.amplitude_stages:
             # a second amplitude, up where the limits allow (a larger swing makes the
             # hysteresis matter less and the cycles shorter), else down

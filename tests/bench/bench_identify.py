@@ -16,8 +16,8 @@ Cases:
   correction goes down, stays or goes up;
 - the built-in scenarios (mock_device/scenarios: cart-wheel, mast-pan with its 3 % dead zone)
   and a slow loop (2 e^{-0.6 s} / (2.4 s + 1), 10 ms tick), all with the defaults;
-- a dead zone of 10, 20 and 30 % of the final relay amplitude on the cart-wheel and mast-pan
-  plants; a constant load on each; a lightly damped mode (damping 0.15) at 2, 3 and 5 times the
+- a dead zone of 10, 20 and 30 % of the relay amplitude (as it starts, the default) on the
+  cart-wheel and mast-pan plants; a constant load on each; a lightly damped mode (damping 0.15) at 2, 3 and 5 times the
   cart-wheel's ultimate frequency; coarse encoders (step 5-15 % of the oscillation amplitude,
   no noise: the PV reads exactly constant at rest); a 10 Hz tick with one tick of delay.
 
@@ -110,12 +110,9 @@ def cases(quick: bool) -> list[Case]:
     if not quick:
         for plant, pname, noise, res in ((CART, "cart", 0.02, 0.05),
                                          (MAST, "mast", 0.03, 360 / 4096)):
-            ku, _ = true_ultimate(*plant)
-            d_lin = TARGET * math.pi * ku / 4.0  # relay amplitude for the target, no dead zone
-            for f in (0.1, 0.2, 0.3):
-                db = f / (1 - f) * d_lin  # f of the final relay amplitude db + d_lin
+            for f in (0.1, 0.2, 0.3):  # of the relay amplitude as it starts (the default)
                 out.append(Case(f"{pname} dz {100 * f:.0f}%", *plant, 0.01, noise=noise,
-                                resolution=res, deadband=db))
+                                resolution=res, deadband=f * START))
         out.append(Case("cart load", *CART, 0.01, noise=0.02, resolution=0.05, load=5.0))
         out.append(Case("mast load", *MAST, 0.01, noise=0.03, resolution=360 / 4096,
                         load=1.0))
