@@ -329,8 +329,8 @@ def dc_point(t: np.ndarray, y: np.ndarray, u: np.ndarray, cycles: Sequence[Cycle
     per_y = np.array([float(np.mean(y[c.i_start:c.i_end])) for c in cycles])
     step = float(np.mean([2.0 * c.amplitude_d for c in cycles]))
     # the output is known exactly; its mean over the window is off only by where the window
-    # ends: a tick at either edge
-    du_sigma = max(step * ts / span, 1e-12 * max(abs(u_op), step))
+    # ends: each edge sits on a switch known to within a tick (uniform)
+    du_sigma = max(step * ts / (span * math.sqrt(6.0)), 1e-12 * max(abs(u_op), step))
     dy_sigma = max(noise_std / math.sqrt(max(i1 - i0, 1)),
                    float(np.std(per_y, ddof=1)) / math.sqrt(n) if n > 1 else 0.0)
     if n >= 2:
@@ -494,8 +494,7 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
                   candidates: Sequence[str] = CANDIDATES, min_snr: float = 5.0,
                   resolution: float | None = None,
                   operating_point: tuple[float, float] | None = None,
-                  modes: bool = True, at_rest: bool | None = None,
-                  integrating: bool = False) -> RelayAnalysis:
+                  modes: bool = True, at_rest: bool | None = None) -> RelayAnalysis:
     """Analyse a relay experiment: Ku, Tu (refined and plain), model, uncertainty, warnings.
 
     t (s), y (PV units), u (output units, as applied and held over each tick; the record may
@@ -511,9 +510,7 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     (PV units, output units), for the static gain measured from an asymmetric relay; modes:
     try the candidates with a lightly damped mode when nothing simpler reproduces the points;
     at_rest: the record starts at rest (the rest check saw the PV still at the first output),
-    None: judged from the record (`_rest_at_start`); integrating: the record shows an
-    integrating loop (autotune.core.deadzone.holding_dead_zone): self-regulating candidates
-    are offered only where the measured static gain says so.
+    None: judged from the record (`_rest_at_start`).
     Raises AnalysisError when there is no complete steady relay cycle.
     """
     t = np.asarray(t, dtype=float)
@@ -565,7 +562,7 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
                        fit_from=0 if at_rest else i0, candidates=candidates,
                        noise_floor=noise,
-                       check=lambda tf: check_model(tf, fourier, dc, span, integrating),
+                       check=lambda tf: check_model(tf, fourier, dc, span),
                        resonance=_resonance(fourier) if modes else None,
                        input_offset=not at_rest)
     tf = model.tf

@@ -23,7 +23,7 @@ from scipy import optimize
 
 from autotune.core.harmonics import fourier_coefficients
 
-SIGNIFICANT_SIGMAS = 3.0  # a dead zone counts when it stands this many standard errors above 0
+SIGNIFICANT_SIGMAS = 2.5  # a dead zone counts when it stands this many standard errors above 0
 NEGLIGIBLE_FRACTION = 0.01  # ... and above this fraction of the relay amplitude (common
 #                             practice, no source: below it Ku moves by less than 1 %)
 
@@ -244,7 +244,8 @@ def holding_dead_zone(u: np.ndarray, stages: Sequence[Stage], u_hold: float,
         def f(x: float, seg: np.ndarray = seg) -> float:
             return float(np.mean(dead_zone(seg, x))) - u_hold
 
-        sig_mean = 2.0 * s.amplitude_d * ts / span  # one switch moved by a tick
+        # the window's two ends sit on switches, each known to within a tick (uniform)
+        sig_mean = 2.0 * s.amplitude_d * ts / (span * math.sqrt(6.0))
         if len(per) >= 2:
             means = [float(np.mean(dead_zone(u[i0:i1], 0.0))) for i0, i1 in per]
             sig_mean = max(sig_mean, float(np.std(means, ddof=1)) / math.sqrt(len(means)))

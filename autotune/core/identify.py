@@ -43,6 +43,7 @@ from autotune.core.analysis import (
     relay_cycles,
 )
 from autotune.core.deadzone import (
+    NEGLIGIBLE_FRACTION,
     DeadZoneEstimate,
     dead_zone,
     estimate_dead_zone,
@@ -262,15 +263,14 @@ def analysis_inputs(record: RunRecord) -> AnalysisInputs:
 
 
 # ---------------------------------------------------------------------------- identify
-def _analyse(inp: AnalysisInputs, width: float, modes: bool = True,
-             integrating: bool = False) -> RelayAnalysis:
+def _analyse(inp: AnalysisInputs, width: float, modes: bool = True) -> RelayAnalysis:
     s = inp.settings
     eff = replace(s, amplitude=max(s.amplitude - width, 1e-9)) if width > 0 else s
     return analyse_relay(inp.t, inp.y, dead_zone(inp.u, width), eff, noise_std=inp.noise_std,
                          ts=inp.ts, output_limit=inp.output_limit, state=inp.state,
                          converge_tol=inp.converge_tol, min_cycles=inp.min_cycles,
                          resolution=inp.resolution, operating_point=inp.operating_point,
-                         modes=modes, at_rest=inp.at_rest, integrating=integrating)
+                         modes=modes, at_rest=inp.at_rest)
 
 
 def _stage_estimate(inp: AnalysisInputs, an: RelayAnalysis,
@@ -326,10 +326,14 @@ def _joint_dead_zone(inp: AnalysisInputs, an: RelayAnalysis, lo: float, hi: floa
     for start in fits:
         state = {"fit": start}
 
-        def rss(width: float, state: dict[str, Any] = state) -> float:
-            r, new = refit_residual(state["fit"], inp.t, inp.y, dead_zone(inp.u, width),
-                                    ts=an.ts, fit_from=an.fit_from,
-                                    input_offset=an.fit_from > 0)
+        def rss(width: float, state: dict[str, Any] = state, start: Any = start) -> float:
+            # from the candidate as first fitted and from the last refit: the better end (a
+            # chain of refits alone can wander off into a local minimum far from the truth)
+            ue = dead_zone(inp.u, width)
+            ends = [refit_residual(f, inp.t, inp.y, ue, ts=an.ts, fit_from=an.fit_from,
+                                   input_offset=an.fit_from > 0)
+                    for f in ({id(start): start, id(state["fit"]): state["fit"]}.values())]
+            r, new = min(ends, key=lambda e: e[0])
             state["fit"] = new
             return r
 
@@ -369,12 +373,11 @@ def _identify(inp: AnalysisInputs) -> Identification:
     method = "breakaway ramps" if measured is not None and width > 0 else "none"
     # an integrating loop under an asymmetric relay: the mean output at every amplitude says
     # the dead zone directly (it must hold the PV still)
-    hold = _holding_estimate(inp)
-    integ = hold is not None and hold.significant
-    if integ and measured is None:
+    hold = _holding_estimate(inp)  # it suggests; the model comparison decides
+    if hold is not None and hold.significant and measured is None:
         width = hold.value
     # first without the mode candidates: an unmeasured dead zone also spoils the fit
-    an = _analyse(inp, width, modes=False, integrating=integ)
+    an = _analyse(inp, width, modes=False)
     est = _stage_estimate(inp, an, width)
     d_final = inp.settings.amplitude
     # the search window of the joint fit: every estimate that shows a dead zone, with
@@ -394,12 +397,14 @@ def _identify(inp: AnalysisInputs) -> Identification:
         if est is not None and est.stages:
             hi = min(hi, 0.95 * min(est.stages))
         width = _joint_dead_zone(inp, an, lo, hi)
+        if width <= NEGLIGIBLE_FRACTION * d_final:  # it would move Ku by less than 1 %
+            width = 0.0
         from_relay = (est is not None and est.significant) or (hold is not None and
                                                                 hold.significant)
         from_ramps = measured is not None and measured[0] > 0
         method = ("relay amplitudes and breakaway ramps" if from_relay and from_ramps else
                   "breakaway ramps" if from_ramps else "relay amplitudes")
-        an = _analyse(inp, width, modes=False, integrating=integ)
+        an = _analyse(inp, width, modes=False)
         # the model with the dead zone out carries the stages better: measure once more
         again = _stage_estimate(inp, an, width)
         sigma = min(s for _, s in windows)
@@ -407,8 +412,9 @@ def _identify(inp: AnalysisInputs) -> Identification:
             sigma = min(sigma, again.sigma)
             est = again
         sigma = max(sigma, 0.5 * min(abs(v - width) for v, _ in windows))
-        est = (replace(est, value=width, significant=True, sigma=sigma) if est is not None
-               else DeadZoneEstimate(width, width, sigma, True, (), method))
+        est = (replace(est, value=width, significant=width > 0, sigma=sigma)
+               if est is not None else DeadZoneEstimate(width, width, sigma, width > 0, (),
+                                                        method))
         if from_relay and from_ramps and abs(windows[0][0] - measured[0]) > \
                 JOINT_SIGMAS * math.hypot(windows[0][1], windows[-1][1]):
             warns.append(f"the breakaway ramps found a dead zone of {measured[0]:.3g} but the "
@@ -416,7 +422,7 @@ def _identify(inp: AnalysisInputs) -> Identification:
                          "that differs at rest and in motion, or backlash; the figure that "
                          f"explains the whole record best ({width:.3g}) was used")
     if not an.model.reliable:
-        an = _analyse(inp, width, modes=True, integrating=integ)
+        an = _analyse(inp, width, modes=True)
     if width > 0:
         share = width / max(d_final, 1e-300)
         sigma = est.sigma if est is not None else (measured[1] if measured else 0.0)

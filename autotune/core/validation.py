@@ -101,12 +101,10 @@ def slowest_time_constant(tf: DelayedTF) -> float:
 
 
 def check_model(tf: DelayedTF, points: Sequence[FourierPoint], dc: DcPoint | None,
-                record_span: float, integrating: bool = False) -> ModelCheck:
+                record_span: float) -> ModelCheck:
     """Check one candidate against the points, the measured static gain and the record.
 
-    record_span: length of the record (s); integrating: the record shows an integrating loop
-    (its mean output holds the PV still at every relay amplitude): a self-regulating candidate
-    is then not offered unless the measured static gain backs it. See the module docstring.
+    record_span: length of the record (s). See the module docstring for the rules.
     """
     reasons: list[str] = []
     misses: dict[int, float] = {}
@@ -131,10 +129,6 @@ def check_model(tf: DelayedTF, points: Sequence[FourierPoint], dc: DcPoint | Non
     else:
         k = tf.static_gain
         slow = slowest_time_constant(tf)
-        if integrating and not (dc is not None and dc.self_regulating):
-            ok = plausible = False
-            reasons.append("self-regulating, but the mean output holds the PV still at every "
-                           "relay amplitude: the loop is integrating")
         if dc is not None and dc.gain is not None:
             dc_miss = abs(k - dc.gain) / max(abs(dc.gain), 1e-300)
             allow = max(CHECK_SIGMAS * dc.sigma / max(abs(dc.gain), 1e-300), DC_TOLERANCE)
