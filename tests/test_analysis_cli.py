@@ -93,7 +93,7 @@ def test_analyze_takes_the_breakaway_dead_zone_out_as_the_live_run(tmp_path):
     _write_session(path, rec)
     text = path.read_text().splitlines()
     event = {"type": "event", "t": 0.0, "kind": "precheck", "check": "breakaway",
-             "detail": {"deadband": 0.2}}
+             "detail": {"deadband": 0.2, "spread": 0.0}}
     path.write_text("\n".join([text[0], json.dumps(event), *text[1:]]) + "\n")
     assert main(["analyze", str(path), "--json", str(tmp_path / "a.json")]) == 0
     assert main(["analyze", str(path), "--json", str(tmp_path / "b.json"),
@@ -101,7 +101,7 @@ def test_analyze_takes_the_breakaway_dead_zone_out_as_the_live_run(tmp_path):
     a = json.loads((tmp_path / "a.json").read_text())
     b = json.loads((tmp_path / "b.json").read_text())
     assert a["dead_zone"] == 0.2 and b["dead_zone"] == 0.0
-    assert a["identification"]["dead_zone"]["method"] == "breakaway ramps"
+    assert a["identification"]["dead_zone"]["method"] == "given"
     # the same record seen through a dead zone of 0.2 on a relay of 1: the plant saw 0.8,
     # so the analysis on the corrected output reports Ku lower by that factor
     assert a["ultimate_gain"] == pytest.approx(0.8 * b["ultimate_gain"], rel=1e-6)

@@ -202,7 +202,8 @@ def analysis_inputs(record: RunRecord) -> AnalysisInputs:
       the direction pulse's; none known: the smallest step in the record;
     - operating point (PV, output) for the static gain: the rest check's mean PV and output,
       unless the PV drifted at rest (the loop was not at an operating point);
-    - dead zone measured by the breakaway ramps: (value, spread) when they ran;
+    - dead zone measured by the breakaway ramps: (value, spread) when they ran (a spread of 0:
+      a figure given by hand, taken as it is);
     - convergence: the [relay] table's converge_tol and min_cycles.
     """
     t = np.asarray(record.t, dtype=float)
@@ -237,9 +238,12 @@ def analysis_inputs(record: RunRecord) -> AnalysisInputs:
     measured = None
     bk = record.breakaway
     if isinstance(bk, Mapping) and _num(bk, "deadband") is not None:
+        value = float(_num(bk, "deadband") or 0.0)
         spread = _num(bk, "spread")
-        measured = (float(_num(bk, "deadband") or 0.0),
-                    spread if spread is not None and math.isfinite(spread) else 0.0)
+        if spread is None:  # measured without a spread (first motion only): a quarter of it;
+            # a figure given by hand (no "method") counts as exact
+            spread = 0.25 * value if "method" in bk else 0.0
+        measured = (value, spread)
     r = record.relay or {}
     tol = _num(r, "converge_tol") or 0.02
     min_cycles = int(_num(r, "min_cycles") or 2)
@@ -371,6 +375,8 @@ def _identify(inp: AnalysisInputs) -> Identification:
     measured = inp.measured_dead_zone
     width = measured[0] if measured is not None else 0.0
     method = "breakaway ramps" if measured is not None and width > 0 else "none"
+    if measured is not None and measured[1] == 0.0 and width > 0:
+        method = "given"
     # an integrating loop under an asymmetric relay: the mean output at every amplitude says
     # the dead zone directly (it must hold the PV still)
     hold = _holding_estimate(inp)  # it suggests; the model comparison decides
@@ -383,11 +389,15 @@ def _identify(inp: AnalysisInputs) -> Identification:
     # the search window of the joint fit: every estimate that shows a dead zone, with
     # JOINT_SIGMAS of its uncertainty (the ramps' spread, the stage swing's standard error)
     windows = []
+    # a dead zone given without a spread (`autotune analyze --deadband U`) is taken as it is
+    given = measured is not None and measured[1] == 0.0
+    if given:
+        est = None
     if est is not None and est.significant:
         windows.append((est.raw, est.sigma))
-    if hold is not None and hold.significant:
+    if hold is not None and hold.significant and not given:
         windows.append((hold.raw, hold.sigma))
-    if measured is not None and measured[0] > 0:
+    if measured is not None and measured[0] > 0 and not given:
         windows.append((measured[0], max(measured[1], 0.01 * measured[0])))
     if windows:
         # each estimate with JOINT_SIGMAS of its uncertainty, and a tenth of itself at least
