@@ -29,6 +29,7 @@ from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 
+from autotune.core.relay import RelayPlan
 from autotune.errors import ConfigError
 
 LoopMode = Literal["auto", "host", "device"]
@@ -94,26 +95,39 @@ class SafetyConfig:
 
 @dataclass(frozen=True)
 class RelayConfig:
-    """The relay experiment.
+    """The relay experiment (the one place for its defaults: autotune.core.relay.RelayPlan
+    takes them through `relay_plan`).
 
     start_amplitude: first relay amplitude d (output units); None = a quarter of the output limit.
     target_amplitude: PV oscillation amplitude (peak, PV units) the adaptation aims for.
     hysteresis: relay hysteresis (PV units); None = from the rest precheck,
-        max(3 x noise, 2 x resolution).
+        max(3 x noise, resolution), the resolution from the board or the direction pulse.
+    asymmetry: relay asymmetry a in [0, 1): the high step is d (1 + a), the low one d (1 - a).
+        An asymmetric relay moves the mean output, so the mean PV change over whole periods
+        gives the static gain of a self-regulating loop, and the half-period ratio its
+        normalised dead time (Berner, Hägglund and Åström 2016). 0 = symmetric (then the bias
+        is balanced instead).
     max_cycles: the relay stops after this many cycles.
     max_time: the relay stops after this long (s, device time).
     bias: output at the operating point (output units), the relay switches bias +/- d.
     bias_tolerance: half-periods are balanced when they differ by less than this fraction.
-    amplitude_step_factor: d grows by at most this factor a cycle while the PV stays below target.
-    converge_tol: relative agreement of period and amplitude between the last cycles.
+    amplitude_step_factor: one correction raises d by at most this factor (a lower d is set
+        in one step; d also rises by it when the relay does not switch for stall_time).
+    amplitude_stages: the relay runs at this many amplitudes at least; two measure a dead zone
+        from the swing at both (1 = stay at the first amplitude that lands near the target).
+    converge_tol: relative agreement of period and amplitude between the last steady cycles
+        (widened to what the tick, PV noise and resolution can resolve).
     adapt_amplitude: adapt d towards the target amplitude (false: keep the start amplitude).
-    balance_bias: adjust the bias until the half-periods match (false: keep the bias).
-    stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot rise.
+    balance_bias: adjust the bias until the half-periods match (symmetric relay only).
+    stall_time: no relay switch for this long (s) raises d, or ends the run when it cannot
+        rise; used only when the loop's own time scale is unknown: the wait is 10 times the
+        direction pulse's response time, and after the first cycle three periods.
     amplitude_tolerance: d is left alone while the PV amplitude lies within this fraction of
         the target (widened to the PV's peak-reading error); the target is a guide, and every
         change of d costs cycles.
-    min_cycles: steady cycles (after the last settings change) needed before convergence can be
-        declared; the last three of them must agree within converge_tol.
+    min_cycles: steady cycles after the transient one that follows a change of the relay,
+        needed before convergence can be declared; the last two or three must agree within
+        converge_tol.
     confirm_samples: host loop: a switch needs this many consecutive samples beyond the
         hysteresis (2 rejects one-sample PV spikes at the cost of one sample of delay); 1 = off.
     """
@@ -121,17 +135,19 @@ class RelayConfig:
     start_amplitude: float | None = None
     target_amplitude: float = 0.5
     hysteresis: float | None = None
+    asymmetry: float = 0.2
     max_cycles: int = 20
     max_time: float = 120.0
     bias: float = 0.0
     bias_tolerance: float = 0.03
-    amplitude_step_factor: float = 1.5
+    amplitude_step_factor: float = 3.0
+    amplitude_stages: int = 2
     converge_tol: float = 0.02
     adapt_amplitude: bool = True
     balance_bias: bool = True
     stall_time: float = 5.0
-    min_cycles: int = 7
-    amplitude_tolerance: float = 0.25
+    min_cycles: int = 2
+    amplitude_tolerance: float = 0.3
     confirm_samples: int = 1
 
 
@@ -142,17 +158,19 @@ class PrecheckConfig:
     rest_time: output held at the bias this long to measure noise, drift, resolution (s).
     pulse_size: size of the direction pulse (output units); None = the relay start amplitude.
     pulse_timeout: the PV must respond to the pulse within this long (s).
-    breakaway: run two slow output ramps first to measure the deadband (turn it on for any
-        loop with static friction: an unmeasured dead zone inflates the ultimate gain by
-        d / (d - deadband); the relay then starts at twice the deadband at least and the
-        analysis works on the output minus the dead zone). Off: the deadband counts as 0.
+    breakaway: two slow output ramps measure the actuator dead zone (an unmeasured dead zone
+        inflates the ultimate gain by d / (d - dead zone)). "auto" (default): the relay's swing
+        at two amplitudes estimates the dead zone anyway, and the ramps run after the relay
+        when that estimate shows one; true: the ramps run before the relay (which then starts
+        at twice the dead zone at least); false: never (the relay's estimate still corrects
+        the figures).
     breakaway_rate: ramp rate of the breakaway test (output units per s).
     """
 
     rest_time: float = 1.0
     pulse_size: float | None = None
     pulse_timeout: float = 2.0
-    breakaway: bool = False
+    breakaway: bool | Literal["auto"] = "auto"
     breakaway_rate: float = 5.0
 
 
@@ -483,14 +501,19 @@ def validate(cfg: Config, source: str | None = None) -> None:
     _positive(src, "relay.converge_tol", r.converge_tol)
     _positive(src, "relay.amplitude_tolerance", r.amplitude_tolerance)
     _positive(src, "relay.stall_time", r.stall_time)
-    if r.min_cycles < 2:
-        raise ConfigError(src, "relay.min_cycles", f"must be >= 2, got {r.min_cycles}")
+    if r.min_cycles < 1:
+        raise ConfigError(src, "relay.min_cycles", f"must be >= 1, got {r.min_cycles}")
     if r.min_cycles > r.max_cycles:
         raise ConfigError(src, "relay.min_cycles", f"{r.min_cycles} is more than "
                           f"relay.max_cycles {r.max_cycles}")
     if r.amplitude_step_factor <= 1.0:
         raise ConfigError(src, "relay.amplitude_step_factor",
                           f"must be > 1, got {r.amplitude_step_factor}")
+    if not 0.0 <= r.asymmetry < 0.9:
+        raise ConfigError(src, "relay.asymmetry", f"must be in [0, 0.9), got {r.asymmetry}")
+    if not 1 <= r.amplitude_stages <= 5:
+        raise ConfigError(src, "relay.amplitude_stages",
+                          f"must be 1..5, got {r.amplitude_stages}")
     _positive(src, "prechecks.rest_time", p.rest_time)
     _positive(src, "prechecks.pulse_size", p.pulse_size, optional=True)
     _positive(src, "prechecks.pulse_timeout", p.pulse_timeout)
@@ -596,3 +619,36 @@ def check_against_noise(cfg: Config, noise_std: float, resolution: float) -> Non
                           f"{cfg.relay.target_amplitude:g} is lost in the measured noise "
                           f"(noise {noise_std:.3g}, resolution {resolution:.3g}; need at least "
                           f"{5 * floor:.3g})")
+
+
+def relay_plan(relay: RelayConfig, *, start_amplitude: float | None = None,
+               pv_window: float | None = None, deadband: float = 0.0, tick: float = 0.0,
+               pv_noise: float = 0.0, pv_resolution: float = 0.0,
+               response_time: float = 0.0, **internal: Any) -> RelayPlan:
+    """The relay experiment's plan from the config's [relay] table.
+
+    start_amplitude (output units; None: the table's, which may be None too), pv_window (PV
+    units, from [safety]), and what the prechecks measured: deadband (output units), tick (s),
+    pv_noise and pv_resolution (PV units), response_time (s: the direction pulse's; the relay
+    counts as stalled after 10 times it without a switch, the table's stall_time standing in
+    when it is unknown; common practice, no source). `internal`: RelayPlan's own settings (e.g.
+    max_amplitude, settle_cycles), for tests and special runs.
+    """
+    return RelayPlan(
+        target_amplitude=relay.target_amplitude,
+        amplitude_step_factor=relay.amplitude_step_factor,
+        amplitude_tolerance=relay.amplitude_tolerance,
+        amplitude_stages=relay.amplitude_stages,
+        adapt_amplitude=relay.adapt_amplitude,
+        balance_bias=relay.balance_bias,
+        bias_tolerance=relay.bias_tolerance,
+        max_cycles=relay.max_cycles,
+        max_time=relay.max_time,
+        converge_tol=relay.converge_tol,
+        min_cycles=relay.min_cycles,
+        stall_time=(None if relay.stall_time is None else
+                    10.0 * response_time if response_time > 0 else relay.stall_time),
+        start_amplitude=start_amplitude if start_amplitude is not None
+        else relay.start_amplitude,
+        pv_window=pv_window, deadband=deadband, tick=tick, pv_noise=pv_noise,
+        pv_resolution=pv_resolution, **internal)

@@ -154,3 +154,150 @@ def batch_run(name: str, noise_frac: float, *, cycles: int = 12, seed: int = 1,
     rec = run_relay(num, den, delay, ts=ts, amplitude=1.0, hysteresis=hyst, noise=noise,
                     resolution=resolution, n_cycles=cycles, period_guess=1.3 * tu, seed=seed)
     return rec, ku, tu
+
+
+# ---------------------------------------------------------------------------- whole tune run
+@dataclass(frozen=True)
+class TuneSim:
+    """A simulated tune run through the real relay state machine (test data).
+
+    t, pv, out: every sample (s, PV units, output units); phase: "rest", "direction", "relay"
+    per sample; rest, direction: the precheck reports; settings: the relay settings as
+    finally used; experiment: the RelayExperiment after the run; t_pulse: start of the
+    direction pulse (first motion, s); ts: tick (s).
+    """
+
+    t: np.ndarray
+    pv: np.ndarray
+    out: np.ndarray
+    phase: np.ndarray
+    rest: object
+    direction: object
+    settings: RelaySettings
+    experiment: object
+    t_pulse: float
+    ts: float
+    hysteresis: float
+
+    def relay(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        sel = self.phase == "relay"
+        return self.t[sel], self.pv[sel], self.out[sel]
+
+
+def simulate_tune(num, den, delay: float, *, ts: float, relay_cfg=None, output_limit: float = 30.0,
+                  pv_window: float = 5.0, noise: float = 0.0, resolution: float = 0.0,
+                  deadband: float = 0.0, load: float = 0.0, out_delay: int = 0,
+                  rest_time: float = 1.0, pulse_timeout: float = 2.0, seed: int = 0,
+                  bias: float = 0.0) -> TuneSim:
+    """Rest, direction pulse and relay experiment on a simulated loop, decided by the same pure
+    functions as the tune runner (autotune.core.prechecks, autotune.config.relay_plan,
+    autotune.core.relay.RelayExperiment).
+
+    The plant (num/den with `delay`, s) sits behind an actuator that saturates at
+    `output_limit` and has a dead zone of half-width `deadband` (output units), with a constant
+    `load` (output units) at its input from the start; the sensor adds noise (std, PV units)
+    and quantises to `resolution`. Each tick of `ts` s the PV is sampled, the output decided
+    and held `out_delay` ticks later (0: the device relay; 1: a host loop one tick behind).
+    relay_cfg: an autotune.config.RelayConfig (default: the config's defaults).
+    """
+    from autotune.config import RelayConfig, relay_plan
+    from autotune.core import prechecks as pre
+    from autotune.core.relay import RelayExperiment
+    from mock_device.plant import Actuator
+
+    rc = relay_cfg if relay_cfg is not None else RelayConfig()
+    plant = LtiPlant(num, den, delay, max_step=ts)
+    act = Actuator(limit=max(output_limit, 1e-9) * 10.0, deadband=deadband)
+    sensor = Sensor(noise=noise, resolution=resolution, rng=np.random.default_rng(seed))
+    # settle the load's effect on a self-regulating plant before the run (as a board at rest)
+    if load and plant.den[-1] != 0.0:
+        for _ in range(int(20 * max(1.0, sum(abs(c) for c in plant.den[:-1])) / ts) + 1):
+            plant.advance(act.apply(bias) + load, ts)
+    ts_, pv_, out_, ph_ = [], [], [], []
+    queue = [bias] * out_delay
+    t = 0.0
+
+    def tick(decide, phase: str) -> float:
+        nonlocal t
+        y = sensor.read(plant.y)
+        u = decide(t, y)
+        queue.append(u)
+        applied = queue.pop(0)
+        ts_.append(t)
+        pv_.append(y)
+        out_.append(applied)
+        ph_.append(phase)
+        plant.advance(act.apply(applied) + load, ts)
+        t += ts
+        return y
+
+    n_rest = max(3, int(round(rest_time / ts)))
+    for _ in range(n_rest):
+        tick(lambda _t, _y: bias, "rest")
+    rest = pre.assess_rest(np.array(ts_), np.array(pv_), np.array(out_), pv_window=pv_window)
+    start_amp = rc.start_amplitude if rc.start_amplitude is not None else 0.25 * output_limit
+    threshold = pre.direction_threshold(rest.noise_std, rc.target_amplitude)
+    drift = rest.significant_drift
+    t_mid = float(np.mean(ts_))
+    base = rest.mean
+    t_pulse = t
+    window: list[float] = []
+    i0 = len(ts_)
+    while t - t_pulse < pulse_timeout:
+        y = tick(lambda _t, _y: bias + start_amp, "direction")
+        window.append(y - drift * (t - ts - t_mid))
+        recent = sorted(window[-3:])
+        if abs(recent[len(recent) // 2] - base) > threshold:
+            break
+    tt, yy = np.array(ts_), np.array(pv_)
+    d = pre.assess_direction(tt, yy - drift * (tt - t_mid), t_pulse, +1, rest.noise_std,
+                             min_change=threshold)
+    from dataclasses import replace as _replace
+
+    d = _replace(d, resolution=pre.smallest_step(yy[i0:]))
+    res = pre.pv_resolution(0.0, rest.resolution, d.resolution)
+    hyst = rc.hysteresis if rc.hysteresis is not None else pre.relay_hysteresis(rest.noise_std,
+                                                                                res)
+    settings = RelaySettings(centre=rest.mean, bias=bias, amplitude=start_amp,
+                             hysteresis=hyst, asymmetry=rc.asymmetry)
+    response = (d.t_response - t_pulse) if d.t_response is not None else pulse_timeout
+    plan = relay_plan(rc, start_amplitude=start_amp, pv_window=pv_window, tick=ts,
+                      pv_noise=rest.noise_std, pv_resolution=res, response_time=response)
+    exp = RelayExperiment(plan, settings, output_limit, pv_start=rest.mean)
+    steps = 0
+    limit = int(round((rc.max_time + 10.0) / ts))
+    while not exp.done and steps < limit:
+        tick(lambda tk, yk: exp.update(tk, yk).output, "relay")
+        steps += 1
+    return TuneSim(np.array(ts_), np.array(pv_), np.array(out_), np.array(ph_, dtype=object),
+                   rest, d, exp.settings, exp, t_pulse, ts, hyst)
+
+
+def sim_record(sim: TuneSim, relay_cfg=None, output_limit: float = 30.0,
+               pv_resolution: float = 0.0):
+    """The autotune.core.identify.RunRecord of a simulated run (what the tune runner builds)."""
+    from dataclasses import asdict
+
+    from autotune.config import RelayConfig
+    from autotune.core.identify import RelaySettingsRecord, RunRecord
+
+    rc = relay_cfg if relay_cfg is not None else RelayConfig()
+    phase = np.array([{"rest": "precheck:rest", "direction": "precheck:direction"}.get(p, p)
+                      for p in sim.phase], dtype=object)
+    s = sim.settings
+    settings = RelaySettingsRecord(s.centre, s.bias, s.amplitude, s.hysteresis, s.asymmetry)
+    return RunRecord(t=sim.t, y=sim.pv, u=sim.out, phase=phase, settings=settings, state=None,
+                     tick=sim.ts, output_limit=output_limit, relay=asdict(rc),
+                     rest=sim.rest.as_dict(), direction=sim.direction.as_dict(),
+                     pv_resolution=pv_resolution, t_first_motion=sim.t_pulse,
+                     end_reason=sim.experiment.end_reason)
+
+
+def make_plan(**kw):
+    """A RelayPlan with the config's [relay] defaults (autotune.config.RelayConfig, the one place
+    for them) and the given overrides (config keys and the plan's own settings alike)."""
+    from autotune.config import RelayConfig, relay_plan
+
+    keys = set(RelayConfig.__dataclass_fields__) - {"start_amplitude"}
+    cfg = {k: kw.pop(k) for k in list(kw) if k in keys}
+    return relay_plan(RelayConfig(**cfg), **kw)

@@ -1,9 +1,10 @@
-"""Tests for autotune.core.analysis: cycles, classic and refined ultimate point, warnings.
+"""Tests for autotune.core.analysis: cycles, plain and refined ultimate point, warnings.
 
 Truth: Ku and Tu of the continuous plant from python-control's exact frequency response with
 the dead time applied exactly (tests/relaysim.true_ultimate). Documented choice (see the
 analysis module docstring): the refined figures exclude the device tick's sample-and-hold, so
-they are compared with the continuous plant's Ku, Tu; the classic figures keep it.
+they are compared with the continuous plant's Ku, Tu; the plain (describing-function) figures
+keep it.
 """
 
 from __future__ import annotations
@@ -17,11 +18,16 @@ import pytest
 from autotune.core.analysis import (
     AnalysisError,
     analyse_relay,
-    classic_estimate,
-    converged_cycles,
-    cycles_to_converge,
     describing_function_point,
+    df_estimate,
     extract_cycles,
+)
+from autotune.core.convergence import cycles_to_converge, steady_converged
+from autotune.core.identify import (
+    RelaySettingsRecord,
+    RunRecord,
+    analysis_inputs,
+    identify,
     result_fields,
 )
 from tests.relaysim import BATCH, batch_run, run_relay, true_ultimate
@@ -59,17 +65,17 @@ def test_refined_figures_with_noise_within_5_and_3_percent(batch, name):
 
 
 @pytest.mark.parametrize("nf", NOISE)
-def test_refined_beats_classic_where_they_differ_beyond_the_uncertainty(batch, nf):
+def test_refined_beats_plain_where_they_differ_beyond_the_uncertainty(batch, nf):
     compared = 0
     for name in BATCH:
         an, ku, tu = batch[name, nf]
-        if abs(an.ku - an.ku_classic) / an.ku > an.uncertainty["ultimate_gain"]:
-            assert abs(an.ku / ku - 1) < abs(an.ku_classic / ku - 1), name
+        if abs(an.ku - an.ku_df) / an.ku > an.uncertainty["ultimate_gain"]:
+            assert abs(an.ku / ku - 1) < abs(an.ku_df / ku - 1), name
             compared += 1
-        if abs(an.tu - an.tu_classic) / an.tu > an.uncertainty["ultimate_period"]:
-            assert abs(an.tu / tu - 1) < abs(an.tu_classic / tu - 1), name
+        if abs(an.tu - an.tu_df) / an.tu > an.uncertainty["ultimate_period"]:
+            assert abs(an.tu / tu - 1) < abs(an.tu_df / tu - 1), name
             compared += 1
-    assert compared >= len(BATCH)  # the classic figures are off on most of the batch
+    assert compared >= len(BATCH)  # the plain figures are off on most of the batch
 
 
 @pytest.mark.parametrize("nf", NOISE)
@@ -80,11 +86,11 @@ def test_uncertainty_covers_the_actual_error(batch, nf):
         assert abs(an.tu / tu - 1) <= 2 * an.uncertainty["ultimate_period"] + 0.002, name
 
 
-def test_classic_figures_show_the_known_describing_function_error(batch):
+def test_plain_figures_show_the_known_describing_function_error(batch):
     # The plain describing function is off by up to about 22% in Ku and 7% in Tu on this
-    # batch without noise (the analysis issue's figure); our classic estimate must show it.
-    worst_ku = max(abs(batch[n, 0.0][0].ku_classic / batch[n, 0.0][1] - 1) for n in BATCH)
-    worst_tu = max(abs(batch[n, 0.0][0].tu_classic / batch[n, 0.0][2] - 1) for n in BATCH)
+    # batch without noise (the analysis issue's figure); our plain estimate must show it.
+    worst_ku = max(abs(batch[n, 0.0][0].ku_df / batch[n, 0.0][1] - 1) for n in BATCH)
+    worst_tu = max(abs(batch[n, 0.0][0].tu_df / batch[n, 0.0][2] - 1) for n in BATCH)
     assert 0.15 < worst_ku < 0.30
     assert 0.04 < worst_tu < 0.12
 
@@ -225,23 +231,23 @@ def test_amplitude_change_cycles_are_dropped():
 def test_converged_cycles_and_cycles_to_converge():
     rec, _, _ = batch_run("fopdt T=1", 0.0, cycles=8)
     cyc = extract_cycles(rec.t, rec.pv, rec.out, drop_transient=0)
-    assert converged_cycles(cyc, 0.02)
-    assert not converged_cycles(cyc[:1])
+    assert steady_converged(cyc, 0.02)
+    assert not steady_converged(cyc[:2])  # the first is the transient: one left
     n = cycles_to_converge(cyc)
-    assert n is not None and 2 <= n <= len(cyc)
+    assert n is not None and 3 <= n <= len(cyc)
 
     class Fig:  # autotune.core.relay.CycleFigures has period and amplitude_pp
         def __init__(self, p, a):
             self.period, self.amplitude_pp = p, a
 
-    assert converged_cycles([Fig(1.0, 2.0), Fig(1.01, 2.01)], 0.02)
-    assert not converged_cycles([Fig(1.0, 2.0), Fig(1.05, 2.0)], 0.02)
+    assert steady_converged([Fig(2.0, 1.0), Fig(1.0, 2.0), Fig(1.01, 2.01)], 0.02)
+    assert not steady_converged([Fig(2.0, 1.0), Fig(1.0, 2.0), Fig(1.05, 2.0)], 0.02)
 
 
-def test_classic_estimate_matches_the_formula():
+def test_df_estimate_matches_the_formula():
     rec, _, _ = batch_run("sopdt T=1", 0.0, cycles=8)
     cyc = extract_cycles(rec.t, rec.pv, rec.out)
-    ku_c, tu_c = classic_estimate(cyc, hysteresis=0.0)
+    ku_c, tu_c = df_estimate(cyc, hysteresis=0.0)
     a = np.mean([c.amplitude_pp for c in cyc]) / 2
     assert ku_c == pytest.approx(4 * 1.0 / (math.pi * a))
     assert tu_c == pytest.approx(np.mean([c.period for c in cyc]))
@@ -269,7 +275,7 @@ def test_warning_saturation():
 
 
 def test_warning_oscillation_near_the_noise_and_too_few_cycles():
-    rec, _, _ = batch_run("sopdt T=1", 0.25, cycles=4)
+    rec, _, _ = batch_run("sopdt T=1", 0.25, cycles=3)
     an = analyse_relay(rec.t, rec.pv, rec.out, rec.settings, ts=rec.ts, noise_std=rec.noise)
     assert _warned(an, "times the PV noise")
     assert _warned(an, "steady cycle")
@@ -289,16 +295,28 @@ def test_no_cycle_raises_an_actionable_error():
 
 
 # ---------------------------------------------------------------------------- result fields
-def test_result_fields_hold_the_contract_names(batch):
-    an, _, _ = batch["sopdt T=1", 0.02]
-    r = result_fields(an)
-    for key in ("ultimate_gain", "ultimate_period", "ultimate_gain_classic",
-                "ultimate_period_classic", "uncertainty", "model", "cycles_used", "relay"):
+def test_result_fields_hold_the_contract_names():
+    rec, _, _ = batch_run("sopdt T=1", 0.02, cycles=8)
+    st = rec.settings
+    record = RunRecord(t=rec.t, y=rec.pv, u=rec.out,
+                       phase=np.full(rec.t.shape, "relay", dtype=object),
+                       settings=RelaySettingsRecord(st.centre, st.bias, st.amplitude,
+                                                    st.hysteresis),
+                       tick=rec.ts)
+    r = result_fields(identify(analysis_inputs(record)))
+    # the result.json contract (ARCHITECTURE.md)
+    for key in ("ultimate_gain", "ultimate_period", "ultimate_gain_df", "ultimate_period_df",
+                "static_gain", "velocity_gain", "normalized_dead_time", "dead_zone",
+                "powered_time", "powered_time_tu", "uncertainty", "model", "cycles_used",
+                "relay", "points"):
         assert key in r
+    assert not any(k.endswith("_classic") for k in r)
     assert set(r["model"]) >= {"kind", "params"}
     assert set(r["relay"]) >= {"amplitude", "hysteresis", "bias"}
-    assert set(r["uncertainty"]) >= {"ultimate_gain", "ultimate_period"}
+    assert set(r["uncertainty"]) >= {"ultimate_gain", "ultimate_period", "ultimate_gain_df",
+                                     "static_gain", "dead_zone"}
     assert r["delays_included"] == "plant"
+    assert r["points"] and all({"w", "re", "im", "uncertainty"} <= set(p) for p in r["points"])
     # the hold's delay (ts/2) lowers the ultimate gain and lengthens the period
     assert r["ultimate_gain_with_hold"] < r["ultimate_gain"]
     assert r["ultimate_period_with_hold"] > r["ultimate_period"]

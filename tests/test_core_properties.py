@@ -13,8 +13,9 @@ import numpy as np
 from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
-from autotune.core.relay import Relay, RelayExperiment, RelayPlan, RelaySettings
+from autotune.core.relay import Relay, RelayExperiment, RelaySettings
 from autotune.core.safety import SafetyGuard, SafetyLimits
+from tests.relaysim import make_plan
 
 finite = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False, allow_infinity=False)
 any_pv = st.one_of(finite, finite, finite, st.sampled_from([math.nan, math.inf, -math.inf]))
@@ -128,7 +129,7 @@ def test_relay_output_always_within_limit(s: RelaySettings, limit: float, seq) -
        target=st.floats(min_value=0.01, max_value=10.0), window=st.one_of(st.none(), positive), stall=st.one_of(st.none(), positive))
 def test_experiment_output_always_within_limit(ls, seq, target, window, stall) -> None:
     limit, s = ls
-    plan = RelayPlan(target_amplitude=target, pv_window=window, stall_time=stall, max_cycles=5,
+    plan = make_plan(target_amplitude=target, pv_window=window, stall_time=stall, max_cycles=5,
                      settle_cycles=1)
     exp = RelayExperiment(plan, s, limit)
     done_at = None
@@ -154,7 +155,7 @@ def test_device_loop_settings_stay_within_limit(ls, seq, target) -> None:
     """Whatever the board reports, every setting the host asks for fits the output limit
     (amplitude raises and bias moves never push a level past it)."""
     limit, s = ls
-    plan = RelayPlan(target_amplitude=target, max_cycles=5, settle_cycles=1, stall_time=0.5)
+    plan = make_plan(target_amplitude=target, max_cycles=5, settle_cycles=1, stall_time=0.5)
     exp = RelayExperiment(plan, s, limit)
     for t, pv, out in seq:
         step = exp.observe(t, pv, out)
@@ -199,7 +200,7 @@ def test_violation_always_stops_the_experiment(limits, s, seq, host) -> None:
     t_start = seq[0][0]
     pv_start = s.centre
     guard = SafetyGuard(limits, pv_start=pv_start, t_start=t_start)
-    plan = RelayPlan(target_amplitude=1.0, max_cycles=10_000, settle_cycles=1)
+    plan = make_plan(target_amplitude=1.0, max_cycles=10_000, settle_cycles=1)
     exp = RelayExperiment(plan, s, limits.output_limit, guard=guard)
     # the reference sees the outputs the guard sees: host loop, the relay's own (never beyond
     # the limit); device loop, the reported ones

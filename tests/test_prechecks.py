@@ -53,7 +53,7 @@ def test_rest_coarse_resolution_sets_hysteresis() -> None:
     r = assess_rest(t, pv, np.zeros(t.size))
     assert r.resolution == pytest.approx(0.1)
     assert 3 * r.noise_std < 0.2
-    assert r.suggested_hysteresis == pytest.approx(0.2)
+    assert r.suggested_hysteresis == pytest.approx(0.1)  # one step (prechecks.relay_hysteresis)
 
 
 def test_rest_perfect_sensor() -> None:

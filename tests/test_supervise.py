@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
+from autotune.core.relay import RelayExperiment, RelaySettings
 from autotune.core.safety import SafetyGuard, SafetyLimits
 from autotune.core.supervise import (
     LinkCounters,
@@ -21,6 +21,7 @@ from autotune.core.supervise import (
     Supervisor,
     noise_band,
 )
+from tests.relaysim import make_plan
 
 TICK = 0.01  # s
 
@@ -180,7 +181,7 @@ def spiky_relay_run(confirm: int, spikes: list[int], n: int = 3000,
                     spike: float = 1.5) -> tuple[RelayExperiment, list[float]]:
     """Host-loop relay on a discrete first-order-plus-dead-time plant (K=1, T=1 s, L=0.2 s,
     exact ZOH at TICK), with one-sample PV spikes at the given sample indices."""
-    plan = RelayPlan(target_amplitude=0.5, adapt_amplitude=False, balance_bias=False,
+    plan = make_plan(target_amplitude=0.5, adapt_amplitude=False, balance_bias=False,
                      max_cycles=1000)
     exp = RelayExperiment(plan, RelaySettings(0.0, 0.0, 1.0, 0.05), 10.0,
                           converged=lambda cycles: False, confirm_samples=confirm)
@@ -218,7 +219,7 @@ def test_confirmed_switching_ignores_single_spikes() -> None:
 
 
 def test_confirm_samples_validation() -> None:
-    plan = RelayPlan(target_amplitude=0.5)
+    plan = make_plan(target_amplitude=0.5)
     with pytest.raises(ValueError):
         RelayExperiment(plan, RelaySettings(0.0, 0.0, 1.0, 0.05), 10.0, confirm_samples=0)
 
@@ -232,7 +233,7 @@ def test_confirmed_relay_output_within_limits_and_guard_stops(pvs: list[float],
     (the property of tests/test_core_properties.py, here with switch confirmation on)."""
     limits = SafetyLimits(output_limit=5.0, pv_window=10.0)
     guard = SafetyGuard(limits, 0.0, 0.0)
-    plan = RelayPlan(target_amplitude=1.0, pv_window=10.0)
+    plan = make_plan(target_amplitude=1.0, pv_window=10.0)
     exp = RelayExperiment(plan, RelaySettings(0.0, 0.0, 4.0, 0.1), 5.0, guard=guard,
                           confirm_samples=confirm)
     for k, pv in enumerate(pvs):

@@ -15,18 +15,18 @@ from typing import Any
 
 import numpy as np
 
-from autotune.commands.analyze import _finite, _get, session_inputs
-from autotune.core import analysis, design
+from autotune.core import analysis, design, identify
 from autotune.core.conditions import (
     FIGURES,
     Comparison,
     LoopFigures,
     LoopIdentity,
     compare_figures,
-    condition_of_analysis,
-    figures_of_analysis,
+    condition_of_identification,
+    figures_of_identification,
     loop_mismatch,
 )
+from autotune.core.session_record import RECORD_PHASES, finite, get_path, session_record
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, UserError
 from autotune.gainsfile import GainsFileError, GainsRecord, read_gains_file
 from autotune.recorder import Session, read_session, write_result
@@ -53,11 +53,11 @@ class LoadedSession:
 def loop_of(header: dict[str, Any]) -> LoopIdentity:
     """The loop a session header names: axis, units (header `units`: {"pv", "output"}, where
     recorded) and the device tick (s)."""
-    axis = header.get("axis", _get(header, "config", "connection", "axis"))
+    axis = header.get("axis", get_path(header, "config", "connection", "axis"))
     units = header.get("units") if isinstance(header.get("units"), dict) else {}
     return LoopIdentity(axis=int(axis) if isinstance(axis, int) else 0,
                         pv_units=units.get("pv"), output_units=units.get("output"),
-                        tick=_finite(_get(header, "device", "tick")))
+                        tick=finite(get_path(header, "device", "tick")))
 
 
 def _labels(paths: Sequence[str]) -> list[str]:
@@ -69,31 +69,26 @@ def _labels(paths: Sequence[str]) -> list[str]:
 
 
 def load_session(path: str, name: str, deadband: float | None = None) -> LoadedSession:
-    """Read and analyse one session as `autotune analyze` does (relay samples, settings, tick,
-    rest noise, the breakaway dead zone taken out of the output; `deadband` output units
-    overrides it, 0 = none). Unreadable files raise
-    SessionFileError (exit 2, naming the file); a session whose relay cannot be analysed or
-    did not converge is returned with `condition` None and the reason in its figures."""
-    session = read_session(path)
+    """Read and analyse one session as `autotune analyze` does (the one run-record builder,
+    autotune.core.session_record, and the identification; `deadband` output units overrides
+    the dead zone the run decided, 0 = none). Unreadable files raise SessionFileError (exit 2,
+    naming the file); a session whose relay cannot be analysed or did not converge is
+    returned with `condition` None and the reason in its figures."""
+    session = read_session(path, phases=RECORD_PHASES)
     loop = loop_of(session.header)
-    inp = session_inputs(session)
-    if inp["t"].size < 10:
+    record = session_record(session, deadband)
+    if int(np.sum(record.phase == "relay")) < 10:
         return LoadedSession(name, path, session, loop,
                              LoopFigures(name, False, "no relay samples to analyse"), None)
-    settings, u = inp["settings"], inp["u"]
-    db = float(inp["deadband"] if deadband is None else deadband)
-    if db > 0:
-        u = np.where(np.abs(u) <= db, 0.0, u - np.sign(u) * db)
-        settings = dataclasses.replace(settings, amplitude=max(settings.amplitude - db, 1e-9))
     try:
-        an = analysis.analyse_relay(inp["t"], inp["y"], u, settings, noise_std=inp["noise_std"],
-                                    ts=inp["ts"], output_limit=inp["output_limit"])
+        ident = identify.identify(identify.analysis_inputs(record))
     except analysis.AnalysisError as exc:
         return LoadedSession(name, path, session, loop, LoopFigures(name, False, str(exc)), None)
-    figs = figures_of_analysis(name, an, dead_zone=db if db > 0 else None)
-    cond = condition_of_analysis(name, an) if figs.converged else None
+    an = ident.analysis
+    figs = figures_of_identification(name, ident)
+    cond = condition_of_identification(name, ident) if figs.converged else None
     return LoadedSession(name, path, session, loop, figs, cond, an,
-                         {"source": path, **analysis.result_fields(an)})
+                         {"source": path, **identify.result_fields(ident)})
 
 
 def load_sessions(paths: Sequence[str], deadband: float | None = None) -> list[LoadedSession]:
@@ -111,9 +106,9 @@ def spec_of(s: LoadedSession, **extra: Any) -> design.DesignSpec:
     """The DesignSpec a session's own run used: its config's [design], output limit, target
     amplitude and tick (extra: further DesignSpec fields)."""
     h = s.session.header
-    return design.spec_from_config(_get(h, "config", "design") or {},
-                                   _finite(_get(h, "config", "safety", "output_limit")),
-                                   _finite(_get(h, "config", "relay", "target_amplitude")),
+    return design.spec_from_config(get_path(h, "config", "design") or {},
+                                   finite(get_path(h, "config", "safety", "output_limit")),
+                                   finite(get_path(h, "config", "relay", "target_amplitude")),
                                    s.loop.tick, **extra)
 
 

@@ -28,11 +28,23 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from autotune.core.harmonics import FourierPoint, fourier_coefficients, fourier_points
+from autotune.core.convergence import (
+    cycles_to_converge,
+    steady_converged,
+    steady_tolerances,
+    switch_jitter,
+)
+from autotune.core.harmonics import (
+    FourierPoint,
+    fourier_coefficients,
+    fourier_points,
+    local_ultimate,
+    with_spread,
+)
 from autotune.core.lti import DelayedTF
 from autotune.core.model import CANDIDATES, FittedModel, fit_models
 from autotune.core.prechecks import smallest_step
-from autotune.core.relay import measurement_tolerances, steady_converged
+from autotune.core.validation import DcPoint, check_model, point_allowance
 
 DELAYS_INCLUDED = "plant"
 FIT_SAMPLES = 3000  # records longer than this ...
@@ -235,54 +247,7 @@ def extract_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, *, centre: float
     return kept
 
 
-def steady_tolerances(period: float, amplitude_pp: float, *, tick: float = 0.0,
-                      noise_std: float = 0.0, resolution: float = 0.0,
-                      hysteresis: float = 0.0) -> tuple[float, float]:
-    """Relative (period, amplitude) differences steady cycles can show from measurement alone.
-
-    period (s), amplitude_pp (PV units, peak to peak), tick (s), noise_std, resolution,
-    hysteresis (PV units). autotune.core.relay.measurement_tolerances (switching jitter of the
-    period; peak-reading error of the amplitude); the amplitude tolerance is at least the
-    period's, since the jitter that moves a switch moves the swing with it (for an integrating
-    plant the swing grows in proportion to the half-period; common practice, no source).
-    """
-    tol_p, tol_a = measurement_tolerances(period, amplitude_pp, hysteresis=hysteresis,
-                                          tick=tick, noise_std=noise_std,
-                                          resolution=resolution)
-    if not (math.isfinite(tol_p) and math.isfinite(tol_a)):
-        return 0.0, 0.0
-    return tol_p, max(tol_a, tol_p)
-
-
-def converged_cycles(cycles: Sequence[Any], tol: float = 0.02) -> bool:
-    """True when the last two cycles agree within `tol` (relative) in period and amplitude.
-
-    Takes this module's Cycle or autotune.core.relay's CycleFigures (anything with `period` and
-    `amplitude_h1` or `amplitude_pp`); the first-harmonic amplitude is used when present
-    (robust to noise).
-    """
-    if len(cycles) < 2:
-        return False
-    a, b = cycles[-2], cycles[-1]
-
-    def amp(c: Any) -> float:
-        return float(getattr(c, "amplitude_h1", None) or c.amplitude_pp)
-
-    def close(x: float, z: float) -> bool:
-        return abs(x - z) <= tol * max(abs(x), abs(z), 1e-300)
-
-    return close(a.period, b.period) and close(amp(a), amp(b))
-
-
-def cycles_to_converge(cycles: Sequence[Any], tol: float = 0.02) -> int | None:
-    """Number of cycles (counted from the first given) after which converged_cycles holds."""
-    for n in range(2, len(cycles) + 1):
-        if converged_cycles(cycles[:n], tol):
-            return n
-    return None
-
-
-# ---------------------------------------------------------------------------- classic figures
+# ---------------------------------------------------------------------------- plain figures
 def describing_function_point(amplitude_d: float, a: float, hysteresis: float = 0.0) -> complex:
     """Identified G(j w) of a relay oscillation (Åström and Hägglund 1984).
 
@@ -298,8 +263,8 @@ def describing_function_point(amplitude_d: float, a: float, hysteresis: float = 
                    np.exp(1j * (-math.pi + math.asin(hysteresis / a))))
 
 
-def classic_estimate(cycles: Sequence[Cycle], amplitude_d: float | None = None,
-                     hysteresis: float = 0.0) -> tuple[float, float]:
+def df_estimate(cycles: Sequence[Cycle], amplitude_d: float | None = None,
+                hysteresis: float = 0.0) -> tuple[float, float]:
     """Plain describing-function Ku = 4 d / (pi a) (output/PV units) and Tu = mean period (s).
 
     a is the mean half peak-to-peak, d the mean relay half-step (or `amplitude_d`); the
@@ -309,10 +274,10 @@ def classic_estimate(cycles: Sequence[Cycle], amplitude_d: float | None = None,
         raise AnalysisError("no complete relay cycle")
     a = float(np.mean([c.amplitude_pp for c in cycles])) / 2
     d = float(np.mean([c.amplitude_d for c in cycles])) if amplitude_d is None else amplitude_d
-    return classic_ultimate_gain(d, a, hysteresis), float(np.mean([c.period for c in cycles]))
+    return df_ultimate_gain(d, a, hysteresis), float(np.mean([c.period for c in cycles]))
 
 
-def classic_ultimate_gain(amplitude_d: float, a: float, hysteresis: float = 0.0) -> float:
+def df_ultimate_gain(amplitude_d: float, a: float, hysteresis: float = 0.0) -> float:
     """Plain describing-function Ku = 4 d / (pi a) (output units per PV unit) of one
     oscillation: d the relay half-step, a half the PV peak-to-peak (NaN when a <= 0)."""
     if a <= 0:
@@ -330,24 +295,119 @@ def estimate_noise(y: np.ndarray) -> float:
     return 1.4826 * mad / math.sqrt(6.0)
 
 
+def relay_cycles(t: np.ndarray, y: np.ndarray, u: np.ndarray, *, centre: float = 0.0,
+                 state: np.ndarray | None = None) -> list[Cycle]:
+    """Every complete relay cycle of the record (transients included), in order."""
+    t = np.asarray(t, dtype=float)
+    y = np.asarray(y, dtype=float)
+    u = np.asarray(u, dtype=float)
+    idx, new = switch_indices(u, state)
+    return _raw_cycles(t, y, u, idx[new > 0], idx[new < 0], centre)
+
+
+# ---------------------------------------------------------------------------- static gain
+def dc_point(t: np.ndarray, y: np.ndarray, u: np.ndarray, cycles: Sequence[Cycle],
+             operating_point: tuple[float, float], *, ts: float, noise_std: float,
+             resolution: float = 0.0) -> DcPoint:
+    """Static gain from the mean PV and output over whole steady periods (asymmetric relay).
+
+    In periodic steady state the mean PV change from the operating point (y_op, PV units) over
+    whole periods is the static gain times the mean output change from u_op (output units):
+    K = mean(y - y_op) / mean(u - u_op) (Berner, Hägglund and Åström, "Asymmetric relay
+    autotuning - practical features for industrial use", Control Engineering Practice 54,
+    2016). The output's mean is known to within the switching jitter (`switch_jitter`), the
+    PV's to within its noise and its cycle-to-cycle scatter; a mean PV still drifting between
+    the first and the second half of the cycles (a slow lag not yet settled) widens the
+    uncertainty by that drift and marks the point unsettled.
+    """
+    y_op, u_op = operating_point
+    i0, i1 = cycles[0].i_start, cycles[-1].i_end
+    span = float(t[i1] - t[i0]) if i1 < t.size else float(t[-1] - t[i0] + ts)
+    du = float(np.mean(u[i0:i1])) - u_op
+    dy = float(np.mean(y[i0:i1])) - y_op
+    n = len(cycles)
+    per_y = np.array([float(np.mean(y[c.i_start:c.i_end])) for c in cycles])
+    step = float(np.mean([2.0 * c.amplitude_d for c in cycles]))
+    # the output is known exactly; its mean over the window is off only by where the window
+    # ends: each edge sits on a switch known to within a tick (uniform)
+    du_sigma = max(step * ts / (span * math.sqrt(6.0)), 1e-12 * max(abs(u_op), step))
+    dy_sigma = max(noise_std / math.sqrt(max(i1 - i0, 1)),
+                   float(np.std(per_y, ddof=1)) / math.sqrt(n) if n > 1 else 0.0)
+    if n >= 2:
+        half = n // 2
+        drift = abs(float(np.mean(per_y[n - half:]) - np.mean(per_y[:half])))
+    else:
+        drift = 0.0
+    settled = n >= 2 and drift <= 3.0 * dy_sigma * math.sqrt(2.0) + 0.5 * resolution
+    dy_sigma = math.hypot(dy_sigma, 0.0 if settled else 2.0 * drift)
+    gain = None
+    sigma = math.inf
+    if abs(du) > 4.0 * du_sigma:
+        gain = dy / du
+        sigma = abs(gain) * math.hypot(dy_sigma / max(abs(dy), 1e-300), du_sigma / abs(du))
+        sigma = max(sigma, dy_sigma / abs(du))
+    return DcPoint(gain, sigma, du, du_sigma, settled,
+                   {"mean_pv_shift": dy, "mean_pv_drift": drift, "cycles": n})
+
+
+def normalized_dead_time(cycles: Sequence[Cycle], amp_high: float, amp_low: float,
+                         ts: float, noise_std: float = 0.0, resolution: float = 0.0,
+                         hysteresis: float = 0.0) -> tuple[float, float] | None:
+    """tau = L / (L + T) of a first-order-plus-dead-time picture of the loop, from the
+    half-period ratio rho of an asymmetric relay with output steps gamma = amp_high / amp_low
+    > 1 (output units, effective steps): tau = (gamma - rho) / ((gamma - 1)(0.35 rho + 0.65))
+    with rho = low half / high half (Berner, Hägglund and Åström, "Improved relay autotuning
+    using normalized time delay", ACC 2016). Returns (tau clamped to [0, 1], its standard
+    error from the switching jitter), or None for a relay too close to symmetric.
+    """
+    if not (amp_low > 0 and amp_high > amp_low * 1.05):
+        return None
+    gamma = amp_high / amp_low
+    high = float(np.mean([c.high_time for c in cycles]))
+    low = float(np.mean([c.low_time for c in cycles]))
+    if not (high > 0 and low > 0):
+        return None
+    rho = low / high
+
+    def tau_of(r: float) -> float:
+        return (gamma - r) / ((gamma - 1.0) * (0.35 * r + 0.65))
+
+    a = float(np.mean([c.amplitude_pp for c in cycles])) / 2
+    sd = switch_jitter(a, high + low, hysteresis, noise_std, resolution, ts)
+    # rho = low / high; each half is two switches apart, the means over the cycles
+    n = len(cycles)
+    sd_rho = rho * math.sqrt(2.0) * sd / math.sqrt(n) * math.hypot(1.0 / high, 1.0 / low)
+    if n >= 2:
+        rhos = np.array([c.low_time / c.high_time for c in cycles if c.high_time > 0])
+        if rhos.size >= 2:
+            sd_rho = max(sd_rho, float(np.std(rhos, ddof=1)) / math.sqrt(rhos.size))
+    tau = tau_of(rho)
+    sd_tau = abs(tau_of(rho + sd_rho) - tau_of(rho - sd_rho)) / 2.0
+    return min(max(tau, 0.0), 1.0), sd_tau
+
+
 # ---------------------------------------------------------------------------- result
 @dataclass(frozen=True)
 class RelayAnalysis:
     """Everything the analysis found. Gains output units per PV unit, periods s.
 
-    ku, tu: refined (continuous plant, hold excluded); ku_classic, tu_classic: plain
-    describing function; ku_with_hold, tu_with_hold: refined with the tick's ts/2 hold delay;
-    uncertainty: relative, per figure (cycle spread, noise and a heuristic model-extrapolation
-    term from the model's miss at the Fourier points); fourier: plant points at w, 3w, 5w;
-    estimates: per cycle, that cycle's classic figures and its refined ones (the cycle's
-    classic figures times the whole record's refined/classic ratio); warnings: actionable
-    one-line messages.
+    ku, tu: refined (continuous plant, hold excluded): from the model when it reproduces what
+    was measured (`model.reliable`), else from the measured points alone
+    (autotune.core.harmonics.local_ultimate); ku_df, tu_df: plain describing function;
+    ku_with_hold, tu_with_hold: refined with the tick's ts/2 hold delay; uncertainty:
+    relative, per figure (cycle spread, noise and a heuristic model-extrapolation term from
+    the model's miss at the Fourier points); fourier: plant points at w, 2w .. 5w with their
+    uncertainty; dc: the static gain measured from the mean PV and output (asymmetric relay;
+    None without an operating point); estimates: per cycle, that cycle's plain figures and its
+    refined ones (the cycle's plain figures times the whole record's refined/plain ratio);
+    warnings: actionable one-line messages; cycles_to_converge: steady cycles the
+    convergence test needed (None: it never held).
     """
 
     ku: float
     tu: float
-    ku_classic: float
-    tu_classic: float
+    ku_df: float
+    tu_df: float
     ku_with_hold: float
     tu_with_hold: float
     uncertainty: dict[str, float]
@@ -367,6 +427,13 @@ class RelayAnalysis:
     amplitude: float  # PV oscillation amplitude, half peak-to-peak (PV units)
     model_mismatch: dict[int, float] = field(default_factory=dict)
     cycles: list[Cycle] = field(default_factory=list)
+    dc: DcPoint | None = None
+    tau: tuple[float, float] | None = None
+    cycles_to_converge: int | None = None
+    resolution: float = 0.0
+    record_span: float = 0.0
+    likely_cause: str | None = None
+    fit_from: int = 0  # first sample of the fit's residual window (0: the record from rest)
 
 
 def _phase_below_zero(g: complex) -> float:
@@ -374,28 +441,48 @@ def _phase_below_zero(g: complex) -> float:
     return ph - 2 * math.pi if ph > 0 else ph
 
 
-def _rest_at_start(y: np.ndarray, u: np.ndarray, switches: np.ndarray, noise: float,
-                   pp: float, bias: float | None, step: float) -> bool:
+def _rest_at_start(y: np.ndarray, u: np.ndarray, noise: float, pp: float,
+                   bias: float | None, step: float, half_period: float) -> bool:
     """True when the record starts at rest: output constant at the operating point, PV still.
 
     The first output level must be the bias (settings known) or, without settings, last
-    longer than 1.5 relay half-periods: a record that opens on a relay level whose effect has
-    not yet passed the dead time is not at rest. The still stretch must span at least a
-    quarter of a relay half-period (a PV still for a few ticks says nothing about the plant's
-    state, e.g. just after a precheck; common practice, no source).
+    longer than 1.5 relay half-periods (`half_period`, in samples): a record that opens on a
+    relay level whose effect has not yet passed the dead time is not at rest. The still
+    stretch must span at least a quarter of a relay half-period (a PV still for a few ticks
+    says nothing about the plant's state, e.g. just after a precheck; common practice, no
+    source).
     """
-    first = int(switches[0])
-    halves = np.diff(switches)
-    if first < 3 or (halves.size > 0 and first < 0.25 * float(np.median(halves))):
+    moved = np.nonzero(u != u[0])[0]
+    if moved.size == 0:
+        return False
+    first = int(moved[0])
+    if first < 3 or first < 0.25 * half_period:
         return False
     seg = y[:first]
-    still = bool(np.all(u[:first] == u[0]) and
-                 float(seg.max() - seg.min()) <= max(6 * noise, 0.02 * pp))
-    if not still:
+    if float(seg.max() - seg.min()) > max(6 * noise, 0.02 * pp):
         return False
     if bias is not None:
         return abs(float(u[0]) - bias) <= 0.01 * max(step, 1e-300)
-    return halves.size > 0 and first > 1.5 * float(np.median(halves))
+    return first > 1.5 * half_period
+
+
+def _resonance(points: Sequence[FourierPoint]) -> Any:
+    """For fit_models: the frequency of the higher harmonic where the measured response
+    stands most above a failed model (beyond what the point allows), or None."""
+
+    def find(check: Any) -> float | None:
+        best, w = 0.0, None
+        for p in points:
+            if p.harmonic < 2:
+                continue
+            miss = check.misses.get(p.harmonic) if check is not None else None
+            if miss is None or miss <= point_allowance(p):
+                continue
+            if miss > best:
+                best, w = miss, p.w
+        return w
+
+    return find
 
 
 def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
@@ -403,17 +490,27 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
                   ts: float | None = None, centre: float | None = None,
                   hysteresis: float | None = None, output_limit: float | None = None,
                   state: np.ndarray | None = None, drop_transient: int = 1,
-                  converge_tol: float = 0.02, candidates: Sequence[str] = CANDIDATES,
-                  min_snr: float = 5.0, resolution: float | None = None) -> RelayAnalysis:
-    """Analyse a relay experiment: Ku, Tu (refined and classic), model, uncertainty, warnings.
+                  converge_tol: float = 0.02, min_cycles: int = 2,
+                  candidates: Sequence[str] = CANDIDATES, min_snr: float = 5.0,
+                  resolution: float | None = None,
+                  operating_point: tuple[float, float] | None = None,
+                  modes: bool = True, at_rest: bool | None = None) -> RelayAnalysis:
+    """Analyse a relay experiment: Ku, Tu (refined and plain), model, uncertainty, warnings.
 
-    t (s), y (PV units), u (output units, as applied and held over each tick); settings: the
-    relay settings as finally used (centre, bias, amplitude, hysteresis) or give `centre` and
-    `hysteresis` (PV units) directly; noise_std: PV noise (PV units), estimated from the record
-    when None; ts: tick (s), default the median sample spacing; output_limit: for the
-    saturation warning; state: recorded relay state (+1/-1) if available; resolution: PV
-    quantisation step (PV units), the smallest PV step in the record when None (noise and
-    resolution set how far steady cycles may differ: `extract_cycles`, convergence).
+    t (s), y (PV units), u (output units, as applied and held over each tick; the record may
+    start with the rest and the direction pulse before the relay: a record from rest lets the
+    model fit use every sample); settings: the relay settings as finally used (centre, bias,
+    amplitude, hysteresis) or give `centre` and `hysteresis` (PV units) directly; noise_std:
+    PV noise (PV units), estimated from the record when None; ts: tick (s), default the median
+    sample spacing; output_limit: for the saturation warning; state: recorded relay state
+    (+1/-1, NaN or 0 outside the relay) if available; resolution: PV quantisation step (PV
+    units), the smallest PV step in the record when None (noise and resolution set how far
+    steady cycles may differ: `extract_cycles`, convergence); converge_tol, min_cycles: the
+    convergence test's (autotune.core.convergence); operating_point: (PV, output) at rest
+    (PV units, output units), for the static gain measured from an asymmetric relay; modes:
+    try the candidates with a lightly damped mode when nothing simpler reproduces the points;
+    at_rest: the record starts at rest (the rest check saw the PV still at the first output),
+    None: judged from the record (`_rest_at_start`).
     Raises AnalysisError when there is no complete steady relay cycle.
     """
     t = np.asarray(t, dtype=float)
@@ -421,6 +518,8 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     u = np.asarray(u, dtype=float)
     if not (t.size == y.size == u.size) or t.size < 10:
         raise AnalysisError("need at least 10 samples with t, pv and out of equal length")
+    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(y)) and np.all(np.isfinite(u))):
+        raise AnalysisError("the record holds samples that are not numbers")
     if ts is None:
         ts = float(np.median(np.diff(t)))
     eps = float(hysteresis if hysteresis is not None else
@@ -439,14 +538,20 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     n_cyc = len(cycles)
     w1 = 2 * math.pi * n_cyc / (t[i1] - t[i0])
     fourier = fourier_points(t[i0:i1], y[i0:i1], u[i0:i1], w1, ts, noise, min_snr=min_snr)
+    fourier = with_spread(fourier, t, y, u, [(c.i_start, c.i_end) for c in cycles], ts)
     g1 = fourier[0].g
-    ku_c, tu_c = classic_estimate(cycles, hysteresis=eps)
+    ku_c, tu_c = df_estimate(cycles, hysteresis=eps)
     a = float(np.mean([c.amplitude_pp for c in cycles])) / 2
     d = float(np.mean([c.amplitude_d for c in cycles]))
     bias = float(np.mean([c.bias for c in cycles]))
+    span = float(t[-1] - t[0] + ts)
+    dc = (dc_point(t, y, u, cycles, operating_point, ts=ts, noise_std=noise, resolution=res)
+          if operating_point is not None else None)
 
-    at_rest = _rest_at_start(y, u, switch_indices(u, state)[0], noise, 2 * a,
-                             settings.bias if settings is not None else None, d)
+    half = 0.5 * float(np.mean([c.i_end - c.i_start for c in cycles]))
+    if at_rest is None:
+        at_rest = _rest_at_start(y, u, noise, 2 * a, settings.bias if settings is not None
+                                 else None, d, half)
     end = t.size
     if t.size > FIT_SAMPLES and n_cyc > FIT_CYCLES:
         # long record: the model is fitted to its head, from the start through FIT_CYCLES
@@ -456,22 +561,39 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     sl = slice(0, end)
     model = fit_models(t[sl], y[sl], u[sl], ts=ts, w1=w1, phase1=_phase_below_zero(g1),
                        fit_from=0 if at_rest else i0, candidates=candidates,
-                       noise_floor=noise)
+                       noise_floor=noise,
+                       check=lambda tf: check_model(tf, fourier, dc, span),
+                       resonance=_resonance(fourier) if modes else None,
+                       input_offset=not at_rest)
     tf = model.tf
-    up = tf.ultimate_point()
     mismatch = {p.harmonic: float(abs(complex(tf.freq_response(p.w)) - p.g) / abs(p.g))
                 for p in fourier}
-    if up is None:
+    higher = {p.harmonic: p for p in fourier if p.harmonic > 1}
+    p2 = higher.get(3) or higher.get(2)
+    ku_p, tu_p = local_ultimate(fourier[0], p2)
+    up = tf.ultimate_point()
+    likely_cause = None
+    if not model.reliable:
+        likely_cause = _likely_cause(model, fourier, dc)
+        warnings.append(f"no model reproduces what was measured ({likely_cause}): the "
+                        "ultimate gain and period come from the measured points alone and the "
+                        "predicted figures are unreliable")
+        ku, tu = ku_p, tu_p
+        w180 = 2 * math.pi / tu
+    elif up is None:
         warnings.append("the fitted model never reaches -180 degrees of phase: the refined "
-                        "figures fall back to the classic ones")
-        ku, tu = ku_c, tu_c
-        w180 = w1
+                        "figures come from the measured points alone")
+        ku, tu = ku_p, tu_p
+        w180 = 2 * math.pi / tu
     else:
         ku, tu = up
         w180 = 2 * math.pi / tu
     hold = DelayedTF(tf.num, tf.den, tf.delay + ts / 2)
-    up_h = hold.ultimate_point()
-    ku_h, tu_h = up_h if up_h is not None else (ku_c, tu_c)
+    up_h = hold.ultimate_point() if model.reliable else None
+    if up_h is not None:
+        ku_h, tu_h = up_h
+    else:  # the hold's delay turns the phase by w ts / 2 at the crossover
+        ku_h, tu_h = ku * (1.0 + 0.5 * w180 * ts / math.pi), tu * (1.0 + 0.5 * w180 * ts / math.pi)
 
     # ---- per-cycle estimates (the model's correction applied to each cycle's measurement)
     scale_k = ku / ku_c
@@ -480,18 +602,16 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
     for c in cycles:
         kc = 4 * c.amplitude_d / (math.pi * c.amplitude_pp / 2)
         estimates.append({"cycle": c.index, "t_end": c.t_end, "period": c.period,
-                          "amplitude_pp": c.amplitude_pp, "ku_classic": kc,
-                          "tu_classic": c.period, "ku": kc * scale_k, "tu": c.period * scale_t})
-    if n_cyc >= 4:  # the relay's own criterion (pairs of cycles, measurement tolerances)
-        converged = steady_converged(cycles, converge_tol, min_cycles=4, hysteresis=eps,
-                                     tick=ts, noise_std=noise, resolution=res)
-    else:
-        converged = converged_cycles(cycles, max(converge_tol, 6 * noise / max(a, 1e-300) /
-                                                 math.sqrt(max(cycles[-1].i_end -
-                                                               cycles[-1].i_start, 1))))
+                          "amplitude_pp": c.amplitude_pp, "ku_df": kc,
+                          "tu_df": c.period, "ku": kc * scale_k, "tu": c.period * scale_t})
+    measurement = {"hysteresis": eps, "tick": ts, "noise_std": noise, "resolution": res}
+    converged = steady_converged(cycles, converge_tol, min_cycles=min_cycles, skip_first=False,
+                                 **measurement)
+    n_conv = cycles_to_converge(cycles, converge_tol, min_cycles=min_cycles, skip_first=False,
+                                **measurement)
 
     # ---- uncertainty (relative): cycle spread, noise, model extrapolation (heuristic)
-    kcs = np.array([e["ku_classic"] for e in estimates])
+    kcs = np.array([e["ku_df"] for e in estimates])
     pcs = np.array([c.period for c in cycles])
     h1s = np.array([c.amplitude_h1 for c in cycles])
     if n_cyc >= 2:
@@ -501,24 +621,30 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
         stat_mag, stat_per = 0.05, 0.03
     noise_rel = noise / max(a, 1e-300) * math.sqrt(2.0 / max(i1 - i0, 1))
     m1 = mismatch.get(1, 0.0)
-    higher = [v for k, v in mismatch.items() if k > 1]
+    higher_m = [v for k, v in mismatch.items() if k > 1]
     shift = abs(math.log(w180 / w1))
-    model_err = (m1 + abs(max(higher) - m1) * shift / math.log(3.0)) if higher else \
+    model_err = (m1 + abs(max(higher_m) - m1) * shift / math.log(3.0)) if higher_m else \
         m1 + 0.25 * shift
+    if not model.reliable:  # the points alone: the extrapolation's own error
+        model_err = max(model_err, 0.5 * shift)
     dphi = math.sqrt(noise_rel**2 + model_err**2)
     slope_ph = abs(float(tf.phase(w180 * 1.001) - tf.phase(w180 * 0.999)) / (0.002 * w180))
     slope_mag = abs(math.log(abs(complex(tf.freq_response(w180 * 1.001))) /
                              abs(complex(tf.freq_response(w180 * 0.999)))) / (0.002 * w180))
+    if not (math.isfinite(slope_ph) and slope_ph > 0):
+        slope_ph = math.pi / w180
+    if not math.isfinite(slope_mag):
+        slope_mag = 1.0 / w180
     dw = dphi / max(slope_ph, 1e-300)
     unc_tu = math.sqrt((dw / w180) ** 2 + stat_per**2) + 1e-3
     unc_ku = math.sqrt(stat_mag**2 + noise_rel**2 + model_err**2 + (slope_mag * dw) ** 2) + 1e-3
     unc_c_ku = float(np.std(kcs, ddof=1) / np.mean(kcs)) / math.sqrt(n_cyc) if n_cyc > 1 else 0.05
     uncertainty = {"ultimate_gain": unc_ku, "ultimate_period": unc_tu,
-                   "ultimate_gain_classic": unc_c_ku + noise_rel + 1e-3,
-                   "ultimate_period_classic": stat_per + 1e-3}
+                   "ultimate_gain_df": unc_c_ku + noise_rel + 1e-3,
+                   "ultimate_period_df": stat_per + 1e-3}
 
     # ---- warnings a user can act on
-    if n_cyc < 3:
+    if n_cyc < 2:
         warnings.append(f"only {n_cyc} steady cycle(s) after the start-up: run more cycles "
                         "(raise max cycles or max time) for reliable figures")
     if noise > 0 and a / noise < 10:
@@ -532,16 +658,20 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
         ratio = abs(y3[0].g * u3) / abs(g1 * u1)
         if ratio > 0.15:
             warnings.append(f"the PV carries a strong third harmonic ({100 * ratio:.0f}% of the "
-                            "fundamental): the classic describing-function figures are "
+                            "fundamental): the plain describing-function figures are "
                             "unreliable here; use the refined ones")
     asym = float(np.mean([c.asymmetry for c in cycles]))
-    if abs(asym) > 0.05:
+    symmetric = settings is None or not getattr(settings, "asymmetry", 0.0)
+    if abs(asym) > 0.05 and symmetric:
         hi_t = float(np.mean([c.high_time for c in cycles]))
         lo_t = float(np.mean([c.low_time for c in cycles]))
         warnings.append(f"half-periods differ by {100 * abs(asym):.0f}% (high {hi_t:.3g} s, low "
                         f"{lo_t:.3g} s): a static load (gravity, friction, a slope) offsets the "
                         "loop; let bias balancing finish or set the relay bias")
-    if output_limit is not None and float(np.max(np.abs(u))) >= output_limit * (1 - 1e-9):
+    planned = (settings.bias + settings.amplitude * (1 + getattr(settings, "asymmetry", 0.0))
+               if settings is not None else -math.inf)
+    if output_limit is not None and float(np.max(np.abs(u))) >= output_limit * (1 - 1e-9) \
+            and planned > output_limit * (1 + 1e-9):
         warnings.append(f"the output reached the output limit ({output_limit:g}) during the "
                         "experiment (saturation): lower the relay amplitude or bias")
     elif settings is not None and settings.amplitude > 0 and \
@@ -549,48 +679,43 @@ def analyse_relay(t: np.ndarray, y: np.ndarray, u: np.ndarray,
         warnings.append(f"the output steps ({d:.4g}) differ from the relay amplitude "
                         f"({settings.amplitude:.4g}): the output saturated or was clamped")
     if not converged:
-        warnings.append("the last two cycles still differ (period or amplitude): the "
+        warnings.append("the last cycles still differ (period or amplitude): the "
                         "oscillation had not settled; run more cycles")
-    if m1 > 0.05:
+    if model.reliable and m1 > 0.05:
         warnings.append(f"the fitted model misses the measured response at the oscillation by "
                         f"{100 * m1:.0f}%: check for backlash, friction or a changing load")
     if eps > 0.5 * a:
         warnings.append(f"the hysteresis ({eps:.3g}) is over half the oscillation amplitude: "
                         "raise the relay amplitude")
+    tau = None
+    if settings is not None and getattr(settings, "asymmetry", 0.0):
+        s_asym = float(settings.asymmetry)
+        tau = normalized_dead_time(cycles, d * (1 + s_asym), d * (1 - s_asym), ts, noise, res,
+                                   eps)
+    return RelayAnalysis(ku=float(ku), tu=float(tu), ku_df=float(ku_c), tu_df=float(tu_c),
+                         ku_with_hold=float(ku_h), tu_with_hold=float(tu_h),
+                         uncertainty=uncertainty, model=model, cycles_used=n_cyc,
+                         converged=converged, estimates=estimates, warnings=warnings,
+                         fourier=fourier, delays_included=DELAYS_INCLUDED, ts=ts,
+                         noise_std=noise, hysteresis=eps, amplitude_d=d, bias=bias, centre=c0,
+                         amplitude=a, model_mismatch=mismatch, cycles=cycles, dc=dc, tau=tau,
+                         cycles_to_converge=n_conv, resolution=res, record_span=span,
+                         likely_cause=likely_cause, fit_from=0 if at_rest else i0)
 
-    return RelayAnalysis(ku=float(ku), tu=float(tu), ku_classic=float(ku_c),
-                         tu_classic=float(tu_c), ku_with_hold=float(ku_h),
-                         tu_with_hold=float(tu_h), uncertainty=uncertainty, model=model,
-                         cycles_used=n_cyc, converged=converged, estimates=estimates,
-                         warnings=warnings, fourier=fourier, delays_included=DELAYS_INCLUDED,
-                         ts=ts, noise_std=noise, hysteresis=eps, amplitude_d=d, bias=bias,
-                         centre=c0, amplitude=a, model_mismatch=mismatch, cycles=cycles)
 
-
-def result_fields(analysis: RelayAnalysis) -> dict[str, Any]:
-    """The result.json fields this analysis owns (contract names; extra fields welcome)."""
-    m = analysis.model
-    return {
-        "ultimate_gain": analysis.ku,
-        "ultimate_period": analysis.tu,
-        "ultimate_gain_classic": analysis.ku_classic,
-        "ultimate_period_classic": analysis.tu_classic,
-        "ultimate_gain_with_hold": analysis.ku_with_hold,
-        "ultimate_period_with_hold": analysis.tu_with_hold,
-        "uncertainty": dict(analysis.uncertainty),
-        "model": {"kind": m.kind, "params": dict(m.params), "residual": m.residual,
-                  "num": list(m.tf.num), "den": list(m.tf.den), "delay": m.tf.delay,
-                  "candidates": {k: {"params": dict(c.params), "residual": c.residual}
-                                 for k, c in m.candidates.items()}},
-        "cycles_used": analysis.cycles_used,
-        "converged": analysis.converged,
-        "relay": {"amplitude": analysis.amplitude_d, "hysteresis": analysis.hysteresis,
-                  "bias": analysis.bias},
-        "oscillation": {"amplitude": analysis.amplitude, "period": analysis.tu_classic,
-                        "noise_std": analysis.noise_std, "tick": analysis.ts},
-        "fourier": [p.as_dict() for p in analysis.fourier],
-        "delays_included": analysis.delays_included,
-        "delays_note": DELAYS_NOTE,
-        "estimates": list(analysis.estimates),
-        "warnings": list(analysis.warnings),
-    }
+def _likely_cause(model: FittedModel, points: Sequence[FourierPoint], dc: DcPoint | None) -> str:
+    """In words, why no candidate reproduced the measurement: a resonance near a harmonic
+    (the measured response stands above every model there), a PV that still drifts, or a
+    nonlinearity (friction, backlash, saturation)."""
+    best = model.checks.get(model.kind)
+    w = _resonance(points)(best) if best is not None else None
+    if w is not None:
+        k = next(p.harmonic for p in points if p.w == w)
+        return (f"probably a lightly damped mode near {k} x the oscillation frequency "
+                f"({w / (2 * math.pi):.3g} Hz): a compliant belt, coupling or a flexible "
+                "structure")
+    if dc is not None and not dc.settled:
+        return "probably a drift: the mean PV was still moving (a changing load or an " \
+               "operating point that had not settled)"
+    return "probably a nonlinearity: friction, backlash or saturation changes the response " \
+           "with the amplitude"

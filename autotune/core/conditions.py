@@ -19,7 +19,7 @@ from __future__ import annotations
 import cmath
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from types import SimpleNamespace
 from typing import Any
 
@@ -134,6 +134,18 @@ def condition_of_analysis(name: str, analysis: Any) -> Condition:
                      model_fits_points(model, points))
 
 
+def condition_of_identification(name: str, ident: Any) -> Condition:
+    """The design's view of one identified loop (an autotune.core.identify.Identification):
+    its model, refined ultimate point, the measured points it holds (the harmonics and the
+    static gain; their one-sigma uncertainty doubled as a bound, at least
+    POINT_UNCERTAINTY_FLOOR) and whether the model reproduces what was measured."""
+    an = ident.analysis
+    points = tuple(MeasuredPoint(p.w, p.g, max(POINT_UNCERTAINTY_FLOOR, 2.0 * p.uncertainty),
+                                 p.harmonic) for p in ident.points)
+    return Condition(name, an.model.tf, float(an.ku), float(an.tu), points,
+                     bool(ident.reliable))
+
+
 def condition_of_result(name: str, result: Mapping[str, Any]) -> Condition:
     """The design's view of a result.json (a `tune` or `analyze` result): `model` (num, den,
     delay), `ultimate_gain`, `ultimate_period` and the `fourier` points (w rad/s, magnitude,
@@ -177,6 +189,24 @@ def figures_of_analysis(name: str, analysis: Any, dead_zone: float | None = None
          "static_gain": None,
          "dead_time": float(analysis.ts) + unc.get("ultimate_period", math.nan) * tu,
          "dead_zone": None})
+
+
+def figures_of_identification(name: str, ident: Any) -> LoopFigures:
+    """LoopFigures of an identified loop (autotune.core.identify.Identification): as
+    `figures_of_analysis`, with the static gain measured by the asymmetric relay (and its
+    uncertainty) where there is one, and the dead zone taken out of the output with its
+    uncertainty."""
+    dz = ident.dead_zone_used if ident.dead_zone_used > 0 else None
+    figs = figures_of_analysis(name, ident.analysis, dead_zone=dz)
+    unc = dict(figs.uncertainty)
+    k0 = figs.static_gain
+    if ident.static_gain is not None:
+        k0 = float(ident.static_gain)
+        rel = ident.static_gain_uncertainty
+        unc["static_gain"] = None if rel is None else abs(rel * k0)
+    if dz is not None and ident.dead_zone is not None:
+        unc["dead_zone"] = ident.dead_zone.sigma
+    return replace(figs, static_gain=k0, uncertainty=unc)
 
 
 # ---------------------------------------------------------------- comparison

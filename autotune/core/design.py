@@ -103,6 +103,19 @@ def spec_from_config(design_cfg: Mapping[str, Any], output_limit: float | None,
     return DesignSpec(**{k: v for k, v in kw.items() if v is not None or k in optional})
 
 
+def design_limits(design_cfg: Mapping[str, Any], spec_cfg: Mapping[str, Any] | None
+                  ) -> dict[str, Any]:
+    """The design limits of a config's [design] table (as a dict), with the overshoot the
+    confirmation step's [spec] allows (max_overshoot, percent) binding when the design table
+    sets none or more: the default proposal must be one the step can pass."""
+    out = dict(design_cfg)
+    cap = (spec_cfg or {}).get("max_overshoot")
+    if isinstance(cap, int | float) and not isinstance(cap, bool):
+        own = out.get("max_overshoot")
+        out["max_overshoot"] = float(cap) if own is None else min(float(own), float(cap))
+    return out
+
+
 DEFAULT_OVERSHOOT_TARGET = 10.0  # %, for the choice of b without a spec (common practice, no source)
 
 

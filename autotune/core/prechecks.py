@@ -7,7 +7,7 @@ direction expected for a positive output step (the runner passes +1 after applyi
 
 1. Rest: output held at bias; noise (standard deviation after removing a straight-line drift),
    drift (PV units/s), resolution (smallest non-zero PV step seen), suggested hysteresis
-   max(3 x noise, 2 x resolution) (common practice, no source).
+   max(3 x noise, resolution) (common practice, no source; `relay_hysteresis`).
 2. Direction: one small output pulse; the PV must move the expected way by more than 5 x noise
    within the timeout.
 3. Breakaway: a slow output ramp; the output at which the PV first moves beyond the noise bounds
@@ -40,8 +40,14 @@ __all__ = [
     "deadband_from_two_ramps",
     "TwoRampReport",
     "direction_pulse",
+    "direction_threshold",
+    "pv_resolution",
+    "relay_hysteresis",
     "smallest_step",
 ]
+
+DIRECTION_MIN_FRACTION = 0.1  # the pulse must move the PV by a tenth of the target amplitude
+#                               at least (common practice, no source)
 
 MSG_SIGN_DISAGREE = "actuator and sensor signs disagree; flip `sign` in the config"
 MSG_NO_RESPONSE = "no response: check power, wiring, deadband; try a larger pulse"
@@ -145,7 +151,7 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
     else:
         slope, noise = 0.0, float(np.std(pa, ddof=1))
     res = smallest_step(pa)
-    hyst = max(3.0 * noise, 2.0 * res)
+    hyst = relay_hysteresis(noise, res)
     # slope standard error; quantisation counts as noise of at least resolution / sqrt(12)
     spread = float(np.sum(tc**2))
     noise_eff = max(noise, res / math.sqrt(12.0))
@@ -161,13 +167,43 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
                       drift_stderr=drift_se)
 
 
+def pv_resolution(board: float = 0.0, rest: float = 0.0, pulse: float = 0.0) -> float:
+    """The PV quantisation step (PV units) to work with: the board's declared resolution when
+    it declares one (> 0), else the smallest PV step seen at rest, else the smallest step seen
+    while the direction pulse moved the PV (a sensor that reads exactly constant at rest shows
+    its step only once the PV moves); 0 when none is known (an ideal or unquantised sensor)."""
+    for r in (board, rest, pulse):
+        if r > 0 and math.isfinite(r):
+            return float(r)
+    return 0.0
+
+
+def relay_hysteresis(noise_std: float, resolution: float) -> float:
+    """Relay hysteresis (PV units) from the PV noise std and resolution: max(3 x noise,
+    1 x resolution) (common practice, no source); never 0 on a quantised sensor.
+
+    One step is enough against quantisation: a PV that flickers between the two levels around
+    the centre spans one step, and the relay switches only a full step beyond it. A wider
+    hysteresis costs time: the oscillation then sits arcsin(eps / a) before -180 degrees and
+    its period grows (for an integrating loop at a = 3 eps, by about half)."""
+    return max(3.0 * noise_std, resolution)
+
+
+def direction_threshold(noise_std: float, target_amplitude: float) -> float:
+    """PV change (PV units) the direction pulse must cause: 5 x the noise, and at least a tenth
+    of the relay's target amplitude (common practice, no source)."""
+    return max(5.0 * noise_std, DIRECTION_MIN_FRACTION * target_amplitude)
+
+
 # ---------------------------------------------------------------------------------- direction
 @dataclass(frozen=True)
 class DirectionReport:
     """ok: moved the expected way. moved: beyond threshold at all. sign_ok: the way it moved
     agrees with the expected direction. change: the largest PV excursion from the baseline after
     the pulse start (PV units, signed, spikes removed by a median of three). threshold: PV units.
-    t_response: first time (s) the excursion passed the threshold, None if never."""
+    t_response: first time (s) the excursion passed the threshold, None if never.
+    resolution: the smallest step of the raw PV during the pulse (PV units, 0 if none; the
+    caller fills it in with `smallest_step`, since `pv` here may be detrended)."""
 
     ok: bool
     moved: bool
@@ -176,6 +212,7 @@ class DirectionReport:
     message: str
     threshold: float = 0.0
     t_response: float | None = None
+    resolution: float = 0.0
 
     def as_dict(self) -> dict[str, Any]:
         return asdict(self)

@@ -46,14 +46,22 @@ class LimitGauge:
 
 @dataclass(frozen=True)
 class CycleEstimate:
-    """Estimates after relay cycle `index` (1-based): period (s), peak-to-peak amplitude (PV units),
-    ultimate gain (output units per PV unit) and period (s)."""
+    """Estimates after relay cycle `index` (1-based): period (s), peak-to-peak amplitude (PV
+    units), ultimate gain (output units per PV unit) and period (s).
+
+    ku, tu: the refined live figure, from the measured harmonics of the cycles at the current
+    relay amplitude (autotune.core.harmonics.cycle_estimate; the final analysis refines it
+    again with a fitted model); ku_df, tu_df: the plain describing-function figure of this
+    cycle (4 d / (pi a), the period), shown beside it. None where not computed.
+    """
 
     index: int
     period: float
     amplitude: float
     ku: float
     tu: float
+    ku_df: float | None = None
+    tu_df: float | None = None
 
 
 @dataclass(frozen=True)

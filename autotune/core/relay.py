@@ -30,6 +30,8 @@ from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from typing import TYPE_CHECKING, Any
 
+from autotune.core.convergence import measurement_tolerances, steady_converged, switch_jitter
+
 if TYPE_CHECKING:
     from autotune.core.safety import SafetyGuard, Violation
 
@@ -43,15 +45,15 @@ __all__ = [
     "RelaySettings",
     "RelayStep",
     "clamp",
-    "default_converged",
     "mean_cycle",
-    "measurement_tolerances",
-    "steady_converged",
-    "switch_jitter",
+    "stage_dead_zone",
 ]
 
 HIGH = 1
 LOW = -1
+SETTLED_BAND = 0.5  # once the amplitudes the plan asks for were run, a swing within this
+#                     fraction of the target is accepted (the target is a guide; common
+#                     practice, no source)
 
 
 def clamp(x: float, limit: float) -> float:
@@ -196,6 +198,7 @@ class CycleFigures:
     bias: float
     settled: bool = True
     samples: int = 0
+    amplitude_h1: float = 0.0
 
     @property
     def amplitude(self) -> float:
@@ -246,88 +249,6 @@ class RelayStep:
 ConvergedFn = Callable[[Sequence[CycleFigures]], bool]
 
 
-def default_converged(cycles: Sequence[CycleFigures], tol: float = 0.02) -> bool:
-    """True when the last two cycles agree within `tol` (relative) in period and amplitude.
-
-    Stand-in until the analysis module's criterion is plugged in (common practice, no source).
-    """
-    if len(cycles) < 2:
-        return False
-    a, b = cycles[-2], cycles[-1]
-
-    def close(x: float, y: float) -> bool:
-        scale = max(abs(x), abs(y))
-        return scale == 0 or abs(x - y) <= tol * scale
-
-    return close(a.period, b.period) and close(a.amplitude_pp, b.amplitude_pp)
-
-
-def switch_jitter(amplitude: float, period: float, hysteresis: float = 0.0,
-                  noise_std: float = 0.0, resolution: float = 0.0, tick: float = 0.0) -> float:
-    """Standard deviation (s) of one relay switching instant.
-
-    The relay switches when the PV crosses centre -/+ hysteresis; PV noise (std `noise_std`) and
-    quantisation (step `resolution`, uniform error of std resolution/sqrt(12)), divided by the
-    PV slope there, move that instant, and the tick (s) rounds it (uniform, std tick/sqrt(12)).
-    The slope is that of a sinusoid of peak `amplitude` and `period` at the switching level:
-    (2 pi / period) sqrt(amplitude^2 - hysteresis^2), floored at a third of its peak value
-    (common practice, no source). amplitude and hysteresis in PV units, period in s.
-    """
-    quant = tick * tick / 12.0
-    if not (amplitude > 0 and period > 0):
-        return math.sqrt(quant)
-    level = max(amplitude * amplitude - hysteresis * hysteresis, (amplitude / 3.0) ** 2)
-    slope = 2.0 * math.pi / period * math.sqrt(level)
-    pv_var = noise_std * noise_std + resolution * resolution / 12.0
-    return math.sqrt(pv_var / (slope * slope) + quant)
-
-
-def measurement_tolerances(period: float, amplitude_pp: float, *, hysteresis: float = 0.0,
-                           tick: float = 0.0, noise_std: float = 0.0,
-                           resolution: float = 0.0) -> tuple[float, float]:
-    """(period, amplitude) relative differences that two readings of a steady oscillation can
-    show from the measurement alone (period s, amplitude_pp PV units peak to peak).
-
-    Period: 3 x the standard deviation of the difference of two 2-cycle mean periods, each period
-    being the difference of two switching instants (`switch_jitter`), and at least one tick.
-    Amplitude: a peak-to-peak reading is off by up to one quantisation step and 2 x noise.
-    """
-    if not (period > 0 and amplitude_pp > 0):
-        return math.inf, math.inf
-    sd = switch_jitter(0.5 * amplitude_pp, period, hysteresis, noise_std, resolution, tick)
-    tol_p = max(3.0 * math.sqrt(2.0) * sd, tick) / period
-    tol_a = (resolution + 2.0 * noise_std) / amplitude_pp
-    return tol_p, tol_a
-
-
-def steady_converged(cycles: Sequence[CycleFigures], tol: float = 0.02, *, min_cycles: int = 4,
-                     hysteresis: float = 0.0, tick: float = 0.0, noise_std: float = 0.0,
-                     resolution: float = 0.0) -> bool:
-    """Has the relay oscillation settled? (cycles with `period` s and `amplitude_pp` PV units).
-
-    At least max(min_cycles, 4) cycles, and the mean period and mean peak-to-peak amplitude of
-    the last two cycles agree with those of the two before within `tol` (relative), widened to
-    what the tick, PV noise and PV resolution can resolve (`measurement_tolerances`; common
-    practice, no source). The means of pairs are compared through
-    autotune.core.analysis.converged_cycles when it is available, with the wider of the two
-    tolerances applied to each quantity in turn.
-    """
-    if len(cycles) < max(min_cycles, 4):
-        return False
-    a, b = cycles[-4:-2], cycles[-2:]
-    pa = sum(c.period for c in a) / 2
-    pb = sum(c.period for c in b) / 2
-    aa = sum(c.amplitude_pp for c in a) / 2
-    ab = sum(c.amplitude_pp for c in b) / 2
-    if min(pa, pb, aa, ab) <= 0:
-        return False
-    tol_p, tol_a = measurement_tolerances(min(pa, pb), min(aa, ab), hysteresis=hysteresis,
-                                          tick=tick, noise_std=noise_std,
-                                          resolution=resolution)
-    tol_p, tol_a = max(tol, tol_p), max(tol, tol_a)
-    return abs(pa - pb) <= tol_p * max(pa, pb) and abs(aa - ab) <= tol_a * max(aa, ab)
-
-
 def mean_cycle(cycles: Sequence[CycleFigures]) -> CycleFigures:
     """One CycleFigures holding the means of `cycles` (the last one's index, start, d, bias)."""
     n = len(cycles)
@@ -339,63 +260,85 @@ def mean_cycle(cycles: Sequence[CycleFigures]) -> CycleFigures:
     return replace(last, t_start=cycles[0].t_start, period=m("period"),
                    amplitude_pp=m("amplitude_pp"), high_time=m("high_time"),
                    low_time=m("low_time"), mean_pv=m("mean_pv"), pv_max=m("pv_max"),
-                   pv_min=m("pv_min"), samples=round(m("samples")))
+                   pv_min=m("pv_min"), samples=round(m("samples")),
+                   amplitude_h1=m("amplitude_h1"))
 
 
 # ---------------------------------------------------------------------------------- plan
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class RelayPlan:
     """How the experiment adapts and when it ends.
 
+    The fields without a default are the config's [relay] table (autotune.config.RelayConfig
+    documents them and holds their defaults; autotune.config.relay_plan builds a plan from it).
+
     target_amplitude: wanted PV peak amplitude a (half peak-to-peak), PV units.
     start_amplitude: first relay amplitude d (output units); None keeps the settings' amplitude.
-    amplitude_step_factor: largest factor by which one adjustment raises (or lowers) d.
+    amplitude_step_factor: largest factor by which one correction raises d (a lower d is set
+        in one step), and the factor by which d rises when the relay stalls.
+    amplitude_tolerance: relative band around the target within which d is left alone.
+    amplitude_stages: the experiment runs at this many relay amplitudes at least (two measure a
+        dead zone: the swing goes as d - dead zone); when the first amplitude already lands in
+        the band, the second is `probe_ratio` times it (divided by it where the limits do not
+        allow a rise).
+    adapt_amplitude, balance_bias: adapt d to the target / balance the half-periods by the bias
+        (symmetric relay only; an asymmetric relay's half-periods differ by design).
+    bias_tolerance: half-periods count as balanced when |high - low| / mean half <= this.
+    max_cycles: end after this many cycles ("max_cycles"). max_time: end after this many seconds
+        of samples ("max_time"); None: no time limit here (the safety guard has its own).
+    converge_tol: relative tolerance of the convergence test (autotune.core.convergence).
+    min_cycles: steady cycles (after the transient one) the convergence test needs.
+    stall_time: if the relay has not switched for this long (s), raise d (or end with
+        "no_oscillation" when it cannot rise); None: off. Once a cycle was seen the wait is
+        three times the longest period instead.
+
+    Internal settings (defaults here, not in the config):
     max_amplitude: ceiling on d (output units); None: only the output limit bounds it.
     pv_window: the PV may move at most this far from pv_start (PV units); None: no constraint.
         The adaptation keeps the predicted excursion within pv_window * (1 - window_margin).
-    amplitude_tolerance: relative band around the target within which d is left alone.
-    bias_tolerance: half-periods count as balanced when |high - low| / mean half <= this.
     bias_gain: fraction of the estimated bias error corrected per adjustment.
     max_bias_step: largest bias change per adjustment, as a fraction of d.
     settle_cycles: cycles to wait after a change before judging the result.
-    max_cycles: end after this many cycles ("max_cycles"). max_time: end after this many seconds
-        of samples ("max_time"); None: no time limit here (the safety guard has its own).
-    converge_tol: relative tolerance of the default convergence test.
-    stall_time: if the relay has not switched for this long (s), raise d (or end with
-        "no_oscillation" when it cannot rise); None: off.
     max_adjustments: after this many settings changes the settings stay as they are.
-    deadband: actuator dead zone (output units, half-width, as measured by the breakaway
-        precheck): the plant sees a relay of d - deadband, so the adaptation predicts the PV
-        amplitude as proportional to d - deadband and the bias estimate scales with it.
+    probe_ratio: factor between the first two amplitudes when the first needs no correction.
+    deadband: actuator dead zone (output units, half-width, when measured before the relay):
+        the plant sees a relay of d - deadband, so the adaptation predicts the PV amplitude as
+        proportional to d - deadband and the bias estimate scales with it.
     tick: sample period (s); pv_noise: PV noise standard deviation and pv_resolution: PV
         quantisation step (PV units). They set what the measurement can resolve: bias
         balancing acts only on a half-period mismatch larger than the switching jitter they
-        cause, and the amplitude band is widened to the peak-reading error (0 = ideal).
+        cause, the amplitude band is widened to the peak-reading error, and the convergence
+        test to both (0 = ideal).
 
     Adjustments are judged on the mean of the cycles completed since the last change (at least
-    settle_cycles of them; the first one, still carrying the transient, left out). The bias correction is
+    settle_cycles of them; the first one, still carrying the transient, left out). The first
+    correction of d is d x target / measured (through the dead zone when known; a secant
+    through two amplitudes once there are two), clamped by the limits. The bias correction is
     bias_gain x (the integrating-loop estimate of the bias error) and the gain halves each time
     the mismatch changes sign, so the bias cannot swing ever wider (common practice, no source).
     """
 
     target_amplitude: float
+    amplitude_step_factor: float
+    amplitude_tolerance: float
+    amplitude_stages: int
+    adapt_amplitude: bool
+    balance_bias: bool
+    bias_tolerance: float
+    max_cycles: int
+    max_time: float | None
+    converge_tol: float
+    min_cycles: int
+    stall_time: float | None
     start_amplitude: float | None = None
-    amplitude_step_factor: float = 2.0
     max_amplitude: float | None = None
     pv_window: float | None = None
     window_margin: float = 0.2
-    amplitude_tolerance: float = 0.1
-    adapt_amplitude: bool = True
-    balance_bias: bool = True
-    bias_tolerance: float = 0.03
     bias_gain: float = 0.8
     max_bias_step: float = 0.3
     settle_cycles: int = 2
-    max_cycles: int = 30
-    max_time: float | None = None
-    converge_tol: float = 0.02
-    stall_time: float | None = None
     max_adjustments: int = 12
+    probe_ratio: float = 1.4
     deadband: float = 0.0
     tick: float = 0.0
     pv_noise: float = 0.0
@@ -425,6 +368,10 @@ class RelayPlan:
                 raise ValueError(f"{name} must be a finite number >= 0, got {v!r}")
         if self.settle_cycles < 1 or self.max_cycles < 1 or self.max_adjustments < 0:
             raise ValueError("settle_cycles and max_cycles must be >= 1, max_adjustments >= 0")
+        if self.min_cycles < 1 or self.amplitude_stages < 1:
+            raise ValueError("min_cycles and amplitude_stages must be >= 1")
+        if not self.probe_ratio > 1.0:
+            raise ValueError("probe ratio must be > 1")
 
 
 # ---------------------------------------------------------------------------------- experiment
@@ -438,16 +385,31 @@ class _CycleAccumulator:
         self.pv_min = math.inf
         self.pv_sum = 0.0
         self.n = 0
+        self.samples: list[tuple[float, float]] = []
 
-    def add(self, pv: float, hi: float | None = None, lo: float | None = None) -> None:
-        """One sample; `hi`/`lo` replace pv for the peaks (spike-robust peaks, see
-        RelayExperiment's confirm_samples)."""
+    def add(self, t: float, pv: float, hi: float | None = None,
+            lo: float | None = None) -> None:
+        """One sample (t s, pv PV units); `hi`/`lo` replace pv for the peaks (spike-robust
+        peaks, see RelayExperiment's confirm_samples)."""
         if not math.isfinite(pv):  # a corrupt sample must not poison the cycle's figures
             return
         self.pv_max = max(self.pv_max, pv if hi is None else hi)
         self.pv_min = min(self.pv_min, pv if lo is None else lo)
         self.pv_sum += pv
         self.n += 1
+        self.samples.append((t, pv))
+
+    def first_harmonic(self, t_end: float) -> float:
+        """Amplitude (PV units) of the PV's first harmonic over [t_start, t_end) (rectangle
+        rule over the samples; averages the noise that the peaks keep)."""
+        period = t_end - self.t_start
+        if self.n == 0 or not period > 0:
+            return 0.0
+        mean = self.pv_sum / self.n
+        w = 2.0 * math.pi / period
+        re = sum((y - mean) * math.cos(w * (t - self.t_start)) for t, y in self.samples)
+        im = sum((y - mean) * math.sin(w * (t - self.t_start)) for t, y in self.samples)
+        return 2.0 * math.hypot(re, im) / self.n
 
 
 class RelayExperiment:
@@ -459,8 +421,9 @@ class RelayExperiment:
             when given, and lowered if needed to keep both levels within the output limit).
         output_limit: output units; every output returned lies within +/- output_limit.
         converged: `converged(settled_cycles) -> bool`, called with the cycles completed since
-            the last settings change took effect; default `default_converged` with
-            plan.converge_tol.
+            the last settings change took effect (the transient one first); default
+            autotune.core.convergence.steady_converged with the plan's tolerance, min_cycles
+            and measurement (tick, PV noise and resolution, the relay's hysteresis).
         guard: optional `SafetyGuard`; every sample is checked first (with the output applied
             up to it: host loop, the one sent for the previous sample; device loop, the one
             reported) and a violation ends the experiment at once with end_reason
@@ -500,8 +463,7 @@ class RelayExperiment:
         self.plan = plan
         self.relay = Relay(settings, output_limit)
         self.output_limit = float(output_limit)
-        self._converged: ConvergedFn = converged or (
-            lambda cs: default_converged(cs, plan.converge_tol))
+        self._converged: ConvergedFn = converged or self._default_converged
         if guard is not None and output_limit > guard.limits.output_limit * (1 + 1e-9):
             raise ValueError(f"relay output limit {output_limit:g} above the safety guard's "
                              f"{guard.limits.output_limit:g}")
@@ -520,12 +482,21 @@ class RelayExperiment:
         self._t_change = -math.inf  # when the last settings change took effect
         self._pending: RelaySettings | None = None  # device loop: sent, not yet seen applied
         self._acc: _CycleAccumulator | None = None
-        self._history: list[tuple[float, float, float]] = []  # (d, bias, a) of judged cycles
+        # (d, bias, a, a_h1) of the judged cycles: PV peak amplitude (half the peak-to-peak)
+        # and first-harmonic amplitude, PV units
+        self._history: list[tuple[float, float, float, float]] = []
         self._capped_reported = False
+        self._probed = False  # the last change of d was the second-amplitude probe
         self._bias_gain = plan.bias_gain  # halves whenever the mismatch changes sign
         self._bias_dir = 0  # sign of the last bias change
         self._step_events: list[RelayEvent] = []
         self._new_settings: RelaySettings | None = None
+
+    def _default_converged(self, cycles: Sequence[CycleFigures]) -> bool:
+        p = self.plan
+        return steady_converged(cycles, p.converge_tol, min_cycles=p.min_cycles,
+                                hysteresis=self.relay.settings.hysteresis, tick=p.tick,
+                                noise_std=p.pv_noise, resolution=p.pv_resolution)
 
     # ------------------------------------------------------------------ public
     @property
@@ -543,8 +514,10 @@ class RelayExperiment:
 
     @property
     def settled_cycles(self) -> list[CycleFigures]:
-        """Cycles completed since the last settings change took effect."""
-        return [c for c in self.cycles if c.t_start >= self._t_change]
+        """Cycles completed since the last settings change took effect (the first of them may
+        have begun just before: a change that reached the board during a cycle's high half
+        makes that cycle the transient one of the new settings)."""
+        return [c for c in self.cycles if c.t_start + c.high_time >= self._t_change]
 
     def update(self, t: float, pv: float) -> RelayStep:
         """Host loop: one sample in (t seconds, pv PV units), the output to send out."""
@@ -583,9 +556,9 @@ class RelayExperiment:
             if math.isfinite(pv):
                 self._recent_pv.append(pv)
             if self._acc is not None and self._recent_pv:
-                self._acc.add(pv, min(self._recent_pv), max(self._recent_pv))
+                self._acc.add(t, pv, min(self._recent_pv), max(self._recent_pv))
         elif self._acc is not None:
-            self._acc.add(pv)
+            self._acc.add(t, pv)
         self._check_time(t)
         return self._result(0.0 if self.done else output)
 
@@ -616,7 +589,7 @@ class RelayExperiment:
         if self._new_settings is not None:
             self._pending = self._new_settings
         if self._acc is not None:
-            self._acc.add(pv)
+            self._acc.add(t, pv)
         self._check_time(t)
         return self._result(0.0 if self.done else out)
 
@@ -697,16 +670,23 @@ class RelayExperiment:
             abs(out - lv) <= tol for lv in old)
 
     def _check_stall(self, t: float) -> None:
-        if self.plan.stall_time is None or self.done or self._t_last_switch is None:
+        p = self.plan
+        if p.stall_time is None or self.done or self._t_last_switch is None:
             return
         if self._pending is not None or self._new_settings is not None:
             return
-        if t - self._t_last_switch < self.plan.stall_time:
+        wait = p.stall_time
+        if self.cycles:  # the loop's own time scale is known: three of its periods
+            wait = 3.0 * max(c.period for c in self.cycles)
+        if t - self._t_last_switch < wait:
             return
         s = self.relay.settings
         ceiling = self._amplitude_ceiling(s.bias)
-        d_new = min(s.amplitude * self.plan.amplitude_step_factor, ceiling)
-        if d_new <= s.amplitude * 1.01 or self.adjustments >= self.plan.max_adjustments:
+        d_new = min(s.amplitude * p.amplitude_step_factor, ceiling)
+        worked = [h[0] for h in self._history if h[0] > s.amplitude and h[2] > 0]
+        if worked:  # a larger d oscillated before: halfway back to it
+            d_new = min(d_new, 0.5 * (s.amplitude + min(worked)))
+        if d_new <= s.amplitude * 1.01 or self.adjustments >= p.max_adjustments:
             self._finish(t, "no_oscillation", {"stalled_for": t - self._t_last_switch,
                                                "amplitude": s.amplitude})
             return
@@ -714,7 +694,7 @@ class RelayExperiment:
         self._issue(t, replace(s, amplitude=d_new))
         self._emit(t, "amplitude_raised", {"from": s.amplitude, "to": d_new,
                                            "why": "no switch", "measured_amplitude": None,
-                                           "target": self.plan.target_amplitude})
+                                           "target": p.target_amplitude})
 
     def _on_switch(self, t: float, new_state: int) -> None:
         self._t_last_switch = t
@@ -732,7 +712,8 @@ class RelayExperiment:
             amplitude_pp=acc.pv_max - acc.pv_min, high_time=acc.t_down - acc.t_start,
             low_time=t - acc.t_down, mean_pv=acc.pv_sum / acc.n, pv_max=acc.pv_max,
             pv_min=acc.pv_min, amplitude_d=s.amplitude, bias=s.bias,
-            settled=acc.t_start >= self._t_change, samples=acc.n)
+            settled=acc.t_down >= self._t_change, samples=acc.n,
+            amplitude_h1=acc.first_harmonic(t))
         self.cycles.append(cyc)
         self._emit(t, "cycle", cyc.as_dict())
         if len(self.cycles) >= self.plan.max_cycles:
@@ -756,10 +737,12 @@ class RelayExperiment:
                   if all(math.isfinite(x) for x in (c.period, c.amplitude_pp, c.high_time,
                                                     c.low_time, c.mean_pv))]
         avg = mean_cycle(judged)
+        h1 = avg.amplitude_h1 if avg.amplitude_h1 > 0 else avg.amplitude
+        entry = (s.amplitude, s.bias, avg.amplitude, h1)
         if self._history and self._history[-1][:2] == (s.amplitude, s.bias):
-            self._history[-1] = (s.amplitude, s.bias, avg.amplitude)  # refined by one more cycle
+            self._history[-1] = entry  # refined by one more cycle
         else:
-            self._history.append((s.amplitude, s.bias, avg.amplitude))
+            self._history.append(entry)
         new = s
         if self.adjustments < self.plan.max_adjustments:
             new = self._balance_bias(t, judged, new)
@@ -835,10 +818,24 @@ class RelayExperiment:
                                        "gain": self._bias_gain})
         return replace(s, bias=new_bias)
 
+    def dead_zone_estimate(self) -> float | None:
+        """Dead zone (output units) from the PV swing at the relay amplitudes judged so far
+        (`stage_dead_zone`), None with fewer than two distinct amplitudes."""
+        return stage_dead_zone([(h[0], h[3]) for h in self._history])
+
+    def _dead_zone(self, d: float) -> float:
+        """Dead zone used in the predictions: the measured one (plan.deadband) when given, else
+        the estimate from two amplitudes; kept below 0.9 d."""
+        db = self.plan.deadband
+        if db <= 0:
+            db = max(self.dead_zone_estimate() or 0.0, 0.0)
+        return min(db, 0.9 * d)
+
     def _predict(self, d_new: float, d: float, a: float) -> tuple[float, float]:
         """(best, conservative) predicted PV amplitude at d_new from the describing-function
-        proportionality a ~ d, refined by a secant through the last judged cycle at another d."""
-        db = min(self.plan.deadband, 0.9 * d)
+        proportionality a ~ d - dead zone, refined by a secant through the last judged cycle at
+        another d."""
+        db = self._dead_zone(d)
         prop = a * (d_new - db) / (d - db) if d > db else a
         slope = self._secant_slope(d)
         if slope is None:
@@ -847,53 +844,78 @@ class RelayExperiment:
         return sec, max(sec, prop)
 
     def _secant_slope(self, d: float) -> float | None:
-        for d_prev, _, a_prev in reversed(self._history[:-1]):
-            if abs(d_prev - d) > 0.05 * d:
+        for d_prev, _, a_prev, _ in reversed(self._history[:-1]):
+            if abs(d_prev - d) > 0.05 * d and a_prev > 0:
                 slope = (self._history[-1][2] - a_prev) / (d - d_prev)
                 return slope if slope > 0 else None
         return None
 
+    def _room_to_raise(self, d_new: float, d: float, cyc: CycleFigures) -> bool:
+        """Whether d_new > d keeps within the output limit and the PV window prediction."""
+        p = self.plan
+        if d_new > self._amplitude_ceiling(self.relay.settings.bias) * (1 + 1e-9):
+            return False
+        if p.pv_window is None or self.pv_start is None:
+            return True
+        _, worst = self._predict(d_new, d, cyc.amplitude)
+        mid = 0.5 * (cyc.pv_max + cyc.pv_min)
+        return worst + abs(mid - self.pv_start) <= p.pv_window * (1 - p.window_margin)
+
     def _adapt_amplitude(self, t: float, cyc: CycleFigures, s: RelaySettings,
                          n: int = 1) -> RelaySettings:
-        """Raise or lower d towards the target amplitude within the output and window limits.
+        """Move d towards the target amplitude within the output and window limits.
 
         `cyc` holds the mean figures of the `n` settled cycles. The band around the target is
         amplitude_tolerance widened to the peak-reading error of the PV (resolution + 2 noise
-        over the peak-to-peak swing); the PV amplitude is predicted proportional to
-        d - deadband (a secant through an earlier d refines it).
+        over the peak-to-peak swing), and to SETTLED_BAND once plan.amplitude_stages
+        amplitudes were run. Outside it, d goes in one correction to where the PV amplitude is
+        predicted to hit the target: proportional to d - dead zone, or along the secant
+        through an earlier amplitude; up by at most amplitude_step_factor, down to a tenth at
+        most. Inside it, while
+        fewer than plan.amplitude_stages amplitudes were run, d moves by probe_ratio (up where
+        the limits allow, else down) so that a second amplitude measures the dead zone; the
+        probe's own swing is accepted up to twice the target (the target is a guide).
         """
         if not self.plan.adapt_amplitude or s.amplitude <= 0:
             return s
         p = self.plan
         d, a, target = s.amplitude, cyc.amplitude, p.target_amplitude
-        db = min(p.deadband, 0.9 * d)
+        db = self._dead_zone(d)
         _, tol_meas = measurement_tolerances(cyc.period, cyc.amplitude_pp,
                                              noise_std=p.pv_noise, resolution=p.pv_resolution)
         band = max(p.amplitude_tolerance, tol_meas / math.sqrt(max(n, 1)))
         slope = self._secant_slope(d)
-        # d aimed at the target
-        if a < target * (1 - band):
-            if a <= 0:
-                d_t = d * p.amplitude_step_factor
-            elif slope is not None:
-                d_t = d + (target - a) / slope
-            else:
-                d_t = db + (d - db) * target / a
-            d_t = min(max(d_t, d), d * p.amplitude_step_factor)
-        elif a > target * (1 + band):
+        stages = len({round(h[0], 12) for h in self._history})
+        if self._probed:  # the probe moved d on purpose: its swing stands unless far off
+            band = max(band, 1.0)
+        elif stages >= p.amplitude_stages:  # enough amplitudes: another costs three cycles
+            band = max(band, SETTLED_BAND)
+        why = "target"
+        # d aimed at the target: up by at most amplitude_step_factor (a dead zone not yet
+        # known makes the swing grow faster than d), down in one step (to a tenth at most)
+        if a <= 0:
+            d_t = d * p.amplitude_step_factor
+        elif abs(a - target) > band * target:
             d_t = d + (target - a) / slope if slope is not None else db + (d - db) * target / a
-            d_t = max(min(d_t, d), d / p.amplitude_step_factor, db + 0.1 * (d - db))
+            d_t = min(max(d_t, db + 0.1 * (d - db)), d * p.amplitude_step_factor)
+        elif stages < p.amplitude_stages:
+            # a second amplitude, up where the limits allow (a larger swing makes the
+            # hysteresis matter less and the cycles shorter), else down
+            why = "second amplitude"
+            up = d * p.probe_ratio
+            d_t = up if self._room_to_raise(up, d, cyc) else d / p.probe_ratio
+            self._probed = True
         else:
             d_t = d
         limited_by = None
         # PV window: keep the predicted excursion within window * (1 - margin)
-        if p.pv_window is not None and self.pv_start is not None and a > 0:
+        if p.pv_window is not None and self.pv_start is not None and a > 0 and d_t > d:
             mid = 0.5 * (cyc.pv_max + cyc.pv_min)
             allow = p.pv_window * (1 - p.window_margin) - abs(mid - self.pv_start)
             if allow <= 0:
                 d_w = d / p.amplitude_step_factor
             else:
-                d_w = d * allow / a
+                d_w = db + (d - db) * allow / a
                 if slope is not None:
                     d_w = min(d_w, d + (allow - a) / slope)
                 d_w = max(d_w, d / p.amplitude_step_factor)
@@ -914,5 +936,30 @@ class RelayExperiment:
         best, _ = self._predict(d_t, d, a)
         kind = "amplitude_raised" if d_t > d else "amplitude_lowered"
         self._emit(t, kind, {"from": d, "to": d_t, "measured_amplitude": a, "target": target,
-                             "predicted_amplitude": best, "limited_by": limited_by})
+                             "predicted_amplitude": best, "limited_by": limited_by,
+                             "why": why})
         return replace(s, amplitude=d_t)
+
+
+def stage_dead_zone(points: Sequence[tuple[float, float]]) -> float | None:
+    """Dead zone D (output units) from PV amplitudes a (PV units) at relay amplitudes d.
+
+    Behind a dead zone of half-width D the plant sees a relay of d - D, and for a linear plant
+    the oscillation amplitude goes as d - D (describing function of a relay with dead zone;
+    Åström and Hägglund, Advanced PID Control, ISA 2006, from memory): the least-squares line
+    a = c (d - D) through the points gives D. None with fewer than two distinct d or a line
+    that does not rise with d. May be negative (no dead zone, within the scatter).
+    """
+    pts = [(float(d), float(a)) for d, a in points if d > 0 and a > 0]
+    ds = sorted({round(d, 12) for d, _ in pts})
+    if len(ds) < 2 or (ds[-1] - ds[0]) <= 0.05 * ds[-1]:
+        return None
+    n = len(pts)
+    md = sum(d for d, _ in pts) / n
+    ma = sum(a for _, a in pts) / n
+    sxx = sum((d - md) ** 2 for d, _ in pts)
+    sxy = sum((d - md) * (a - ma) for d, a in pts)
+    if sxx <= 0 or sxy <= 0:
+        return None
+    c = sxy / sxx
+    return md - ma / c

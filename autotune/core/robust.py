@@ -19,6 +19,7 @@ import cmath
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy import optimize
@@ -301,6 +302,13 @@ class MeasuredPoint:
     w: float
     g: complex
     uncertainty: float = 0.0
+    harmonic: int = 0  # which harmonic of the relay's square wave (0: the static gain)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"w": self.w, "re": float(self.g.real), "im": float(self.g.imag),
+                "magnitude": float(abs(self.g)),
+                "phase_deg": float(math.degrees(cmath.phase(self.g))),
+                "uncertainty": self.uncertainty, "harmonic": self.harmonic}
 
 
 # A point known no better than +/-50 % bounds nothing a design can use: left out of the design

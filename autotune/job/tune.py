@@ -5,16 +5,21 @@ Wires the pure core (prechecks, relay, safety, analysis, design) to an armed
 stages in order.
 
 Phases (all durations in device time, seconds):
-  rest       output held at the bias for `prechecks.rest_time`: noise, drift, resolution;
-             the relay hysteresis defaults to max(3 x noise, 2 x resolution)
+  rest       output held at the bias for `prechecks.rest_time`: noise, drift, resolution
   direction  one output pulse of `prechecks.pulse_size` until the PV has moved beyond the
-             threshold or `prechecks.pulse_timeout` passed; wrong way or no motion stops the run
-  breakaway  (optional) a slow output ramp measures the deadband; the relay starts above it
+             threshold or `prechecks.pulse_timeout` passed; wrong way or no motion stops the
+             run. The PV resolution is the board's declared one, else the rest's, else the
+             pulse's; the relay hysteresis defaults to max(3 x noise, resolution)
+  breakaway  (prechecks.breakaway = true) two slow output ramps measure the dead zone; the
+             relay starts above it
   relay      host loop (the relay runs here, one SetOutput per sample) or device loop
-             (StartRelay on the board; the host follows, supervises and sends new settings)
-When a confirmation step follows unattended, the job holds the output at the relay's balanced
-bias (`hold_bias`: the motor still powered, so a loaded axis does not drop) while the recorded
-relay samples go to `autotune.core.analysis.analyse_relay` and `autotune.core.design.propose`;
+             (StartRelay on the board; the host follows, supervises and sends new settings);
+             asymmetric by default, at two amplitudes at least
+  breakaway  (prechecks.breakaway = "auto") after the relay, when the swing at its
+             amplitudes shows a dead zone
+The recorded samples, from the rest on, go to `autotune.core.identify` (the same path as
+`autotune analyze`) and the design. When a confirmation step follows unattended, the job holds
+the output at the relay's balanced bias meanwhile (`hold_bias`: a loaded axis does not drop);
 otherwise the motor is stopped first.
 
 Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
@@ -24,15 +29,19 @@ cannot invert its output, so such a loop runs in host loop.
 
 from __future__ import annotations
 
+import math
+import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, field, replace
 from typing import Any
 
 import numpy as np
 
-from autotune.config import Config, check_against_noise
-from autotune.core import analysis
+from autotune.config import Config, check_against_noise, relay_plan
+from autotune.core import analysis, design, identify
 from autotune.core import prechecks as pre
+from autotune.core.conditions import condition_of_identification
+from autotune.core.harmonics import cycle_estimate
 from autotune.core.progress import CycleEstimate, Phase
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
@@ -40,22 +49,26 @@ from autotune.job.powered import PoweredRun, RunEnded
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
 """End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
-DIRECTION_MIN_FRACTION = 0.1  # the pulse must move the PV by a tenth of the target amplitude
-#                               at least (common practice, no source)
+AUTO_BREAKAWAY_FRACTION = 0.05  # "auto": the ramps run after the relay when the swing at its
+#                                 amplitudes shows a dead zone above this share of the relay
+#                                 amplitude (common practice, no source)
 
 
 @dataclass
 class Arrays:
-    """Growing arrays of one phase (device time s, PV units, output units)."""
+    """Growing arrays of one phase (device time s, PV units, output units); `extra` holds a
+    per-sample label (e.g. the phase) when the caller gives one."""
 
     t: list[float] = field(default_factory=list)
     pv: list[float] = field(default_factory=list)
     out: list[float] = field(default_factory=list)
+    extra: list[Any] = field(default_factory=list)
 
-    def add(self, t: float, pv: float, out: float) -> None:
+    def add(self, t: float, pv: float, out: float, extra: Any = None) -> None:
         self.t.append(t)
         self.pv.append(pv)
         self.out.append(out)
+        self.extra.append(extra)
 
     def np(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         return np.array(self.t), np.array(self.pv), np.array(self.out)
@@ -85,18 +98,6 @@ def choose_loop(requested: str, has_device_relay: bool, has_host_loop: bool,
     return "host"
 
 
-def steady_cycles(cycles: list[Any], tol: float, *, min_cycles: int = 4, tick: float = 0.0,
-                  noise_std: float = 0.0, resolution: float = 0.0,
-                  hysteresis: float = 0.0) -> bool:
-    """Has the relay oscillation settled? See autotune.core.relay.steady_converged (tick s, noise and
-    resolution PV units: the tolerance widens to the switching jitter and peak-reading error
-    they cause)."""
-    from autotune.core.relay import steady_converged
-
-    return steady_converged(cycles, tol, min_cycles=min_cycles, hysteresis=hysteresis,
-                            tick=tick, noise_std=noise_std, resolution=resolution)
-
-
 @dataclass(frozen=True)
 class RelayEnd:
     """How the relay experiment ended: `reason` ("converged", "max_cycles", "max_time",
@@ -118,8 +119,7 @@ class TuneRun:
     """The identification stages of a job, run on an armed PoweredRun by autotune.job.job:
     `prechecks(run)`, `relay(run)` (returns a RelayEnd, the motor still powered), `hold_bias`
     (the output held at the relay's balanced bias) and `analyse(...)` (the result dict:
-    figures, proposals).
-    analyse=False skips the model fit and design (relay figures only)."""
+    figures, proposals). analyse=False skips the model fit and design (relay figures only)."""
 
     def __init__(self, cfg: Config, *, analyse: bool = True) -> None:
         self.cfg = cfg
@@ -134,11 +134,19 @@ class TuneRun:
         self.centre = 0.0  # PV units (raw)
         self.experiment: RelayExperiment | None = None
         self.relay_data = Arrays()  # sign-normalised PV, applied output
+        self.samples = Arrays()  # from the rest on: sign-normalised PV, output, phase, state
+        self.state: list[float] = []
+        self.t_first_motion: float | None = None
+        self.t_powered_end: float | None = None
+        self.resolution = 0.0  # PV units: the board's, the rest's or the pulse's
         self.estimates: list[CycleEstimate] = []
+        self._state_of: Callable[[Any], float] | None = None
+        self._host_state = 0.0
         self.precheck_results: dict[str, Any] = {}
         self.run: PoweredRun | None = None
         self._rest_t = np.zeros(0)
         self._t_pulse = 0.0
+        self._threshold = 0.0
         self._rest_y = np.zeros(0)
 
     # ------------------------------------------------------------------ stages
@@ -153,10 +161,30 @@ class TuneRun:
         self.run = run
         return self._relay(run)
 
+    def hold_bias(self, run: PoweredRun, bias: float) -> None:
+        """End the relay at its balanced bias: a host loop holds it; a board relay is replaced
+        by that output where the board takes host outputs (else its relay runs on until the
+        next stage takes over). The no-response detector stands down: closed-loop stages
+        follow."""
+        if run.supervisor is not None:
+            run.supervisor.disarm_response()
+        if run.loop_mode == "host" or run.info.has_host_loop:
+            run.set_output(bias)
+            run.event("relay_end", {"bias": bias})
+
     # ------------------------------------------------------------------ helpers
     def _y(self, pv: float) -> float:
         """PV as the core sees it (sign-normalised)."""
         return self.sign * pv
+
+    def _next(self, run: PoweredRun, publish: bool = True) -> Any:
+        """The next sample (run.next_sample), kept for the analysis as the session records it:
+        sign-normalised PV, applied output, phase, and the relay state the recorder writes
+        with it (NaN outside the relay)."""
+        rec = run.next_sample(publish=publish)
+        self.samples.add(rec.t, self._y(rec.pv), rec.output, run.phase.value)
+        self.state.append(self._state_of(rec) if self._state_of is not None else math.nan)
+        return rec
 
     def _hold(self, run: PoweredRun, output: float, duration: float,
               until: Callable[[Any], bool] | None = None) -> list[Any]:
@@ -181,7 +209,7 @@ class TuneRun:
         got: list[Any] = []
         t0: float | None = None
         while True:
-            rec = run.next_sample()
+            rec = self._next(run)
             if t0 is None:
                 if rec.received_at < sent_at:
                     continue  # queued before the command
@@ -222,21 +250,21 @@ class TuneRun:
         run.event("precheck", rest.as_dict(), check="rest", ok=rest.ok)
         if not rest.ok:
             raise RunEnded("precheck:rest", rest.message, EXIT_FAILED)
+        # the board's declared PV step (handshake), when it declares one
+        board_resolution = float(getattr(run.info, "pv_resolution", 0.0) or 0.0)
         try:
-            check_against_noise(cfg, rest.noise_std, rest.resolution)
+            check_against_noise(cfg, rest.noise_std,
+                                pre.pv_resolution(board_resolution, rest.resolution))
         except ConfigError as exc:
             raise RunEnded("precheck:rest", str(exc), EXIT_USAGE) from None
-        if self.hysteresis is None:
-            self.hysteresis = rest.suggested_hysteresis
         self.centre = rest.mean
         run.say(f"rest: noise {rest.noise_std:.3g}, drift {rest.drift:.3g}/s, resolution "
-                f"{rest.resolution:.3g}; hysteresis {self.hysteresis:.3g}")
+                f"{rest.resolution:.3g}")
         # 2. direction
         size = cfg.pulse_size
         run.set_phase(Phase.PRECHECK_DIRECTION, f"output pulse of {size:g}")
         base = self._y(rest.mean)
-        threshold = max(5.0 * rest.noise_std,
-                        DIRECTION_MIN_FRACTION * cfg.relay.target_amplitude)
+        threshold = pre.direction_threshold(rest.noise_std, cfg.relay.target_amplitude)
         # the drift seen at rest (a load on an integrating loop) is taken out, so that the
         # pulse's own effect decides the direction
         drift = self.sign * rest.significant_drift
@@ -254,6 +282,7 @@ class TuneRun:
 
         t_pulse = run.last_sample.t
         self._t_pulse = t_pulse
+        self.t_first_motion = t_pulse
         recs = self._hold(run, bias + size, cfg.prechecks.pulse_timeout, until=moved)
         run.set_output(bias)
         # baseline: the rest samples; then the pulse (the first one answers at the next tick)
@@ -261,13 +290,21 @@ class TuneRun:
         y = detrend(t, np.concatenate([self._rest_y, [self._y(r.pv) for r in recs]]))
         d = pre.assess_direction(t, y, t_pulse, +1, rest.noise_std, expected_sign=+1,
                                  min_change=threshold)
+        # a sensor that reads exactly constant at rest shows its step once the PV moves
+        d = replace(d, resolution=pre.smallest_step([r.pv for r in recs]))
         self.direction = d
-        self.precheck_results["direction"] = d.as_dict()
-        run.event("precheck", d.as_dict(), check="direction", ok=d.ok)
+        self.resolution = pre.pv_resolution(board_resolution, rest.resolution, d.resolution)
+        if self.hysteresis is None:
+            self.hysteresis = pre.relay_hysteresis(rest.noise_std, self.resolution)
+        detail = {**d.as_dict(), "t_pulse": t_pulse, "board_resolution": board_resolution,
+                  "resolution_used": self.resolution, "hysteresis": self.hysteresis}
+        self.precheck_results["direction"] = detail
+        run.event("precheck", detail, check="direction", ok=d.ok)
         if not d.ok:
             raise RunEnded("precheck:direction", d.message, EXIT_FAILED)
         run.say(f"direction: PV moved {self.sign * d.change:+.3g} for an output pulse of "
-                f"{size:+g}: as expected")
+                f"{size:+g}: as expected; resolution {self.resolution:.3g}, hysteresis "
+                f"{self.hysteresis:.3g}")
         if run.supervisor is not None:
             # from now on an output step of `size` or more must move the PV out of its noise
             # band within twice the time the pulse needed (at least pulse_timeout), else
@@ -278,15 +315,18 @@ class TuneRun:
             run.supervisor.expect_response(
                 bias, size, noise_band(rest.noise_std, rest.resolution, rest.mean),
                 max(cfg.prechecks.pulse_timeout, 2.0 * took))
-        # 3. breakaway
-        if cfg.prechecks.breakaway:
+        self._threshold = threshold
+        # 3. breakaway (before the relay only when asked for; "auto" runs it after the relay
+        # where the relay's swing at two amplitudes shows a dead zone)
+        if cfg.prechecks.breakaway is True:
             self._breakaway(run, threshold)
 
-    def _breakaway(self, run: PoweredRun, threshold: float) -> None:
+    def _breakaway(self, run: PoweredRun, threshold: float, period: float | None = None) -> None:
         """Two output ramps (up at breakaway_rate, down at twice it) measure the deadband.
 
         Each ramp starts from rest at the bias (held max(3 x rest_time, 10 x the direction
-        pulse's response time) first) and stops once the PV has moved a few noise
+        pulse's response time) first; after the relay, with its `period` (s) known,
+        max(rest_time, 2 periods)) and stops once the PV has moved a few noise
         levels (at most 0.3 of the PV window); `prechecks.deadband_from_two_ramps`
         compares the times the two responses take to reach matching levels, which cancels the
         loop's lag and dead time. If the PV moved too little for that, the first ramp's upper
@@ -320,7 +360,7 @@ class TuneRun:
             data = Arrays()  # t from the ramp start, motion in the ramp's direction, output
             recent: list[float] = []
             while True:
-                rec = run.next_sample()
+                rec = self._next(run)
                 dev = direction * (self._y(rec.pv) - base - drift * (rec.t - t0))
                 data.add(rec.t - t0, dev, rec.output)
                 recent.append(dev)
@@ -343,6 +383,8 @@ class TuneRun:
         if self.direction is not None and self.direction.t_response is not None:
             lag = max(0.0, self.direction.t_response - self._t_pulse)
         settle = max(3.0 * cfg.prechecks.rest_time, 10.0 * lag)
+        if period is not None:
+            settle = max(cfg.prechecks.rest_time, 2.0 * period)
         stop_a = level_max + 2.0 * max(rest.resolution, noise)
         ramp_a, _ = ramp(rate_a, +1, stop_a)
         ramp_b, _ = ramp(rate_b, -1, ratio * level_max + 2.0 * max(rest.resolution, noise))
@@ -368,9 +410,16 @@ class TuneRun:
             detail["note"] = "below 3 x its spread: taken as no dead zone"
             deadband = 0.0
         detail["deadband"] = deadband
+        detail["after_relay"] = period is not None
+        self.t_powered_end = run.last_sample.t
+        detail["t_end"] = self.t_powered_end
         self.deadband = deadband or 0.0
         self.precheck_results["breakaway"] = detail
         run.event("precheck", detail, check="breakaway", ok=deadband is not None)
+        if period is not None:  # after the relay: its figures stand either way
+            run.say(f"breakaway: dead zone {deadband if deadband is not None else 0.0:.3g} "
+                    f"(+/- {two.spread:.2g}, {detail['method']})")
+            return
         if deadband is None:
             raise RunEnded("precheck:breakaway", two.message or bound.message, EXIT_FAILED)
         # start the relay above the deadband (twice it: common practice, no source)
@@ -380,36 +429,15 @@ class TuneRun:
 
     # ------------------------------------------------------------------ relay
     def _plan(self) -> RelayPlan:
-        r = self.cfg.relay
-        return RelayPlan(
-            target_amplitude=r.target_amplitude,
-            start_amplitude=self.start_amplitude,
-            amplitude_step_factor=max(r.amplitude_step_factor, 1.0 + 1e-6),
-            pv_window=self.cfg.safety.pv_window,
-            adapt_amplitude=r.adapt_amplitude,
-            balance_bias=r.balance_bias,
-            bias_tolerance=r.bias_tolerance,
-            max_cycles=r.max_cycles,
-            max_time=r.max_time,
-            converge_tol=r.converge_tol,
-            stall_time=r.stall_time,
-            amplitude_tolerance=r.amplitude_tolerance,
-            deadband=self.deadband,
-            tick=self.run.info.tick * self.run.decimation if self.run is not None else 0.0,
-            pv_noise=self.rest.noise_std if self.rest else 0.0,
-            pv_resolution=self.rest.resolution if self.rest else 0.0,
-        )
-
-    def hold_bias(self, run: PoweredRun, bias: float) -> None:
-        """End the relay at its balanced bias: a host loop holds it; a board relay is replaced
-        by that output where the board takes host outputs (else its relay runs on until the
-        next stage takes over)."""
-        run.clear_sample_extra()
-        if run.supervisor is not None:
-            run.supervisor.disarm_response()  # closed-loop stages follow
-        if run.loop_mode == "host" or run.info.has_host_loop:
-            run.set_output(bias)
-            run.event("relay_end", {"bias": bias})
+        rest, d = self.rest, self.direction
+        response = 0.0
+        if d is not None and d.t_response is not None:
+            response = max(0.0, d.t_response - self._t_pulse)
+        return relay_plan(self.cfg.relay, start_amplitude=self.start_amplitude,
+                          pv_window=self.cfg.safety.pv_window, deadband=self.deadband,
+                          tick=self._interval(),
+                          pv_noise=rest.noise_std if rest else 0.0,
+                          pv_resolution=self.resolution, response_time=response)
 
     def _relay(self, run: PoweredRun) -> RelayEnd:
         from protocol.messages import StartRelay
@@ -417,9 +445,9 @@ class TuneRun:
         cfg = self.cfg
         assert self.hysteresis is not None
         settings = RelaySettings(centre=self._y(self.centre), bias=cfg.relay.bias,
-                                 amplitude=self.start_amplitude, hysteresis=self.hysteresis)
+                                 amplitude=self.start_amplitude, hysteresis=self.hysteresis,
+                                 asymmetry=cfg.relay.asymmetry)
         exp = RelayExperiment(self._plan(), settings, cfg.safety.output_limit,
-                              converged=self._converged,
                               pv_start=self._y(run.pv_start or self.centre),
                               confirm_samples=cfg.relay.confirm_samples)
         self.experiment = exp
@@ -440,9 +468,15 @@ class TuneRun:
             # the board reports its relay state with every sample
             run.sample_hook = lambda rec: ({"state": 1 if rec.flags & FLAG_RELAY_HIGH else -1}
                                            if rec.mode == 2 else {})
+            self._state_of = lambda rec: run.sample_hook(rec).get("state", math.nan)
             start_relay(exp.settings)
+        else:
+            # every relay sample carries the state whose output it shows (0 before the first)
+            run.sample_extra(state=0)
+            self._host_state = 0.0
+            self._state_of = lambda rec: self._host_state
         while True:
-            rec = run.next_sample(publish=False)
+            rec = self._next(run, publish=False)
             y = self._y(rec.pv)
             if device:
                 if rec.mode != 2:  # not yet in relay mode (the request is in flight)
@@ -454,6 +488,7 @@ class TuneRun:
             if not device:
                 # recorded with the next sample: the state whose output that sample shows
                 run.sample_extra(state=step.state)
+                self._host_state = float(step.state)
             if step.done:
                 self._events(run, step.events)
                 reason = step.end_reason or "completed"
@@ -462,6 +497,12 @@ class TuneRun:
                     reason = "fault:no_response"
                     message = ("no response: the PV did not move while the relay drove the "
                                "output; check the sensor, its wiring and the motor power")
+                self.t_powered_end = rec.t
+                run.event("relay_final", exp.settings.as_dict())
+                self._state_of = None
+                run.clear_sample_extra()
+                if reason == "converged":
+                    self._after_relay(run, exp)
                 code = EXIT_OK if reason == "converged" else EXIT_FAILED
                 return RelayEnd(reason, message, code, rec.t, exp.settings.bias)
             if device:
@@ -472,6 +513,20 @@ class TuneRun:
             self._events(run, step.events)
             run.publish()
 
+    def _after_relay(self, run: PoweredRun, exp: RelayExperiment) -> None:
+        """prechecks.breakaway = "auto": the ramps run now when the swing at the relay's
+        amplitudes shows a dead zone of AUTO_BREAKAWAY_FRACTION of the amplitude or more."""
+        if self.cfg.prechecks.breakaway != "auto" or not run.info.has_host_loop:
+            return
+        est = exp.dead_zone_estimate()
+        d = exp.settings.amplitude
+        if est is None or not est > AUTO_BREAKAWAY_FRACTION * d:
+            return
+        run.say(f"the relay's swing at two amplitudes shows a dead zone of about {est:.3g}: "
+                "measuring it with the breakaway ramps")
+        period = exp.cycles[-1].period if exp.cycles else None
+        self._breakaway(run, self._threshold, period=period)
+
     def _pv_frozen(self, t_end: float) -> bool:
         """True when the PV stayed within its noise band over the last relay.stall_time s."""
         t, y, _ = self.relay_data.np()
@@ -481,16 +536,6 @@ class TuneRun:
         rest = self.rest
         band = max(3.0 * rest.noise_std, rest.resolution) if rest else 0.0
         return float(np.ptp(y[sel])) <= band
-
-    def _converged(self, cycles: Any) -> bool:
-        assert self.run is not None
-        rest = self.rest
-        return steady_cycles(list(cycles), self.cfg.relay.converge_tol,
-                             min_cycles=self.cfg.relay.min_cycles,
-                             tick=self.run.info.tick * self.run.decimation,
-                             noise_std=rest.noise_std if rest else 0.0,
-                             resolution=rest.resolution if rest else 0.0,
-                             hysteresis=self.hysteresis or 0.0)
 
     def _end_message(self, reason: str) -> str:
         exp = self.experiment
@@ -508,11 +553,13 @@ class TuneRun:
         for ev in events:
             if ev.kind == "cycle":
                 c = ev.detail
-                # plain describing function, live figure only (the analysis refines it)
-                ku = analysis.classic_ultimate_gain(c["amplitude_d"], 0.5 * c["amplitude_pp"],
-                                                    self.hysteresis or 0.0)
+                # plain describing function of this cycle, and the refined live figure from
+                # the harmonics of the cycles at this amplitude (the analysis refines it again)
+                ku_df = analysis.df_ultimate_gain(c["amplitude_d"], 0.5 * c["amplitude_pp"],
+                                                  self.hysteresis or 0.0)
+                ku, tu = self._live_estimate(exp, c)
                 self.estimates.append(CycleEstimate(c["index"], c["period"], c["amplitude_pp"],
-                                                    ku, c["period"]))
+                                                    ku, tu, ku_df, c["period"]))
                 run.snapshot_extra.update(cycle=len(exp.cycles), estimates=tuple(self.estimates))
             elif ev.kind == "converged":
                 run.snapshot_extra["converged"] = True
@@ -520,11 +567,61 @@ class TuneRun:
                 run.writer.event(ev.t, ev.kind, ev.detail)
             run.publish(force=True)
 
+    def _live_estimate(self, exp: RelayExperiment, c: Mapping[str, Any]) -> tuple[float, float]:
+        """(Ku, Tu) after cycle `c` (a cycle event's detail) from the harmonics of the cycles at
+        its relay amplitude (the first after a change left out when there are more); the plain
+        figures when the harmonics do not bracket the crossover."""
+        same = []
+        for cyc in reversed(exp.cycles[:c["index"]]):
+            if cyc.amplitude_d != c["amplitude_d"] or cyc.bias != c["bias"]:
+                break
+            same.append(cyc)
+        same.reverse()
+        if len(same) > 1:
+            same = same[1:]
+        t = np.asarray(self.relay_data.t)
+        sel = (t >= same[0].t_start) & (t < c["t_end"])
+        est = None
+        if sel.sum() >= 8:
+            est = cycle_estimate(t[sel], np.asarray(self.relay_data.pv)[sel],
+                                 np.asarray(self.relay_data.out)[sel], self._interval(),
+                                 self.rest.noise_std if self.rest else 0.0, cycles=len(same))
+        if est is None or not all(math.isfinite(x) and x > 0 for x in est):
+            return (analysis.df_ultimate_gain(c["amplitude_d"], 0.5 * c["amplitude_pp"],
+                                              self.hysteresis or 0.0), c["period"])
+        return est
+
     # ------------------------------------------------------------------ analysis
+    def _interval(self) -> float:
+        """Seconds between the samples the host gets: the tick times the stream decimation."""
+        run = self.run
+        return 0.0 if run is None else run.info.tick * run.decimation
+
+    def run_record(self, run: PoweredRun, reason: str) -> identify.RunRecord:
+        """What this run recorded, in the shape the session file holds it (the live run's side
+        of the one analysis path; `autotune analyze` builds the same from the file)."""
+        exp = self.experiment
+        assert exp is not None
+        s = exp.settings
+        t, y, u = self.samples.np()
+        return identify.RunRecord(
+            t=t, y=y, u=u, phase=np.array(self.samples.extra, dtype=object),
+            settings=identify.RelaySettingsRecord(s.centre, s.bias, s.amplitude, s.hysteresis,
+                                                  s.asymmetry),
+            state=np.array(self.state, dtype=float), tick=self._interval(),
+            output_limit=self.cfg.safety.output_limit, relay=asdict(self.cfg.relay),
+            rest=self.precheck_results.get("rest"),
+            direction=self.precheck_results.get("direction"),
+            breakaway=self.precheck_results.get("breakaway"),
+            pv_resolution=float((self.precheck_results.get("direction") or {}).get(
+                "board_resolution", 0.0) or 0.0),
+            sign=self.sign, t_first_motion=self.t_first_motion,
+            t_powered_end=self.t_powered_end, end_reason=reason)
+
     def analyse(self, run: PoweredRun, reason: str, message: str) -> dict[str, Any]:
-        """The result dict (result.json fields) of the recorded relay; `reason`/`message`: how
-        the relay (or the run) ended. Pure computation on what was recorded: safe to run while
-        the motor holds its bias."""
+        """The result dict (result.json fields) of the recorded run; `reason`/`message`: how
+        the relay (or the run) ended. Pure computation on what was recorded: safe to run in a
+        worker thread while the motor holds its bias (it records nothing)."""
         exp = self.experiment
         assert exp is not None
         cfg = self.cfg
@@ -542,91 +639,92 @@ class TuneRun:
             "device": {"name": info.device_name, "firmware": info.firmware, "tick": info.tick},
             "notes": [],
         }
-        t, y, u = self.relay_data.np()
-        noise = self.rest.noise_std if self.rest else 0.0
         result["cycles_used"] = 0
         if not self.fit_model:
             result["notes"].append("analysis skipped: only the relay figures are reported")
-            self._classic_only(result, exp)
+            self._df_only(result, exp)
             return result
         if reason not in ANALYSED_ENDINGS:
             result["notes"].append(
                 f"the relay did not run to its end ({reason}): only the plain "
                 "relay figures are reported; `autotune analyze` on the session file analyses "
                 "the cycles recorded")
-            self._classic_only(result, exp)
+            self._df_only(result, exp)
             return result
-        if self.deadband > 0:
-            # the plant sees a relay of d - deadband: the dead zone taken out of the output
-            # (continuous dead zone u - sign(u) deadband) before the analysis
-            db = self.deadband
-            u = np.where(np.abs(u) <= db, 0.0, u - np.sign(u) * db)
-            s = replace(s, amplitude=max(s.amplitude - db, 1e-9))
-            result["deadband"] = {
-                "deadband": db, "method": self.precheck_results.get("breakaway", {}).get(
-                    "method"),
-                "relay_amplitude": exp.settings.amplitude, "effective_amplitude": s.amplitude,
-                "correction": "analysis on the output minus the dead zone (u - sign(u) "
-                              "deadband); Ku without it would be inflated by about "
-                              f"d / (d - deadband) = {exp.settings.amplitude / s.amplitude:.4g}"}
         try:
-            an = analysis.analyse_relay(t, y, u, s, noise_std=noise,
-                                        ts=info.tick * run.decimation,
-                                        output_limit=cfg.safety.output_limit,
-                                        converge_tol=cfg.relay.converge_tol)
-        except Exception as exc:  # noqa: BLE001 (report, do not crash after a stopped run)
+            fields, notes = analyse_record(self.run_record(run, reason), design_table(cfg),
+                                           cfg.relay.target_amplitude)
+        except analysis.AnalysisError as exc:
             result["notes"].append(f"analysis failed: {exc}")
-            self._classic_only(result, exp)
+            self._df_only(result, exp)
             return result
-        result.update(analysis.result_fields(an))
+        result.update(fields)
         result["end_reason"] = reason
-        if self.deadband > 0:
-            # the contract's `relay` holds the settings as used; the analysis saw d - deadband
-            result["relay"] = {**result.get("relay", {}), "amplitude": exp.settings.amplitude,
-                               "bias": exp.settings.bias,
-                               "effective_amplitude": exp.settings.amplitude - self.deadband}
-        for w in an.warnings:
-            result["notes"].append(str(w))
-        result["proposals"] = propose_gains(an, asdict(cfg.design), cfg.safety.output_limit,
-                                            cfg.relay.target_amplitude, info.tick,
-                                            result["notes"])
+        result["notes"].extend(notes)
         if self.sign == -1:
             result["notes"].append("sign = -1: gains are for the sign-normalised loop; the "
                                    "controller must act on -error (or negate the gains)")
         return result
 
-    def _classic_only(self, result: dict[str, Any], exp: RelayExperiment) -> None:
+    def _df_only(self, result: dict[str, Any], exp: RelayExperiment) -> None:
         """Plain describing-function figures from the last settled cycles (no model)."""
         cyc = exp.settled_cycles[-3:] or exp.cycles[-3:]
         result.update(cycles_used=len(cyc), proposals=[])
         if cyc:
-            ku, tu = analysis.classic_estimate(cyc, hysteresis=exp.settings.hysteresis)
-            result.update(ultimate_gain_classic=ku, ultimate_period_classic=tu)
+            ku, tu = analysis.df_estimate(cyc, hysteresis=exp.settings.hysteresis)
+            result.update(ultimate_gain_df=ku, ultimate_period_df=tu)
 
 
-def propose_gains(an: analysis.RelayAnalysis, design_cfg: Mapping[str, Any],
+def analyse_record(record: identify.RunRecord, design_cfg: Mapping[str, Any],
+                   target_amplitude: float | None) -> tuple[dict[str, Any], list[str]]:
+    """The analysis fields of result.json and the notes for a run record: the one path of the
+    live run and of `autotune analyze` (autotune.core.identify, then `propose_gains`).
+    Raises autotune.core.analysis.AnalysisError when the record cannot be analysed."""
+    ident = identify.identify(identify.analysis_inputs(record))
+    fields = identify.result_fields(ident)
+    notes = list(ident.warnings)
+    fields["proposals"] = propose_gains(ident, design_cfg, record.output_limit,
+                                        target_amplitude, ident.analysis.ts, notes)
+    return fields, notes
+
+
+def propose_gains(ident: identify.Identification, design_cfg: Mapping[str, Any],
                   output_limit: float | None, target_amplitude: float | None,
                   ts: float | None, notes: list[str]) -> list[dict[str, Any]]:
-    """The result.json `proposals` for an analysis, live and offline alike.
+    """The result.json `proposals` for an identification, live and offline alike.
 
-    design_cfg: the config's [design] table (ms_target, max_overshoot (%), max_settling_time
-    (s), step_size (PV units; None = the relay's target amplitude)); output_limit in output
-    units; ts the loop period (s). The designs are held to the measured points too
-    (`conditions.condition_of_analysis`). A design failure is reported in `notes`, not raised:
-    the analysis itself stands; so are a model that fails its validation and a default that
-    does not meet the spec (or no default at all), with what to do.
+    design_cfg: the design limits (`design_table`: ms_target, max_overshoot (%),
+    max_settling_time (s), step_size (PV units; None = the relay's target amplitude));
+    output_limit in output units; ts the loop period (s). The designs are held to the measured
+    points too (`conditions.condition_of_analysis`); where the model does not reproduce what
+    was measured, PI is preferred and every prediction is marked unreliable. A design failure,
+    a default that misses the spec or no default at all is reported in `notes` in our own
+    words, not raised: the analysis itself stands.
     """
-    from autotune.core import design
-    from autotune.core.conditions import condition_of_analysis
-
+    an = ident.analysis
     spec = design.spec_from_config(design_cfg, output_limit, target_amplitude, ts)
+    tf = an.model.tf
+    if not all(math.isfinite(c) for c in tf.num + tf.den):
+        notes.append("no gains proposed: the identified model is not usable; run the relay "
+                     "again with a larger amplitude")
+        return []
+    cond = condition_of_identification("session", ident)
     try:
-        res = design.design_proposals([condition_of_analysis("session", an)], spec)
-    except Exception as exc:  # noqa: BLE001 - report, the analysis itself stands
-        notes.append(f"design failed: {exc}")
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            res = design.design_proposals([cond], spec)
+    except Exception:  # noqa: BLE001 - report in our words, the analysis itself stands
+        notes.append("no gains proposed: the design found no usable gains for the identified "
+                     "model; check the warnings above and run the relay again")
         return []
     notes.extend(res.warnings)
     chosen = res.get(res.default) if res.default else None
     if chosen is None or not chosen.meets_spec:
         notes.append(res.note)
     return [p.as_dict() for p in res.proposals]
+
+
+def design_table(cfg: Config) -> dict[str, Any]:
+    """The design limits of a config: its [design] table, with the overshoot the confirmation
+    step's spec allows ([spec] max_overshoot) binding when the table sets none or more."""
+    return design.design_limits(asdict(cfg.design), asdict(cfg.spec))

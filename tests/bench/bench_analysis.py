@@ -19,7 +19,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
 import numpy as np  # noqa: E402
 
-from autotune.core.analysis import analyse_relay, cycles_to_converge, extract_cycles  # noqa: E402
+from autotune.core.analysis import analyse_relay, extract_cycles  # noqa: E402
+from autotune.core.convergence import cycles_to_converge  # noqa: E402
 from tests.relaysim import BATCH, batch_run  # noqa: E402
 
 NOISE_LEVELS = (0.0, 0.02, 0.05)
@@ -49,7 +50,7 @@ def main() -> None:
             tol = max(0.02, 6 * an.noise_std / an.amplitude / np.sqrt(every[-1].i_end -
                                                                      every[-1].i_start))
             conv = cycles_to_converge(every, tol)
-            e = (an.ku_classic / ku - 1, an.ku / ku - 1, an.tu_classic / tu - 1, an.tu / tu - 1)
+            e = (an.ku_df / ku - 1, an.ku / ku - 1, an.tu_df / tu - 1, an.tu / tu - 1)
             worst[nf] = [max(w, abs(x)) for w, x in zip(worst[nf], e, strict=True)]
             print(f"{name:13s} {100 * nf:4.0f}% | {100 * e[0]:+6.1f}% {100 * e[1]:+6.2f}% "
                   f"{100 * an.uncertainty['ultimate_gain']:5.1f}% | {100 * e[2]:+6.1f}% "

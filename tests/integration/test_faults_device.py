@@ -28,7 +28,8 @@ REPO = Path(__file__).resolve().parents[2]
 
 def test_stuck_sensor_stops_with_no_response(tmp_path: Path) -> None:
     outcome, tr, s = run_faulty(tmp_path, "stuck_after=6",
-                                {"connection": {"loop": "host"}, "relay": {"max_cycles": 50}})
+                                {"connection": {"loop": "host"},
+                                 "relay": {"max_cycles": 50, "min_cycles": 40}})
     assert outcome.reason == "fault:no_response", (outcome.reason, outcome.message)
     assert outcome.exit_code == EXIT_FAILED
     assert outcome.stop_confirmed
@@ -68,7 +69,8 @@ def test_spikes_cause_no_false_switches(tmp_path: Path) -> None:
 
 def test_runaway_host_guard_trips_within_one_tick(tmp_path: Path) -> None:
     outcome, tr, s = run_faulty(tmp_path, "unstable=0.4",
-                                {"connection": {"loop": "host"}, "relay": {"max_cycles": 50}})
+                                {"connection": {"loop": "host"},
+                                 "relay": {"max_cycles": 50, "min_cycles": 40}})
     assert outcome.reason in ("limit:pv_window", "limit:pv_rate", "fault:pv_window"), \
         (outcome.reason, outcome.message)
     assert outcome.stop_confirmed

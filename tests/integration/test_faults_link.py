@@ -87,14 +87,19 @@ def test_corruption_below_threshold_counted_and_never_acted_on(tmp_path: Path) -
         d = ev.get("detail")
         if isinstance(d, dict) and "amplitude" in d and "bias" in d:
             settings.append(d)
+    # the relay's levels: bias + d (1 + a) and bias - d (1 - a), a its asymmetry
+    asym = settings[0].get("asymmetry", 0.0) if settings else 0.0
+    for d in settings[:1]:  # the direction pulse (bias + the start amplitude by default) may
+        levels.add(round(d["bias"] + d["amplitude"], 3))  # still show as the relay starts
     for d in settings:
-        levels.add(round(d["bias"] + d["amplitude"], 3))
-        levels.add(round(d["bias"] - d["amplitude"], 3))
+        a = d.get("asymmetry", asym)
+        levels.add(round(d["bias"] + d["amplitude"] * (1 + a), 3))
+        levels.add(round(d["bias"] - d["amplitude"] * (1 - a), 3))
     changed = [e["detail"] for e in s.events if e["kind"] in ("amplitude_raised",
                                                               "amplitude_lowered")]
     for d in changed:
         for amp in (d["from"], d["to"]):
-            levels.update({round(amp, 3), round(-amp, 3)})
+            levels.update({round(amp * (1 + asym), 3), round(-amp * (1 - asym), 3)})
     outs = {round(float(u), 3) for u in s.out[relay]}
     assert outs <= levels, outs - levels
     assert np.all(np.abs(s.pv) < 10.0)

@@ -203,9 +203,10 @@ def test_cli_sim_run_writes_contract_files(tmp_path: Path) -> None:
     assert s.phase_mask("relay").any() and s.phase_mask("step").any()
     assert s.header["loop_mode"] == "device"
     result = json.loads((out / "result.json").read_text())
-    for key in ("ultimate_gain", "ultimate_period", "ultimate_gain_classic",
-                "ultimate_period_classic", "uncertainty", "model", "cycles_used", "proposals",
-                "relay", "end_reason"):
+    for key in ("ultimate_gain", "ultimate_period", "ultimate_gain_df", "ultimate_period_df",
+                "static_gain", "velocity_gain", "normalized_dead_time", "dead_zone",
+                "powered_time", "powered_time_tu", "uncertainty", "model", "cycles_used",
+                "proposals", "relay", "end_reason"):
         assert key in result, key
     assert result["end_reason"] == "converged"
     assert set(result["relay"]) >= {"amplitude", "hysteresis", "bias"}

@@ -1,13 +1,12 @@
-"""Small pure pieces of the tune runner: loop choice, the steady-state test."""
+"""Small pure pieces of the tune runner: the loop choice (the steady-state test is
+autotune.core.convergence's: tests/test_convergence.py)."""
 
 from __future__ import annotations
-
-from dataclasses import dataclass
 
 import pytest
 
 from autotune.errors import UserError
-from autotune.job.tune import choose_loop, steady_cycles
+from autotune.job.tune import choose_loop
 
 
 def test_choose_loop() -> None:
@@ -23,21 +22,3 @@ def test_choose_loop() -> None:
         choose_loop("auto", False, False, 1)
 
 
-@dataclass
-class C:
-    period: float
-    amplitude_pp: float
-
-
-def test_steady_cycles() -> None:
-    same = [C(1.0, 2.0)] * 5
-    assert steady_cycles(same, 0.02, min_cycles=5)
-    assert not steady_cycles(same[:4], 0.02, min_cycles=5)
-    growing = [C(1.0, 1.0 + 0.1 * k) for k in range(6)]
-    assert not steady_cycles(growing, 0.02, min_cycles=4)
-    # a 5% amplitude wobble is within what a 0.05 resolution resolves on a 1.0 swing
-    wobble = [C(0.52, 1.0), C(0.52, 1.0), C(0.53, 0.95), C(0.52, 0.95)]
-    assert not steady_cycles(wobble, 0.02, min_cycles=4)
-    assert steady_cycles(wobble, 0.02, min_cycles=4, tick=0.01, resolution=0.05)
-    jumpy = [C(0.5, 1.0), C(0.5, 1.0), C(0.6, 1.0), C(0.6, 1.0)]
-    assert not steady_cycles(jumpy, 0.02, min_cycles=4, tick=0.01, resolution=0.05)

@@ -112,7 +112,8 @@ def test_ideal_relay_limit_cycle_matches_fopdt_formula(tmp_path: Path, loop: str
         "connection": {"loop": loop},
         "safety": {"output_limit": 10.0, "pv_window": 8.0, "max_duration": 120.0},
         "relay": {"start_amplitude": d, "target_amplitude": 3.0, "hysteresis": 0.0,
-                  "adapt_amplitude": False, "balance_bias": False, "max_cycles": 12,
+                  "asymmetry": 0.0, "adapt_amplitude": False, "balance_bias": False,
+                  "max_cycles": 12,
                   # host: always run all 12 cycles, so that a few late answers still leave
                   # enough clean cycles
                   "min_cycles": 8 if loop == "device" else 12, "converge_tol": 0.02,
@@ -215,8 +216,8 @@ def test_static_load_bias_balancing_equalises_half_periods(tmp_path: Path,
         "connection": {"loop": "device"},
         "safety": {"output_limit": 6.0, "pv_window": 4.0},
         "relay": {"start_amplitude": d, "target_amplitude": 0.4, "hysteresis": 0.0,
-                  "adapt_amplitude": False, "bias_tolerance": 0.02, "max_cycles": 40,
-                  "min_cycles": 5},
+                  "asymmetry": 0.0, "adapt_amplitude": False, "bias_tolerance": 0.02,
+                  "max_cycles": 40, "min_cycles": 5},
         "prechecks": {"rest_time": 0.3, "pulse_size": 2.0},
     }
     res = tune(tmp_path, dev.port, cfg, speed=speed)
@@ -246,7 +247,8 @@ def test_negative_sign_runs_in_host_loop(tmp_path: Path) -> None:
         "connection": {"sign": -1},
         "safety": {"output_limit": 10.0, "pv_window": 5.0},
         "relay": {"start_amplitude": d, "target_amplitude": 1.0, "hysteresis": 0.0,
-                  "adapt_amplitude": False, "balance_bias": False, "min_cycles": 4},
+                  "asymmetry": 0.0, "adapt_amplitude": False, "balance_bias": False,
+                  "min_cycles": 4},
         "prechecks": {"rest_time": 0.3, "pulse_size": 2.0},
     }
     res = tune(tmp_path, "sim", cfg, speed=8.0, plant=plant)
@@ -261,4 +263,4 @@ def test_negative_sign_runs_in_host_loop(tmp_path: Path) -> None:
     assert sw.size >= 8
     assert np.all(np.sign(out[sw]) == np.sign(pv[sw - 1]))
     assert res.result["sign"] == -1
-    assert res.result["ultimate_gain_classic"] > 0
+    assert res.result["ultimate_gain_df"] > 0

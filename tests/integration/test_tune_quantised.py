@@ -1,0 +1,55 @@
+"""A sensor that reads exactly constant at rest (a coarse encoder, no noise) through the mock
+device process: the resolution comes from the direction pulse, the hysteresis is never zero,
+the relay converges, and no numerical warning reaches the user."""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from scipy import optimize
+
+
+def test_constant_quantised_sensor(tmp_path: Path) -> None:
+    q = 0.05  # PV units: about a tenth of the default target amplitude's swing
+    plant = tmp_path / "wheel.toml"
+    plant.write_text(f"""
+[plant]
+num = [0.25]
+den = [0.048, 0.68, 1.0]
+delay = 0.05
+[sensor]
+noise = 0.0
+resolution = {q}
+[device]
+period = 0.01
+name = "coarse-wheel"
+""")
+    cfg = tmp_path / "tune.toml"
+    cfg.write_text("[safety]\nwatchdog = 2.0\n")  # a busy machine must not trip the watchdog
+    out = tmp_path / "run"
+    proc = subprocess.run([sys.executable, "-m", "autotune", "tune",
+                           "--config", str(cfg), "--port", "sim", "--plant", str(plant),
+                           "--yes", "--speed", "10", "--no-step", "--out", str(out)],
+                          capture_output=True, text=True, timeout=240)
+    text = proc.stdout + proc.stderr
+    assert proc.returncode == 0, text[-3000:]
+    for word in ("Warning", "overflow", "invalid value", "Traceback", "nan"):
+        assert word not in text, word
+    res = json.loads((out / "result.json").read_text())
+    assert res["end_reason"] == "converged"
+    rest, direction = res["prechecks"]["rest"], res["prechecks"]["direction"]
+    assert rest["noise_std"] == 0.0 and rest["resolution"] == 0.0  # constant at rest
+    assert direction["resolution_used"] == pytest.approx(q)
+    assert res["relay"]["hysteresis"] >= q
+    # the plant's ultimate point (analytic frequency response: phase -180 degrees at w where
+    # atan(0.6 w) + atan(0.08 w) + 0.05 w = pi); a 0.05 step on a 0.45 swing: within 10 %
+    w = optimize.brentq(lambda x: math.atan(0.6 * x) + math.atan(0.08 * x) + 0.05 * x - math.pi,
+                        1.0, 100.0)
+    ku = math.sqrt((1 + (0.6 * w) ** 2) * (1 + (0.08 * w) ** 2)) / 0.25
+    assert res["ultimate_gain"] == pytest.approx(ku, rel=0.1)
+    assert res["ultimate_period"] == pytest.approx(2 * math.pi / w, rel=0.05)
