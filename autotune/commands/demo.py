@@ -30,10 +30,11 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
     "cart-wheel": {
         "safety.watchdog": 1.0,
         "safety.output_limit": 40.0,
-        "safety.pv_window": 3.0,
+        "safety.pv_window": 6.0,
         "relay.target_amplitude": 0.4,
-        "design.step_size": 1.0,
-        "step.size": 1.0,
+        # the step the predictions are made for; the step plan raises it where the encoder's
+        # noise would hide the settling band
+        "design.step_size": 2.5,
     },
     "mast-pan": {
         "prechecks.breakaway": True,  # the pan drive has a dead zone: measure it first
@@ -42,7 +43,6 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "safety.pv_window": 25.0,
         "relay.target_amplitude": 2.5,
         "design.step_size": 12.0,
-        "step.size": 12.0,
         "step.duration": 20.0,
     },
 }

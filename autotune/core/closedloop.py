@@ -84,6 +84,8 @@ def simulate_closed_loop(
     load_time: float | None = None,
     max_ticks: int = 1_000_000,
     method: str = "auto",
+    dead_zone: float = 0.0,
+    operating_output: float = 0.0,
 ) -> ClosedLoopRun:
     """Simulate the sampled loop from rest for `t_end` seconds.
 
@@ -93,7 +95,14 @@ def simulate_closed_loop(
     have dead time (the PV read at a tick cannot depend on the output computed from it).
     method: "auto" (linear solution when the output never reaches its limits, else tick by
     tick), "ticks" (always tick by tick, the reference), "linear" (ignore the limits).
+    dead_zone: the actuator's dead zone (output units, half-width; 0: none), as the mock
+    device and the analysis model it: the plant sees dz(v) = 0 for |v| <= dead_zone, else
+    v - sign(v) dead_zone, of the actuator command v = operating_output + u (u in deviation
+    from the operating point, output units); the plant input is dz(v) - dz(operating_output)
+    + load. A dead zone makes the loop nonlinear: it is simulated tick by tick.
     """
+    if not (dead_zone >= 0.0 and np.isfinite(dead_zone)):
+        raise ValueError(f"dead_zone must be a finite number >= 0, got {dead_zone!r}")
     ts = settings.ts
     n = int(round(t_end / ts)) + 1
     if n > max_ticks:
@@ -105,12 +114,12 @@ def simulate_closed_loop(
     sp = np.full(n, float(setpoint_step))
     load = np.zeros(n)
     load[t >= (0.0 if load_time is None else load_time) - 1e-12 * ts] = load_step
-    if method in ("auto", "linear"):
+    if method in ("auto", "linear") and dead_zone == 0.0:
         y, u = _linear_loop(plant, settings, sp, load)
         inside = bool(np.all((u >= settings.out_min) & (u <= settings.out_max)))
         if method == "linear" or inside:
             return ClosedLoopRun(t, y, u, sp, load)
-    elif method != "ticks":
+    elif method not in ("ticks", "auto", "linear"):
         raise ValueError(f"unknown method {method!r}")
     b_p, a_p, m = _coefficients(plant, ts)
     bz = (np.concatenate([np.zeros(m), b_p]) / a_p[0]).tolist()  # y = (z^-m B / A) w
@@ -124,6 +133,7 @@ def simulate_closed_loop(
     spl = sp.tolist()
     loadl = load.tolist()
     pid = DiscretePid(settings)
+    dz0 = _dz(operating_output, dead_zone)
     for k in range(n):
         acc = 0.0
         for i, c in btaps:
@@ -135,5 +145,13 @@ def simulate_closed_loop(
         yl[k] = acc
         uk = pid.update(spl[k], acc)
         ul[k] = uk
-        wl[k] = uk + loadl[k]
+        wl[k] = (uk if dead_zone == 0.0 else _dz(operating_output + uk, dead_zone) - dz0) \
+            + loadl[k]
     return ClosedLoopRun(t, np.array(yl), np.array(ul), sp, load)
+
+
+def _dz(v: float, width: float) -> float:
+    """The continuous dead zone: 0 for |v| <= width, else v - sign(v) width."""
+    if abs(v) <= width:
+        return 0.0
+    return v - width if v > 0 else v + width

@@ -67,7 +67,8 @@ class DesignSpec:
     (output units, symmetric); ts: loop period (s; None = continuous design and predictions
     at Tu/200); n: derivative filter N; setpoint_weight: b for every proposal (None: chosen
     per proposal, see the module docstring); tracking_time: Tt (None = clamping); pv_noise:
-    PV noise standard deviation (PV units) for the default choice.
+    PV noise standard deviation (PV units) for the default choice; dead_zone: the actuator's
+    identified dead zone (output units): the predicted setpoint step goes through it.
     """
 
     ms_target: float = 1.4
@@ -82,6 +83,7 @@ class DesignSpec:
     setpoint_weight: float | None = None
     tracking_time: float | None = None
     pv_noise: float = 0.0
+    dead_zone: float = 0.0
 
 
 def spec_from_config(design_cfg: Mapping[str, Any], output_limit: float | None,
@@ -343,12 +345,13 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec,
     lim = spec.output_limit
     settings = PidSettings(gains, ts, spec.n, b, spec.tracking_time, -lim, lim)
     u_lim = lim if math.isfinite(lim) else None
-    run = simulate_closed_loop(model, settings, t_end, spec.step_size)
+    dz = spec.dead_zone
+    run = simulate_closed_loop(model, settings, t_end, spec.step_size, dead_zone=dz)
     if stable and np.all(np.isfinite(run.y)):
         m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u, u_lim)
         if math.isnan(m.settling_time) and t_end < t_cap:
             t_end = t_cap
-            run = simulate_closed_loop(model, settings, t_end, spec.step_size)
+            run = simulate_closed_loop(model, settings, t_end, spec.step_size, dead_zone=dz)
             m = step_metrics(run.t, run.y, 0.0, spec.step_size, run.u, u_lim)
         overshoot, rise, settle = m.overshoot, m.rise_time, m.settling_time
         peak, tsat = m.peak_output, m.time_saturated

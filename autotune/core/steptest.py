@@ -1128,36 +1128,40 @@ def model_from_dict(model: dict[str, Any]) -> Any:
     return None
 
 
-def _closed_loop(plant: Any, settings: Any, size: float, t_end: float, extra_ticks: int) -> Any:
+def _closed_loop(plant: Any, settings: Any, size: float, t_end: float, extra_ticks: int,
+                 dead_zone: float = 0.0) -> Any:
     from autotune.core.closedloop import simulate_closed_loop  # scipy.signal: lazy
     from autotune.core.lti import DelayedTF
 
     # about the operating point: the bias holds the load there, the step is a deviation from it
+    # (through the actuator's dead zone about that output)
+    bias = float(settings.bias)
     settings = dataclasses.replace(settings, bias=0.0)
     if extra_ticks:
         plant = DelayedTF(plant.num, plant.den, plant.delay + extra_ticks * settings.ts)
-    return simulate_closed_loop(plant, settings, t_end, size)
+    return simulate_closed_loop(plant, settings, t_end, size, dead_zone=dead_zone,
+                                operating_output=bias)
 
 
 def predict_step(plant: Any, settings: Any, size: float, t_end: float,
-                 extra_ticks: int = 0, settle_band: float = DEFAULT_SETTLE_BAND
-                 ) -> dict[str, float]:
+                 extra_ticks: int = 0, settle_band: float = DEFAULT_SETTLE_BAND,
+                 dead_zone: float = 0.0) -> dict[str, float]:
     """Predicted step figures of `settings` (PidSettings) on `plant` (DelayedTF) for a setpoint
     step of `size` PV units, over `t_end` s (autotune.core.closedloop; `extra_ticks` of loop latency,
     e.g. 1 in host loop, added as dead time), settling on the `settle_band` band. The step is a
     deviation from the operating point (the bias holds the load there: it is left out)."""
-    run = _closed_loop(plant, settings, size, t_end, extra_ticks)
+    run = _closed_loop(plant, settings, size, t_end, extra_ticks, dead_zone)
     lim = settings.out_max if math.isfinite(settings.out_max) else None
     m = step_metrics(run.t, run.y, 0.0, size, u=run.u, u_limit=lim, settle_band=settle_band)
     return {k: v for k, v in m.as_dict().items() if math.isfinite(v)}
 
 
 def predicted_response(plant: Any, settings: Any, size: float, t_end: float,
-                       extra_ticks: int = 0) -> tuple[float, ...]:
+                       extra_ticks: int = 0, dead_zone: float = 0.0) -> tuple[float, ...]:
     """The predicted PV after a setpoint step of `size` (PV units), normalised to the step
     (0 -> 1), one value a tick of settings.ts over `t_end` s: the `response` of `plan_step`.
     Empty when the loop is unstable on the model (the values do not stay finite)."""
-    run = _closed_loop(plant, settings, size, t_end, extra_ticks)
+    run = _closed_loop(plant, settings, size, t_end, extra_ticks, dead_zone)
     y = np.asarray(run.y, dtype=float) / size
     if not np.all(np.isfinite(y)) or float(np.max(np.abs(y))) > 1e6:
         return ()
@@ -1233,6 +1237,7 @@ def settings_from_config(
     model: Any = None,
     elapsed: float = 0.0,
     fixed_size: bool = False,
+    dead_zone: float = 0.0,
 ) -> tuple[StepSettings, str | None]:
     """StepSettings from an autotune.config.Config (what `autotune step` and `tune` use).
 
@@ -1245,7 +1250,8 @@ def settings_from_config(
     step.duration and step.settle_time, safety.max_duration minus `elapsed` (powered seconds
     already used), and model (DelayedTF: the predicted response the step is watched against;
     with the candidate's gains). bias: the output the loop is at (output units; None:
-    relay.bias). Unless `fixed_size` (the operator gave the size), a step whose band the
+    relay.bias); dead_zone: the actuator's identified dead zone (output units), which the
+    predicted response goes through. Unless `fixed_size` (the operator gave the size), a step whose band the
     measured noise would hide is raised to the smallest that shows it, up to the window's
     limit (here from the rest check; in the hold when only the hold measures the noise).
     Returns the settings and a message when the step had to be reduced or was raised.
@@ -1285,7 +1291,8 @@ def settings_from_config(
                    RECORD_TU_FACTOR * (tu or 0.0))
         try:
             response = predicted_response(model, pid, fitted, span,
-                                          extra_ticks=1 if loop == "host" else 0)
+                                          extra_ticks=1 if loop == "host" else 0,
+                                          dead_zone=dead_zone)
         except (ValueError, ArithmeticError):
             response = ()
     plan = plan_step(

@@ -36,6 +36,7 @@ from autotune.core.design import (
     Condition,
     DesignSpec,
     Proposal,
+    design_limits,
     design_proposals,
     detune_design,
     spec_from_config,
@@ -348,11 +349,11 @@ class TuningJob:
             raise RunEnded(end.reason, end.message, end.exit_code, end.t)
         if self.req.yes:
             # the step follows without a drop: the relay's balanced bias holds meanwhile
-            stages.hold_bias(run, end.bias)
-            run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles; the output holds "
-                          f"the balanced bias {end.bias:.4g}")
+            control = stages.hold(run, end)
+            run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles; the loop holds at "
+                          f"the relay centre from the output {end.bias:.4g}")
             self.result = self._hold_while(run, lambda: stages.analyse(run, end.reason,
-                                                                       end.message))
+                                                                       end.message), control)
         else:
             self._halt(run, "the relay is done")  # the operator will be asked
             run.set_phase(Phase.ANALYSIS, "analysing the recorded cycles (motor unpowered)")
@@ -373,9 +374,11 @@ class TuningJob:
         return self._choose(run, 0 if i is None else i, "" if i is not None else
                             "no default: no design is safe on the model (see the notes)")
 
-    def _hold_while(self, run: PoweredRun, work: Callable[[], Any]) -> Any:
+    def _hold_while(self, run: PoweredRun, work: Callable[[], Any],
+                    control: Callable[[Any], float] | None = None) -> Any:
         """Run `work` (pure computation) in a worker thread while every sample is still read,
-        recorded and checked here; its result."""
+        recorded and checked here (and, host loop, answered with `control(sample)`); its
+        result."""
         # the computation holds the interpreter lock for long stretches: a short switch
         # interval hands it to the sample loop and the heartbeat within a millisecond
         old = sys.getswitchinterval()
@@ -384,7 +387,10 @@ class TuningJob:
         fut = pool.submit(work)
         try:
             while not fut.done():
-                run.next_sample()
+                rec = run.next_sample(publish=control is None)
+                if control is not None:
+                    run.set_output(control(rec))
+                    run.publish()
             return fut.result()
         except RunEnded:
             # the stop went out at once (request_stop); keep what is being computed
@@ -504,9 +510,12 @@ class TuningJob:
         cfg = self.cfg
         run = self.run_
         tick = float(run.info.tick) if run is not None and run.info is not None else None
-        return replace(spec_from_config(dataclasses.asdict(cfg.design), cfg.safety.output_limit,
-                                        cfg.relay.target_amplitude, tick),
-                       ms_target=self.ms_target, step_size=self._step_size())
+        return replace(spec_from_config(design_limits(dataclasses.asdict(cfg.design),
+                                                      dataclasses.asdict(cfg.spec)),
+                                        cfg.safety.output_limit, cfg.relay.target_amplitude,
+                                        tick),
+                       ms_target=self.ms_target, step_size=self._step_size(),
+                       dead_zone=self._dead_zone())
 
     def _plant(self) -> DelayedTF | None:
         m = self.model_dict
@@ -517,6 +526,11 @@ class TuningJob:
             with contextlib.suppress(TypeError, ValueError):
                 plant = DelayedTF(tuple(m["num"]), tuple(m["den"]), float(m["delay"]))
         return plant
+
+    def _dead_zone(self) -> float:
+        """The actuator's dead zone the identification took out (output units; 0: none)."""
+        dz = (self.result or {}).get("dead_zone")
+        return float(dz) if isinstance(dz, int | float) and dz > 0 else 0.0
 
     def _conditions(self) -> list[Condition]:
         """The design's view of the identified loop (model, ultimate point, measured points);
@@ -668,7 +682,7 @@ class TuningJob:
             rest=self.stages.rest if self.stages is not None else None,
             # the PID takes over at the output the relay balanced (a loaded axis holds)
             bias=self.bias, model=self._plant(), elapsed=elapsed,
-            fixed_size=cfg.step.size is not None)
+            fixed_size=cfg.step.size is not None, dead_zone=self._dead_zone())
         settings = replace(settings, ts=ts)
         plan = settings.plan
         if note:
@@ -712,7 +726,8 @@ class TuningJob:
         try:
             pid = settings.pid_settings(choice.gains, settings.ts)
             return predict_step(plant, pid, settings.plan.size, settings.plan.timeout,
-                                extra_ticks=1 if loop == "host" else 0)
+                                extra_ticks=1 if loop == "host" else 0,
+                                dead_zone=self._dead_zone())
         except (ValueError, ArithmeticError):
             return {}
 
@@ -729,7 +744,10 @@ class TuningJob:
         try:
             if outcome.loop == "host":
                 plant = DelayedTF(plant.num, plant.den, plant.delay + outcome.pid.ts)
-            sim = simulate_closed_loop(plant, outcome.pid, t_end, outcome.plan.size)
+            pid = replace(outcome.pid, bias=0.0)  # in deviation from the operating point
+            sim = simulate_closed_loop(plant, pid, t_end, outcome.plan.size,
+                                       dead_zone=self._dead_zone(),
+                                       operating_output=float(outcome.pid.bias))
         except (ValueError, ArithmeticError):
             return (), ()
         base = outcome.start_value

@@ -19,7 +19,7 @@ Phases (all durations in device time, seconds):
              amplitudes shows a dead zone
 The recorded samples, from the rest on, go to `autotune.core.identify` (the same path as
 `autotune analyze`) and the design. When a confirmation step follows unattended, the job holds
-the output at the relay's balanced bias meanwhile (`hold_bias`: a loaded axis does not drop);
+the output at the relay's balanced bias meanwhile (`hold`: a loaded axis does not drop);
 otherwise the motor is stopped first.
 
 Sign: with `connection.sign = -1` (positive output makes the PV fall) the core sees -PV and
@@ -46,9 +46,12 @@ from autotune.core.progress import CycleEstimate, Phase
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
 from autotune.job.powered import PoweredRun, RunEnded
+from protocol.messages import SetPid
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
 """End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
+HOLD_GAIN_FRACTION = 0.2  # the hold between the relay and the step: kp = 0.2 Ku, a gain
+#                           margin of about 5 on the plain figure (common practice, no source)
 AUTO_BREAKAWAY_FRACTION = 0.05  # "auto": the ramps run after the relay when the swing at its
 #                                 amplitudes shows a dead zone above this share of the relay
 #                                 amplitude (common practice, no source)
@@ -117,7 +120,7 @@ class RelayEnd:
 
 class TuneRun:
     """The identification stages of a job, run on an armed PoweredRun by autotune.job.job:
-    `prechecks(run)`, `relay(run)` (returns a RelayEnd, the motor still powered), `hold_bias`
+    `prechecks(run)`, `relay(run)` (returns a RelayEnd, the motor still powered), `hold`
     (the output held at the relay's balanced bias) and `analyse(...)` (the result dict:
     figures, proposals). analyse=False skips the model fit and design (relay figures only)."""
 
@@ -156,21 +159,52 @@ class TuneRun:
         self._prechecks(run)
 
     def relay(self, run: PoweredRun) -> RelayEnd:
-        """The relay experiment to its end (the relay still drives the output: `hold_bias`
+        """The relay experiment to its end (the relay still drives the output: `hold`
         or the stop path comes next)."""
         self.run = run
         return self._relay(run)
 
-    def hold_bias(self, run: PoweredRun, bias: float) -> None:
-        """End the relay at its balanced bias: a host loop holds it; a board relay is replaced
-        by that output where the board takes host outputs (else its relay runs on until the
-        next stage takes over). The no-response detector stands down: closed-loop stages
-        follow."""
+    def _holding_output(self, exp: RelayExperiment) -> float:
+        """The output that holds the loop where the relay oscillated about (output units): the
+        mean applied output over the last whole cycles (for an integrating loop under a load
+        exactly what carries the load; an asymmetric relay's levels are not centred on it),
+        else the relay's bias."""
+        cyc = exp.cycles[-3:]
+        if not cyc:
+            return float(exp.settings.bias)
+        t, _, u = self.relay_data.np()
+        sel = (t >= cyc[0].t_start) & (t < cyc[-1].t_end)
+        return float(np.mean(u[sel])) if sel.sum() >= 4 else float(exp.settings.bias)
+
+    def hold(self, run: PoweredRun, end: RelayEnd) -> Callable[[Any], float] | None:
+        """End the relay by holding the loop where it oscillated, without a drop in the
+        output: a proportional loop at the relay centre with kp = HOLD_GAIN_FRACTION x the
+        plain describing-function Ku, its output preset to the output that held the loop
+        (`end.bias`; a loaded axis keeps its load carried). On the board's PID in the device
+        loop; in the host loop the returned function gives the output for each sample (the
+        caller sends it). Without a board PID or a Ku, the output is held at end.bias. The
+        no-response detector stands down: closed-loop stages follow."""
         if run.supervisor is not None:
             run.supervisor.disarm_response()
+        exp = self.experiment
+        cyc = exp.cycles[-3:] if exp is not None else []
+        kp = 0.0
+        if cyc:
+            ku, _ = analysis.df_estimate(cyc, hysteresis=exp.settings.hysteresis)
+            if math.isfinite(ku) and ku > 0:
+                kp = HOLD_GAIN_FRACTION * ku
+        bias, limit = float(end.bias), self.cfg.safety.output_limit
+        run.sp_value = self.centre
+        run.event("relay_end", {"bias": bias, "hold_kp": kp, "centre": self.centre})
+        if run.loop_mode == "device" and run.info.has_device_pid and kp > 0:
+            run.request(SetPid(run.axis, kp, 0.0, 0.0, 1.0, 10.0, 0.0, self.centre, bias))
+            return None
         if run.loop_mode == "host" or run.info.has_host_loop:
             run.set_output(bias)
-            run.event("relay_end", {"bias": bias})
+            if run.loop_mode == "host" and kp > 0:
+                yc = self._y(self.centre)
+                return lambda rec: min(max(bias + kp * (yc - self._y(rec.pv)), -limit), limit)
+        return None
 
     # ------------------------------------------------------------------ helpers
     def _y(self, pv: float) -> float:
@@ -504,7 +538,7 @@ class TuneRun:
                 if reason == "converged":
                     self._after_relay(run, exp)
                 code = EXIT_OK if reason == "converged" else EXIT_FAILED
-                return RelayEnd(reason, message, code, rec.t, exp.settings.bias)
+                return RelayEnd(reason, message, code, rec.t, self._holding_output(exp))
             if device:
                 if step.new_settings is not None:
                     start_relay(step.new_settings)
@@ -702,7 +736,8 @@ def propose_gains(ident: identify.Identification, design_cfg: Mapping[str, Any],
     words, not raised: the analysis itself stands.
     """
     an = ident.analysis
-    spec = design.spec_from_config(design_cfg, output_limit, target_amplitude, ts)
+    spec = design.spec_from_config(design_cfg, output_limit, target_amplitude, ts,
+                                   dead_zone=float(ident.dead_zone_used))
     tf = an.model.tf
     if not all(math.isfinite(c) for c in tf.num + tf.den):
         notes.append("no gains proposed: the identified model is not usable; run the relay "

@@ -47,24 +47,21 @@ def test_relay_to_step_without_a_drop_in_the_output(tmp_path: Path) -> None:
     relay = np.flatnonzero(s.phase_mask("relay"))
     step = np.flatnonzero(s.phase_mask("step"))
     assert relay.size and step.size
-    # from the relay's last sample to the step's first, every sample shows the output held
-    # at the balanced bias (no zero output: the load would make the arm fall)
+    # from the relay's last sample to the step's first, no sample shows zero output (the load
+    # would make the arm fall)
     between = slice(relay[-1] + 1, step[0])
     hold = s.out[between]
     assert hold.size > 0
-    bias = outcome.result["relay"]["bias"]
-    assert abs(bias - 1.2) < 0.1  # the load was balanced: the bias carries it (1.2 units)
     assert np.all(hold != 0.0)
-    # the relay's last output shows for at most the tick the SetOutput takes to apply
-    on = np.flatnonzero(np.isclose(hold, bias, atol=1e-5 * max(1.0, abs(bias))))
-    assert on.size and on[0] <= 2 and on.size == hold.size - on[0]
-    # and the arm is held: once it has coasted out of the relay's last swing (a few lags of
-    # 0.1 s) it moves at a small fraction of the 20 x 1.2 = 24 degrees/s it falls at unpowered
+    # the loop holds under a proportional loop at the relay centre: the arm stops moving once
+    # it has coasted out of the relay's last swing (a few lags of 0.1 s), and the output it
+    # settles at is what carries the load (1.2 output units)
     t, pv = s.t[between], s.pv[between]
     late = t >= t[0] + 0.5
     assert late.sum() >= 5
     rate = abs(np.polyfit(t[late], pv[late], 1)[0])
-    assert rate < 0.1 * 24.0, rate
+    assert rate < 0.1 * 24.0, rate  # it falls at 20 x 1.2 = 24 degrees/s unpowered
+    assert abs(float(np.mean(hold[late])) - 1.2) < 0.15, float(np.mean(hold[late]))
     kinds = [e.get("kind") for e in s.events]
     assert "halted" not in kinds  # nobody was asked, so the motor never stopped between stages
     assert s.reason in ("completed", "step:not_met")
