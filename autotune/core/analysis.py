@@ -6,7 +6,7 @@ positive output makes the PV rise; relay state +1 = high output.
 
 What is computed (see `analyse_relay`):
 - cycles from the relay's own switch instants (output changes), transient cycles dropped;
-- the classic describing-function figures (Åström and Hägglund 1984): identified point
+- the plain describing-function figures (Åström and Hägglund 1984): identified point
   G(j w) = (pi a / 4 d) exp(j(-pi + arcsin(eps / a))), Ku = 4 d / (pi a), Tu = the period;
 - Fourier points G(j k w), k = 1, 3, 5 (autotune.core.harmonics), the plant's exact response;
 - a low-order model fitted to the sampled record (autotune.core.model); Ku, Tu at phase -180 deg
@@ -15,7 +15,7 @@ What is computed (see `analyse_relay`):
 Delays in the figures (`delays_included`): the refined `ku`, `tu` and the model are those of the
 continuous plant. The device tick's sample-and-hold (about ts/2 of extra delay) is modelled
 exactly in the fit and taken *out*; `ku_with_hold`, `tu_with_hold` put it back (the loop a PID
-running at that tick sees). The classic figures are read straight off the oscillation, so they
+running at that tick sees). The plain figures are read straight off the oscillation, so they
 hold the hold's delay and the hysteresis shift.
 """
 
@@ -51,7 +51,7 @@ FIT_SAMPLES = 3000  # records longer than this ...
 FIT_CYCLES = 10  # ... have the model fitted through this many steady cycles only
 DELAYS_NOTE = ("ultimate_gain, ultimate_period and model are the continuous plant's: the device "
                "tick's sample-and-hold (about ts/2) is modelled and excluded; "
-               "*_with_hold figures include it; the classic figures include it and the "
+               "*_with_hold figures include it; the plain describing-function figures include it and the "
                "hysteresis shift")
 
 

@@ -381,7 +381,7 @@ def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:
     os_ = float(pred["overshoot"])
     st = float(pred["settling_time"])
     if spec.max_overshoot is not None and os_ > spec.max_overshoot:
-        out.append(f"overshoot {os_:.1f}% above the limit {spec.max_overshoot:g}%")
+        out.append(f"overshoot {os_:.1f} % above the limit {spec.max_overshoot:g} %")
     if spec.max_settling_time is not None and (math.isnan(st) or st > spec.max_settling_time):
         if math.isnan(st):
             out.append(f"not settled within {float(pred['t_end']):.3g} s "
