@@ -21,7 +21,6 @@ from collections import deque
 from collections.abc import Sequence
 
 import numpy as np
-from scipy.linalg import expm
 
 __all__ = ["Actuator", "LtiPlant", "Sensor", "SimulatedAxis"]
 
@@ -307,3 +306,24 @@ class SimulatedAxis:
         applied = self.actuator.saturate(u)
         self.plant.advance(self.actuator.apply(applied) + self.load, dt)
         return applied
+
+
+def expm(m: np.ndarray) -> np.ndarray:
+    """The matrix exponential by scaling and squaring with a Taylor series (the plant's states
+    are few; numpy only, so the simulated board starts without loading scipy): m is scaled by
+    2^-s until its norm is at most 0.5, the series summed to double precision, and the result
+    squared s times."""
+    m = np.asarray(m, dtype=float)
+    norm = float(np.max(np.sum(np.abs(m), axis=1))) if m.size else 0.0
+    s = max(0, int(np.ceil(np.log2(norm / 0.5)))) if norm > 0.5 else 0
+    a = m / (2.0 ** s)
+    term = np.eye(m.shape[0])
+    out = term.copy()
+    for k in range(1, 30):
+        term = term @ a / k
+        out = out + term
+        if float(np.max(np.abs(term))) <= 1e-18 * float(np.max(np.abs(out))):
+            break
+    for _ in range(s):
+        out = out @ out
+    return out

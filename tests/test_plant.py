@@ -147,3 +147,18 @@ def test_simulated_axis_load_and_deadband():
     applied = axis.drive(20.0, 0.5)  # saturates at 10, minus deadband 2, plus load 1 -> 9
     assert applied == 10.0
     assert axis.read() == pytest.approx(0.5 + 9 * 0.5)
+
+
+def test_matrix_exponential_matches_scipy() -> None:
+    # reference: scipy.linalg.expm (Pade approximation with scaling and squaring)
+    import numpy as np
+    import scipy.linalg
+
+    from mock_device.plant import expm
+
+    rng = np.random.default_rng(3)
+    for n in (1, 2, 3, 5, 8):
+        for scale in (1e-4, 0.1, 1.0, 10.0):
+            a = rng.normal(size=(n, n)) * scale
+            ref = scipy.linalg.expm(a)
+            assert np.max(np.abs(expm(a) - ref)) <= 1e-10 * np.max(np.abs(ref))

@@ -16,7 +16,7 @@ import statistics
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
 from autotune.simdevice import SIM, start_sim_device
@@ -27,9 +27,9 @@ from protocol.budget import (
     heartbeat_rate,
     loop_budget,
 )
-
-if TYPE_CHECKING:
-    from protocol.link import Link
+from protocol.errors import LinkError, NakError
+from protocol.link import Link, percentile
+from protocol.messages import FLAG_FAULT, Stream
 
 HELP = "check the link to a board: handshake, round-trip time, sample rate, noise (powers nothing)"
 
@@ -96,8 +96,6 @@ def run(args: argparse.Namespace) -> int:
     if args.pings < 1 or args.samples_time <= 0 or args.speed <= 0:
         raise UserError("--pings must be >= 1, --samples-time and --speed > 0",
                         exit_code=EXIT_USAGE)
-    from protocol.errors import LinkError, NakError
-    from protocol.link import Link
 
     with _resolve_port(args) as url:
         try:
@@ -129,7 +127,6 @@ class StreamRun:
 def _stream(link: Link, args: argparse.Namespace, info: Any, decimation: int) -> StreamRun:
     """Stream every ``decimation``-th sample for --samples-time s of device time; prints the
     rate and the losses."""
-    from protocol.messages import Stream
 
     link.drain_samples()
     before = link.stats()
@@ -177,8 +174,6 @@ def _stream(link: Link, args: argparse.Namespace, info: Any, decimation: int) ->
 
 def _check(link: Link, args: argparse.Namespace) -> int:
     """The check proper, on an open link; returns the exit code."""
-    from protocol.link import percentile
-    from protocol.messages import FLAG_FAULT
 
     info = link.handshake()
     caps = [name for name, on in (("host loop", info.has_host_loop),

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+from autotune.commands.sessions import run_compare
+
 HELP = ("compare recorded sessions of one loop: Ku, Tu, static gain, dead time, dead zone and "
         "model, the change from the first and whether it exceeds the uncertainty")
 
@@ -22,6 +24,4 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from autotune.commands.sessions import run_compare
-
     return run_compare(args.session, args.json, args.deadband)

@@ -15,7 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 from autotune.core.lti import DelayedTF
 from autotune.core.model import discrete_coefficients
@@ -69,9 +69,9 @@ def _linear_loop(plant: DelayedTF, settings: PidSettings, sp: np.ndarray, load: 
     den = np.polyadd(np.convolve(a_p, dc)[::-1], np.convolve(bz, ny)[::-1])[::-1]
     w = load + settings.bias
     with np.errstate(all="ignore"):
-        y = signal.lfilter(np.convolve(bz, nr), den, sp) + \
-            signal.lfilter(np.convolve(bz, dc), den, w)
-        u = signal.lfilter(nr, dc, sp) - signal.lfilter(ny, dc, y) + settings.bias
+        y = scipy.signal.lfilter(np.convolve(bz, nr), den, sp) + \
+            scipy.signal.lfilter(np.convolve(bz, dc), den, w)
+        u = scipy.signal.lfilter(nr, dc, sp) - scipy.signal.lfilter(ny, dc, y) + settings.bias
     return y, u
 
 

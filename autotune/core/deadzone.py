@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import optimize
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 from autotune.core.harmonics import fourier_coefficients
 
@@ -183,11 +183,11 @@ def estimate_dead_zone(t: np.ndarray, y: np.ndarray, u: np.ndarray, stages: Sequ
     # d - D, is the smaller share of d): diff falls as the assumed width grows, through 0 at D
     f0, f1 = diff(0.0), diff(hi)
     if len(st) > 2:
-        res = optimize.minimize_scalar(spread, bounds=(0.0, hi), method="bounded",
+        res = scipy.optimize.minimize_scalar(spread, bounds=(0.0, hi), method="bounded",
                                        options={"xatol": 1e-6 * max(ds)})
         raw = float(res.x)
     elif f0 > 0 > f1:
-        raw = float(optimize.brentq(diff, 0.0, hi, xtol=1e-9 * max(ds), maxiter=100))
+        raw = float(scipy.optimize.brentq(diff, 0.0, hi, xtol=1e-9 * max(ds), maxiter=100))
     elif f0 > 0:
         return None  # no dead zone below the smaller relay level explains the stages
     else:  # no dead zone: the estimate lies below 0; extrapolate the relation linearly
@@ -254,7 +254,7 @@ def holding_dead_zone(u: np.ndarray, stages: Sequence[Stage], u_hold: float,
         if abs(f0) <= 3.0 * sig_mean:
             x = 0.0
         elif f0 * f1 < 0:
-            x = float(optimize.brentq(f, 0.0, hi, xtol=1e-9 * s.amplitude_d))
+            x = float(scipy.optimize.brentq(f, 0.0, hi, xtol=1e-9 * s.amplitude_d))
         else:
             return None
         der = abs(f(x + h) - f(max(x - h, 0.0))) / (x + h - max(x - h, 0.0))

@@ -31,7 +31,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-from scipy import optimize
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 from autotune.core import prechecks as pre
 from autotune.core.analysis import (
@@ -328,7 +328,7 @@ def _joint_dead_zone(inp: AnalysisInputs, an: RelayAnalysis, lo: float, hi: floa
         vals = [rss(float(x)) for x in grid]
         k = int(np.argmin(vals))
         a, b = grid[max(k - 1, 0)], grid[min(k + 1, grid.size - 1)]
-        res = optimize.minimize_scalar(rss, bounds=(float(a), float(b)), method="bounded",
+        res = scipy.optimize.minimize_scalar(rss, bounds=(float(a), float(b)), method="bounded",
                                        options={"xatol": 1e-4 * max(hi, 1e-12),
                                                 "maxiter": 20})
         if float(res.fun) < best[0]:

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
-from scipy import linalg, optimize, signal
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 
 @dataclass(frozen=True)
@@ -106,7 +106,7 @@ class DelayedTF:
         if idx.size == 0:
             return None
         i = int(idx[0])
-        return float(optimize.brentq(lambda w: float(self.phase(w)) - phase, grid[i], grid[i + 1],
+        return float(scipy.optimize.brentq(lambda w: float(self.phase(w)) - phase, grid[i], grid[i + 1],
                                      xtol=1e-14, rtol=1e-13))
 
     def ultimate_point(self) -> tuple[float, float] | None:
@@ -122,7 +122,7 @@ class DelayedTF:
     # ------------------------------------------------------------------ time domain
     @cached_property
     def _ss(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        a, b, c, d = signal.tf2ss(self.num, self.den)
+        a, b, c, d = scipy.signal.tf2ss(self.num, self.den)
         return a, b, c, d
 
     def simulate_zoh(self, u: np.ndarray, dt: float, x0: np.ndarray | None = None) -> np.ndarray:
@@ -164,7 +164,7 @@ def _zoh(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray
     block = np.zeros((n + 1, n + 1))
     block[:n, :n] = a * h
     block[:n, n:] = b * h
-    e = linalg.expm(block)
+    e = scipy.linalg.expm(block)
     return e[:n, :n], e[:n, n:]
 
 

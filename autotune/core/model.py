@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import linalg, optimize, signal, special
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 from autotune.core.lti import DelayedTF, _zoh, fopdt, integrator_lag, sopdt
 
@@ -63,7 +63,7 @@ def discrete_coefficients(tf: DelayedTF, dt: float) -> tuple[np.ndarray, np.ndar
     dead time split into m whole ticks and a fraction), expressed as a difference equation so
     that scipy.signal.lfilter can run it over a whole record at once.
     """
-    a_c, b_c, c_c, d_c = signal.tf2ss(tf.num, tf.den)
+    a_c, b_c, c_c, d_c = scipy.signal.tf2ss(tf.num, tf.den)
     n = a_c.shape[0]
     m, frac = _delay_ticks(tf.delay, dt)
     d0 = float(d_c[0, 0]) if d_c.size else 0.0
@@ -77,8 +77,8 @@ def discrete_coefficients(tf: DelayedTF, dt: float) -> tuple[np.ndarray, np.ndar
     g_late = gam2  # multiplies u[k-m]
     a_poly = np.real(np.poly(phi))
     # C adj(zI - Phi) g as polynomials in z (descending), via ss2tf on the discrete system.
-    num_late, _ = signal.ss2tf(phi, g_late, c_c, np.zeros((1, 1)))
-    num_early, _ = signal.ss2tf(phi, g_early, c_c, np.zeros((1, 1)))
+    num_late, _ = scipy.signal.ss2tf(phi, g_late, c_c, np.zeros((1, 1)))
+    num_early, _ = scipy.signal.ss2tf(phi, g_early, c_c, np.zeros((1, 1)))
     num_late = np.real(num_late[0])
     num_early = np.real(num_early[0])
     # In powers of z^-1 (divide by z^n): b_late[i] z^-i, b_early shifted one tick more.
@@ -116,12 +116,12 @@ def _zoh_equal_lags(a: np.ndarray, b: np.ndarray, h: float) -> tuple[np.ndarray,
     n = a.shape[0]
     x = -a[0, 0] * h  # h / T
     j = np.arange(n)
-    coef = np.exp(-x) * x**j / special.factorial(j)
+    coef = np.exp(-x) * x**j / scipy.special.factorial(j)
     phi = np.zeros((n, n))
     for d in range(n):
         idx = np.arange(d, n)
         phi[idx, idx - d] = coef[d]
-    gam = special.gammainc(j + 1, x).reshape(n, 1)
+    gam = scipy.special.gammainc(j + 1, x).reshape(n, 1)
     return phi, gam
 
 
@@ -133,7 +133,7 @@ def sampled_response(tf: DelayedTF, u: np.ndarray, dt: float) -> np.ndarray:
     """
     u = np.asarray(u, dtype=float)
     b, a, m = discrete_coefficients(tf, dt)
-    return signal.lfilter(b, a, _shift(u, m))
+    return scipy.signal.lfilter(b, a, _shift(u, m))
 
 
 def modal_response(poles: Sequence[float], residues: Sequence[float], delay: float,
@@ -156,7 +156,7 @@ def modal_response(poles: Sequence[float], residues: Sequence[float], delay: flo
             g_late = r * math.expm1(p * h2) / p
             g_early = e2 * r * math.expm1(p * frac) / p
             lam = e2 * math.exp(p * frac)
-        y += signal.lfilter([0.0, g_late, g_early], [1.0, -lam], u)
+        y += scipy.signal.lfilter([0.0, g_late, g_early], [1.0, -lam], u)
     return y
 
 
@@ -182,7 +182,7 @@ def complex_modal_response(num: Sequence[float], den: Sequence[float], delay: fl
             g_late = r * np.expm1(p * h2) / p
             g_early = e2 * r * np.expm1(p * frac) / p
             lam = e2 * np.exp(p * frac)
-        y += signal.lfilter(np.array([0.0, g_late, g_early]), np.array([1.0, -lam]),
+        y += scipy.signal.lfilter(np.array([0.0, g_late, g_early]), np.array([1.0, -lam]),
                             u.astype(complex))
     return y.real
 
@@ -225,7 +225,7 @@ def cascade_states(time_constants: Sequence[float], delay: float, u: np.ndarray,
         drive = g_e[i] * u_early + g_l[i] * u
         for j in range(i):
             drive = drive + phi[i, j] * states[j]
-        states.append(signal.lfilter([0.0, 1.0], [1.0, -phi[i, i]], drive))
+        states.append(scipy.signal.lfilter([0.0, 1.0], [1.0, -phi[i, i]], drive))
     return states
 
 
@@ -388,7 +388,7 @@ class _Problem:
         scale[scale == 0] = 1.0
         xs = x / scale
         if self.free_response:  # the modes can be nearly collinear: pivoted QR
-            beta = linalg.lstsq(xs, self.yw, lapack_driver="gelsy", check_finite=False)[0]
+            beta = scipy.linalg.lstsq(xs, self.yw, lapack_driver="gelsy", check_finite=False)[0]
             beta = beta / scale
         else:
             try:
@@ -502,7 +502,7 @@ def fit_models(
         best_x, best_c = None, math.inf
         for i in order:
             x0 = np.clip(starts[int(i)], lo + 1e-9, hi - 1e-9)
-            sol = optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
+            sol = scipy.optimize.least_squares(prob.residual, x0, bounds=(lo, hi), method="trf",
                                          x_scale=np.r_[np.ones(npar - 1), max(1.0 / w1, ts)],
                                          xtol=1e-8, ftol=1e-10, gtol=1e-10,
                                          max_nfev=120 if prob.kind in MODE_KINDS else 80)
@@ -614,7 +614,7 @@ def refit_residual(fit: CandidateFit, t: np.ndarray, y: np.ndarray, u: np.ndarra
     lo[-1], hi[-1] = 0.0, max(t[-1] - t[0], ts)
     if fit.kind in MODE_KINDS:
         lo[2], hi[2] = ZETA_BOUNDS
-    sol = optimize.least_squares(prob.residual, np.clip(x0, lo + 1e-9, hi - 1e-9),
+    sol = scipy.optimize.least_squares(prob.residual, np.clip(x0, lo + 1e-9, hi - 1e-9),
                                  bounds=(lo, hi), method="trf", xtol=1e-10, ftol=1e-12,
                                  gtol=1e-12, max_nfev=60)
     res, beta, shape = prob.solve(np.asarray(sol.x))

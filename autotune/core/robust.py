@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize
+import scipy  # its subpackages load on first use (scipy's lazy loader)
 
 from autotune.core.lti import DelayedTF
 from autotune.core.pid import PidGains, filter_time
@@ -139,7 +139,7 @@ def loop_margins(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float |
     i = int(np.argmin(s_abs))
     lo, hi = w[max(i - 1, 0)], w[min(i + 1, w.size - 1)]
     if hi > lo:
-        res = optimize.minimize_scalar(lambda x: abs(1.0 + lf(x)), bounds=(lo, hi),
+        res = scipy.optimize.minimize_scalar(lambda x: abs(1.0 + lf(x)), bounds=(lo, hi),
                                        method="bounded", options={"xatol": lo * 1e-10})
         smin, w_ms = (res.fun, res.x) if res.fun < s_abs[i] else (s_abs[i], w[i])
     else:
@@ -154,7 +154,7 @@ def loop_margins(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float |
             if L.real[j] < 0 or L.real[j + 1] < 0]
     cand.sort(key=lambda j: abs(math.log(max(abs(L[j]), 1e-300))))
     for j in cand[:3]:
-        x = optimize.brentq(lambda v: lf(v).imag, w[j], w[j + 1], xtol=w[j] * 1e-12)
+        x = scipy.optimize.brentq(lambda v: lf(v).imag, w[j], w[j + 1], xtol=w[j] * 1e-12)
         lx = lf(x)
         if lx.real < 0:
             gms.append(-1.0 / lx.real)
@@ -176,7 +176,7 @@ def loop_margins(plant: DelayedTF, gains: PidGains, n: float = 10.0, ts: float |
 
     cand.sort(key=lambda j: abs(pm_of(w[j])))
     for j in cand[:3]:
-        x = optimize.brentq(lambda v: abs(lf(v)) - 1.0, w[j], w[j + 1], xtol=w[j] * 1e-12)
+        x = scipy.optimize.brentq(lambda v: abs(lf(v)) - 1.0, w[j], w[j + 1], xtol=w[j] * 1e-12)
         pms.append(pm_of(x))
         wgcs.append(x)
     if pms:
@@ -637,7 +637,7 @@ def robust_pi_set(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint] =
     kis = f(kps)
     j = int(np.argmax(kis))
     lo, hi = kps[max(j - 1, 0)], kps[min(j + 1, kps.size - 1)]
-    res = optimize.minimize_scalar(lambda x: -float(f(np.array([x]))[0]), bounds=(lo, hi),
+    res = scipy.optimize.minimize_scalar(lambda x: -float(f(np.array([x]))[0]), bounds=(lo, hi),
                                    method="bounded", options={"xatol": kp_hi * 1e-6})
     kp, ki = (res.x, -res.fun) if -res.fun > kis[j] else (kps[j], kis[j])
     if not (math.isfinite(ki) and ki > 0):
@@ -709,7 +709,7 @@ def robust_pid_set(plants: Sequence[DelayedTF], points: Sequence[MeasuredPoint] 
         v = float(f(np.array([x[0] * ku_like]), np.array([max(x[1], 0.0) * ku_like / wr]))[0])
         return -v if np.isfinite(v) else 1e300
 
-    res = optimize.minimize(obj, x0, method="Nelder-Mead",
+    res = scipy.optimize.minimize(obj, x0, method="Nelder-Mead",
                             options={"xatol": 1e-5, "fatol": 1e-9 * max(best[0], 1e-300),
                                      "maxiter": 400, "initial_simplex": None})
     if -res.fun > best[0]:

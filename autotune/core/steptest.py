@@ -35,6 +35,8 @@ from typing import Any
 
 import numpy as np
 
+from autotune.core.closedloop import simulate_closed_loop
+from autotune.core.lti import DelayedTF
 from autotune.core.metrics import (
     Extremum,
     RunningMean,
@@ -45,6 +47,7 @@ from autotune.core.metrics import (
     moving_average,
     step_metrics,
 )
+from autotune.core.pid import PidSettings
 from autotune.core.prechecks import assess_rest
 from autotune.core.verdict import StepSpec, compare, judge, spec_from_config
 
@@ -1130,9 +1133,6 @@ def model_from_dict(model: dict[str, Any]) -> Any:
 
 def _closed_loop(plant: Any, settings: Any, size: float, t_end: float, extra_ticks: int,
                  dead_zone: float = 0.0) -> Any:
-    from autotune.core.closedloop import simulate_closed_loop  # scipy.signal: lazy
-    from autotune.core.lti import DelayedTF
-
     # about the operating point: the bias holds the load there, the step is a deviation from it
     # (through the actuator's dead zone about that output)
     bias = float(settings.bias)
@@ -1213,8 +1213,6 @@ class StepSettings:
     ts: float | None = None
 
     def pid_settings(self, gains: Any, ts: float) -> Any:
-        from autotune.core.pid import PidSettings
-
         return PidSettings(gains, ts, self.deriv_filter_n, self.setpoint_weight,
                            self.tracking_time, -self.output_limit, self.output_limit, self.bias)
 

@@ -23,11 +23,14 @@ import contextlib
 import dataclasses
 import math
 import sys
+import threading
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
+
+import scipy
 
 from autotune import __version__
 from autotune.core.closedloop import simulate_closed_loop
@@ -194,6 +197,7 @@ class TuningJob:
 
     # ================================================================== entry point
     def run(self) -> JobOutcome:
+        warm_up()
         req = self.req
         # before anything is asked or connected: where the files go can take them
         check_out_dir(req.out_dir, ("session.jsonl", "result.json", "gains.toml", "gains.h"))
@@ -863,6 +867,18 @@ class TuningJob:
             files=tuple(self.files), gains=self.gains_record,
             code=code_block(self.gains_record) if self.gains_record is not None else "",
             last_step=self.reports[-1] if self.reports else None, notes=tuple(self.notes)))
+
+
+def warm_up() -> None:
+    """Load the numerical libraries the analysis and the predictions use in a background
+    thread: the first line shows at once, and nothing loads them later while the motor is
+    powered."""
+    def load() -> None:
+        with contextlib.suppress(Exception):
+            for name in ("linalg", "optimize", "signal", "special"):
+                getattr(scipy, name)
+
+    threading.Thread(target=load, name="warm-up", daemon=True).start()
 
 
 def _interrupt(name: str) -> bool:

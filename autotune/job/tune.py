@@ -30,6 +30,7 @@ cannot invert its output, so such a loop runs in host loop.
 from __future__ import annotations
 
 import math
+import time
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, field, replace
@@ -44,9 +45,11 @@ from autotune.core.conditions import condition_of_identification
 from autotune.core.harmonics import cycle_estimate
 from autotune.core.progress import CycleEstimate, Phase
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
+from autotune.core.supervise import noise_band
 from autotune.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE, ConfigError, UserError
+from autotune.job.limits import float32
 from autotune.job.powered import PoweredRun, RunEnded
-from protocol.messages import SetPid
+from protocol.messages import FLAG_RELAY_HIGH, SetPid, StartRelay
 
 ANALYSED_ENDINGS = ("converged", "max_cycles", "max_time")
 """End reasons after which the recorded cycles are analysed (the experiment ran its course)."""
@@ -231,11 +234,7 @@ class TuneRun:
         device shows it (for at most one second of wall clock, or `duration` of it, whichever
         is longer).
         """
-        import time as _time
-
-        from autotune.job.powered import float32
-
-        sent_at = _time.monotonic()
+        sent_at = time.monotonic()
         give_up: float | None = None  # counted from the first sample after the command (a
         #                               backlog of older ones, on a busy host, costs nothing)
         run.set_output(output)
@@ -248,8 +247,8 @@ class TuneRun:
                 if rec.received_at < sent_at:
                     continue  # queued before the command
                 if give_up is None:
-                    give_up = _time.monotonic() + max(1.0, run.wall(duration))
-                if rec.output != want and _time.monotonic() < give_up:
+                    give_up = time.monotonic() + max(1.0, run.wall(duration))
+                if rec.output != want and time.monotonic() < give_up:
                     run.set_output(output)
                     continue
                 t0 = rec.t
@@ -343,8 +342,6 @@ class TuneRun:
             # from now on an output step of `size` or more must move the PV out of its noise
             # band within twice the time the pulse needed (at least pulse_timeout), else
             # fault:no_response (issue 8: stuck sensor)
-            from autotune.core.supervise import noise_band
-
             took = recs[-1].t - t_pulse if recs else cfg.prechecks.pulse_timeout
             run.supervisor.expect_response(
                 bias, size, noise_band(rest.noise_std, rest.resolution, rest.mean),
@@ -474,8 +471,6 @@ class TuneRun:
                           pv_resolution=self.resolution, response_time=response)
 
     def _relay(self, run: PoweredRun) -> RelayEnd:
-        from protocol.messages import StartRelay
-
         cfg = self.cfg
         assert self.hysteresis is not None
         settings = RelaySettings(centre=self._y(self.centre), bias=cfg.relay.bias,
@@ -497,8 +492,6 @@ class TuneRun:
                                    s.hysteresis))
 
         if device:
-            from protocol.messages import FLAG_RELAY_HIGH
-
             # the board reports its relay state with every sample
             run.sample_hook = lambda rec: ({"state": 1 if rec.flags & FLAG_RELAY_HIGH else -1}
                                            if rec.mode == 2 else {})
