@@ -559,7 +559,8 @@ def _robust_source(spec: DesignSpec, conds: Sequence[Condition]) -> str:
             "(Astrom-Panagopoulos-Hagglund 1998)")
 
 
-def _spec_text(spec: DesignSpec) -> str:
+def spec_text(spec: DesignSpec) -> str:
+    """The design limits in words ("" when there are none)."""
     parts = []
     if spec.max_overshoot is not None:
         parts.append(f"overshoot at most {spec.max_overshoot:g} %")
@@ -577,16 +578,16 @@ def pick_default(proposals: Sequence[Proposal], spec: DesignSpec, preferred: Seq
     order += sorted((p for p in proposals if p.name not in preferred), key=lambda p: -p.gains.ki)
     safe = [p for p in order if p.meets_target]
     qualified = [p for p in safe if p.meets_spec]
-    spec_text = _spec_text(spec)
+    limits = spec_text(spec)
     if qualified:
         p = qualified[0]
-        meets = f" and meets the spec ({spec_text})" if spec_text else ""
+        meets = f" and meets the spec ({limits})" if limits else ""
         return p.name, f"{p.name} keeps Ms within {spec.ms_target:g} on {on}{meets}"
     if safe:
         p = min(safe, key=lambda q: max(float(q.predicted["ms"]),
                                         0.0 if math.isnan(float(q.predicted["ms_points"]))
                                         else float(q.predicted["ms_points"])))
-        return p.name, (f"no proposal meets the spec on {on} ({spec_text}): {p.name}, the most "
+        return p.name, (f"no proposal meets the spec on {on} ({limits}): {p.name}, the most "
                         f"robust one (Ms {float(p.predicted['ms']):.2f}), is offered instead")
     if several:
         return None, (f"no proposal keeps Ms within {spec.ms_target:g} on every session: the "
@@ -731,7 +732,7 @@ def gains_verdict(p: Proposal, spec: DesignSpec) -> tuple[bool, str]:
         names = ", ".join(f.name for f in missed)
         on = f" on {names}" if several else ""
         return False, (f"these gains keep Ms within {spec.ms_target:g} but miss the spec "
-                       f"({_spec_text(spec)}){on}")
-    meets = f" and meet the spec ({_spec_text(spec)})" if _spec_text(spec) else ""
+                       f"({spec_text(spec)}){on}")
+    meets = f" and meet the spec ({spec_text(spec)})" if spec_text(spec) else ""
     on = " on every session" if several else ""
     return True, f"these gains keep Ms within {spec.ms_target:g}{meets}{on}"

@@ -128,12 +128,7 @@ def phase_crossing(points: list[FourierPoint]) -> tuple[float, float] | None:
     if p1 is None or not above:
         return None
     p2 = above[0]
-    ph1 = float(np.angle(p1.g))
-    if ph1 > 0:
-        ph1 -= 2.0 * math.pi
-    dph = float(np.angle(p2.g / p1.g))
-    if dph > 0:
-        dph -= 2.0 * math.pi
+    ph1, dph = _falling_phases(p1, p2)
     if dph == 0.0:
         return None
     frac = (-math.pi - ph1) / dph
@@ -159,12 +154,7 @@ def local_ultimate(p1: FourierPoint, p2: FourierPoint | None = None) -> tuple[fl
     w1 = p1.w
     if p2 is None or not abs(p2.g) > 0 or not p2.w > w1:
         return 1.0 / abs(p1.g), 2.0 * math.pi / w1
-    ph1 = float(np.angle(p1.g))
-    if ph1 > 0:
-        ph1 -= 2.0 * math.pi
-    dph = float(np.angle(p2.g / p1.g))
-    if dph > 0:
-        dph -= 2.0 * math.pi
+    ph1, dph = _falling_phases(p1, p2)
     span = math.log(p2.w / w1)
     q = min(max(dph / span, -3.0 * math.pi), -0.05)
     m = min(max(math.log(abs(p2.g) / abs(p1.g)) / span, -4.0), 0.0)
@@ -188,3 +178,15 @@ def cycle_estimate(t: np.ndarray, y: np.ndarray, u: np.ndarray, ts: float,
     if 2 in higher and (p2 is None or higher[2].snr > 2.0 * p2.snr):
         p2 = higher[2]
     return local_ultimate(pts[0], p2)
+
+
+def _falling_phases(p1: FourierPoint, p2: FourierPoint) -> tuple[float, float]:
+    """The phase of p1 (rad, in (-2 pi, 0]) and the phase change from p1 to p2 (rad, <= 0):
+    a loop's phase taken as falling with frequency."""
+    ph1 = float(np.angle(p1.g))
+    if ph1 > 0:
+        ph1 -= 2.0 * math.pi
+    dph = float(np.angle(p2.g / p1.g))
+    if dph > 0:
+        dph -= 2.0 * math.pi
+    return ph1, dph

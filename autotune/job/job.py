@@ -43,6 +43,7 @@ from autotune.core.design import (
     design_proposals,
     detune_design,
     spec_from_config,
+    spec_text,
 )
 from autotune.core.lti import DelayedTF
 from autotune.core.progress import Phase, RunSnapshot
@@ -434,17 +435,8 @@ class TuningJob:
             proposals=self.proposals, selected=selected,
             ku=res.get("ultimate_gain"), tu=res.get("ultimate_period"),
             model=model_words(model),
-            spec=self._spec_text(), ms_target=self.ms_target, message=message,
+            spec=spec_text(self._design_spec()), ms_target=self.ms_target, message=message,
             redesign=self._redesign if self._plant() is not None else None)
-
-    def _spec_text(self) -> str:
-        d = self.cfg.design
-        parts = []
-        if d.max_overshoot is not None:
-            parts.append(f"overshoot ≤ {d.max_overshoot:g} %")
-        if d.max_settling_time is not None:
-            parts.append(f"settling ≤ {d.max_settling_time:g} s")
-        return ", ".join(parts)
 
     def _choose(self, run: PoweredRun, selected: int, message: str = "") -> GainsChoice:
         """The gains menu until the operator picks runnable gains and confirms; _Leave when
