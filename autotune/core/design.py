@@ -370,7 +370,7 @@ def predict(model: DelayedTF, gains: PidGains, spec: DesignSpec,
             "stable": stable, "overshoot": overshoot, "rise_time": rise, "settling_time": settle,
             "iae_load": iae, "peak_output": peak, "time_saturated": tsat, "ts": ts,
             "t_end": float(run.t[-1]), "t_end_load": t_cap, "ts_assumed": spec.ts is None,
-            "setpoint_weight": b}
+            "setpoint_weight": b, "step_size": spec.step_size}
 
 
 def violations(pred: dict[str, float | bool], spec: DesignSpec) -> list[str]:

@@ -512,6 +512,21 @@ def fit_step_to_window(
     )
 
 
+RAISE_ROOM = 0.95  # a step raised for the noise keeps its peak within this fraction of the
+#   window's room (the PV's own noise rides on the peak; common practice, no source)
+
+
+def raise_cap(pv_window: float, spec: StepSpec, predicted_overshoot: float | None) -> float:
+    """The largest |step| (PV units) a step may be raised to for the noise: its peak, with the
+    overshoot the spec allows for the prediction (`StepSpec.overshoot_limit`; the absolute cap
+    when nothing is predicted), stays within RAISE_ROOM of the PV window (+/- pv_window around
+    the run's start; the job narrows it to the room from where the PV stands)."""
+    if not math.isfinite(pv_window) or pv_window <= 0:
+        return math.inf
+    allowed, _ = spec.overshoot_limit(predicted_overshoot)
+    return RAISE_ROOM * largest_step(0.0, 1.0, -pv_window, pv_window, allowed or 0.0)
+
+
 def largest_step(start: float, size: float, pv_low: float, pv_high: float,
                  overshoot: float) -> float:
     """The largest |step| (PV units) in the direction of `size` from `start` whose peak with
@@ -769,6 +784,7 @@ class StepExperiment:
                                tu=self.plan.tu)
 
         choice = band_for(self.size)
+        raised = False
         if not choice.judged and self.plan.max_size is not None and \
                 math.isfinite(self.plan.max_size):
             need = 1.05 * smallest_step(sigma, q, self._ts(), self.plan.tu,
@@ -778,8 +794,7 @@ class StepExperiment:
                 self.size = math.copysign(need, self.size)
                 self.target = self.start_value + self.size
                 choice = band_for(self.size)
-                self.band = dataclasses.replace(self.band, half_width=self.band.fraction
-                                                * abs(self.size))
+                raised = True
                 events.append(StepEvent(t, "step_raised", {
                     "from": old_size, "to": self.size,
                     "why": f"the PV noise measured in the hold (std {sigma:.3g}, resolution "
@@ -787,7 +802,11 @@ class StepExperiment:
                            f"step; raised to {abs(self.size):.3g} (at most {self.plan.max_size:.3g} "
                            "fits the PV window with the overshoot allowed)"}))
         old = self.band
-        if (choice.fraction > old.fraction or choice.window > old.window
+        if raised:
+            # the plan's band was for the smaller step: the raised step's band replaces it
+            self.band = choice
+            events.append(StepEvent(t, "band", self.band.as_dict()))
+        elif (choice.fraction > old.fraction or choice.window > old.window
                 or choice.judged != old.judged or choice.noise > old.noise):
             self.band = BandChoice(max(choice.fraction, old.fraction), choice.half_width,
                                    max(choice.window, old.window), choice.noise,
@@ -1269,7 +1288,7 @@ def settings_from_config(
                             ts=None)
     tick = 0.01 if ts is None else float(ts)
     predicted = dict(getattr(candidate, "predicted", None) or {})
-    cap = DEFAULT_WINDOW_FRACTION * cfg.safety.pv_window
+    cap = raise_cap(cfg.safety.pv_window, spec, _fin(predicted.get("overshoot")))
     if rest is not None and not fixed_size:
         noisy = spec.noisy_band if spec.noisy_band > spec.settle_band else spec.settle_band
         need = 1.05 * smallest_step(float(rest.noise_std), float(rest.resolution), tick, tu,
@@ -1493,11 +1512,25 @@ def finish_outcome(o: StepOutcome, exp: StepExperiment) -> StepOutcome:
     elif band.fraction != DEFAULT_SETTLE_BAND and "settling_time" in predicted:
         labels["settling_time"] = (f"{band.label}; predicted on the "
                                    f"{band_label(DEFAULT_SETTLE_BAND)} (an upper bound)")
+    _scale_peak_output(predicted, o)
     o.predicted_on_band = {k: v for k, v in predicted.items()
                            if k in ("overshoot", "rise_time", "settling_time")}
     if o.metrics is not None:
         o.rows = compare(o.metrics, predicted, labels)
     return o
+
+
+def _scale_peak_output(predicted: dict[str, Any], o: StepOutcome) -> None:
+    """The design predicts the peak output for its own step (`step_size`, from the holding
+    output 0); the step made may be larger (raised for the noise) and start from a holding
+    output: scaled linearly to the step made and counted from the output held before it (an
+    upper bound when the step drives the output towards 0)."""
+    peak, made = _fin(predicted.get("peak_output")), _fin(predicted.get("step_size"))
+    if peak is None or made is None or made <= 0 or not o.size:
+        return
+    ratio = abs(o.size) / made
+    if abs(ratio - 1.0) > 1e-6 or o.rest_output:
+        predicted["peak_output"] = peak * ratio + abs(o.rest_output or 0.0)
 
 
 def judge_outcome(o: StepOutcome, spec: StepSpec | None) -> None:
@@ -1510,4 +1543,6 @@ def judge_outcome(o: StepOutcome, spec: StepSpec | None) -> None:
                       oscillation=o.oscillation, decay_ratio=o.decay_ratio,
                       band_label=band.label if band is not None else o.plan.label,
                       band_judged=band.judged if band is not None else True,
-                      band_note=band.note if band is not None else "")
+                      band_note=band.note if band is not None else "",
+                      noise_points=(100.0 * band.noise / abs(o.size)
+                                    if band is not None and o.size else 0.0))

@@ -92,15 +92,23 @@ class StepSpec:
     def to_dict(self) -> dict[str, float | None]:
         return dataclasses.asdict(self)
 
-    def overshoot_limit(self, predicted: float | None) -> tuple[float | None, str]:
-        """The overshoot limit (%) and where it comes from, for a predicted overshoot (%)."""
+    def overshoot_limit(self, predicted: float | None, noise_points: float = 0.0
+                        ) -> tuple[float | None, str]:
+        """The overshoot limit (%) and where it comes from, for a predicted overshoot (%).
+
+        noise_points: percentage points of the step the PV noise can add to a measured peak
+        (the noise amplitude left after the smoothing over the step size); it widens the
+        margin on the prediction, never the absolute cap `max_overshoot`."""
         parts: list[tuple[float, str]] = []
         if self.max_overshoot is not None:
             parts.append((self.max_overshoot, f"at most {self.max_overshoot:g} %"))
         if self.overshoot_margin is not None and _finite(predicted):
             assert predicted is not None
-            parts.append((predicted + self.overshoot_margin,
-                          f"predicted {predicted:.3g} % + {self.overshoot_margin:g} points"))
+            noise = max(0.0, float(noise_points)) if _finite(noise_points) else 0.0
+            extra = f" + {noise:.2g} points of PV noise" if noise >= 0.05 else ""
+            parts.append((predicted + self.overshoot_margin + (noise if extra else 0.0),
+                          f"predicted {predicted:.3g} % + {self.overshoot_margin:g} points"
+                          + extra))
         if not parts:
             return None, "no overshoot limit in the spec"
         return min(parts, key=lambda p: p[0])
@@ -326,7 +334,7 @@ def judge(measured: Any, spec: StepSpec | None = None, *, settled: bool = True,
           predicted: Mapping[str, Any] | None = None, record: float | None = None,
           oscillation: Any = None, decay_ratio: float | None = None,
           band_label: str = "2 % band", band_judged: bool = True,
-          band_note: str = "") -> Verdict:
+          band_note: str = "", noise_points: float = 0.0) -> Verdict:
     """Judge a step's figures against `spec` (None: the default StepSpec) and suggest the next
     action.
 
@@ -336,12 +344,14 @@ def judge(measured: Any, spec: StepSpec | None = None, *, settled: bool = True,
     oscillation that stopped the step (period s, decay_ratio; a mapping or
     autotune.core.metrics.Oscillation), None when none; decay_ratio: the largest decay ratio
     seen otherwise (None: no second swing); band_judged False when the noise exceeds even the
-    noisy band (`band_note` says so): settling is then not judged.
+    noisy band (`band_note` says so): settling is then not judged; noise_points: how far (points
+    of the step) the PV noise left after the smoothing can lift the measured overshoot
+    (`StepSpec.overshoot_limit`).
     """
     spec = StepSpec() if spec is None else spec
     m = figures_of(measured)
     p = figures_of(predicted or {})
-    os_limit, os_basis = spec.overshoot_limit(p.get("overshoot"))
+    os_limit, os_basis = spec.overshoot_limit(p.get("overshoot"), noise_points)
     off_os = spec.max_overshoot is None and spec.overshoot_margin is None
     sat_basis = (f"at most {spec.max_time_saturated:g} s at the output limit"
                  if spec.max_time_saturated is not None else "")

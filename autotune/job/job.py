@@ -55,6 +55,7 @@ from autotune.core.steptest import (
     predict_step,
     settings_from_config,
 )
+from autotune.core.verdict import NOT_JUDGED
 from autotune.core.verdict import spec_from_config as step_spec
 from autotune.errors import (
     EXIT_ABORTED,
@@ -587,8 +588,14 @@ class TuningJob:
                 if v is not None and v.passed:
                     self._accept(run, outcome, choice)
                     return
-                nxt = self._detuned(choice) if tries <= self.cfg.step.retries else None
                 why = v.reason if v is not None else "no figures"
+                if v is not None and v.status == NOT_JUDGED:
+                    # gentler gains cannot help what the step could not show
+                    raise RunEnded("step:not_judged", f"the step with {choice.name} could not "
+                                   f"be judged ({why}); no gains written: give the step more "
+                                   "room (safety.pv_window, step.size) or a quieter PV",
+                                   EXIT_FAILED)
+                nxt = self._detuned(choice) if tries <= self.cfg.step.retries else None
                 if nxt is None:
                     raise RunEnded("step:not_met", f"the step with {choice.name} misses the "
                                    f"spec ({why}); no gains written", EXIT_FAILED)
@@ -687,7 +694,7 @@ class TuningJob:
             cand = StepCandidate(choice.name, choice.gains,
                                  self._predict(choice, settings, run.loop_mode))
         g = choice.gains
-        run.say(f"step {plan.size:+g} PV units with {choice.name}: kp {g.kp:.4g}, ki {g.ki:.4g}"
+        run.say(f"step {plan.size:+.4g} PV units with {choice.name}: kp {g.kp:.4g}, ki {g.ki:.4g}"
                 f" /s, kd {g.kd:.4g} s, b {choice.setpoint_weight:.3g} ({run.loop_mode} loop)")
         ended: RunEnded | None = None
         outcome: StepOutcome | None

@@ -15,6 +15,7 @@ from typing import Any
 from autotune.core.pid import DiscretePid
 from autotune.core.progress import Phase
 from autotune.core.steptest import (
+    RAISE_ROOM,
     StepCandidate,
     StepCommand,
     StepExperiment,
@@ -131,8 +132,11 @@ def run_step(
     exp = StepExperiment(plan, start, bias=settings.bias, output_limit=settings.output_limit)
     outcome = StepOutcome(candidate, pid_settings, loop, plan, start)
     axis = run.axis
+    if run.supervisor is not None:
+        # closed loop from here: a steady output holding a steady PV is what settling looks like
+        run.supervisor.disarm_response()
     run.loop_mode = loop
-    run.set_phase(Phase.STEP, f"step {plan.size:+g} with {candidate.name} "
+    run.set_phase(Phase.STEP, f"step {plan.size:+.4g} with {candidate.name} "
                   f"(kp {g.kp:.4g}, ki {g.ki:.4g}, kd {g.kd:.4g}), {loop} loop")
     run.event("step_start", {
         "proposal": candidate.name, "kp": g.kp, "ki": g.ki, "kd": g.kd,
@@ -158,7 +162,7 @@ def run_step(
             raise fail("step:out_of_range", refusal)
         if plan.max_size is not None:  # a step raised for the noise must fit the board
             room = largest_step(start, plan.size, limits["pv_low"], limits["pv_high"], allow)
-            plan = dataclasses.replace(plan, max_size=min(plan.max_size, room))
+            plan = dataclasses.replace(plan, max_size=min(plan.max_size, RAISE_ROOM * room))
             exp = StepExperiment(plan, start, bias=settings.bias,
                                  output_limit=settings.output_limit)
             outcome.plan = plan

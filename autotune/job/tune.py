@@ -39,7 +39,7 @@ from typing import Any
 import numpy as np
 
 from autotune.config import Config, check_against_noise, relay_plan
-from autotune.core import analysis, design, identify
+from autotune.core import analysis, deadzone, design, identify
 from autotune.core import prechecks as pre
 from autotune.core.conditions import condition_of_identification
 from autotune.core.harmonics import cycle_estimate
@@ -545,14 +545,27 @@ class TuneRun:
         amplitudes shows a dead zone of AUTO_BREAKAWAY_FRACTION of the amplitude or more."""
         if self.cfg.prechecks.breakaway != "auto" or not run.info.has_host_loop:
             return
-        est = exp.dead_zone_estimate()
         d = exp.settings.amplitude
+        est = self._swing_dead_zone(exp)
         if est is None or not est > AUTO_BREAKAWAY_FRACTION * d:
             return
         run.say(f"the relay's swing at two amplitudes shows a dead zone of about {est:.3g}: "
                 "measuring it with the breakaway ramps")
         period = exp.cycles[-1].period if exp.cycles else None
         self._breakaway(run, self._threshold, period=period)
+
+    def _swing_dead_zone(self, exp: RelayExperiment) -> float | None:
+        """Dead zone (output units) the relay's record shows from its amplitude stages, by the
+        estimator the identification uses (`deadzone.estimate_dead_zone`, no model yet); the
+        relay's own running estimate when the record has fewer than two stages."""
+        t, y, u = self.relay_data.np()
+        cycles = analysis.relay_cycles(t, y, u, centre=exp.settings.centre)
+        stages = deadzone.stages_from_cycles(t, cycles)
+        if len(stages) >= 2 and t.size > 1:
+            est = deadzone.estimate_dead_zone(t, y, u, stages, float(np.median(np.diff(t))))
+            if est is not None:
+                return est.raw
+        return exp.dead_zone_estimate()
 
     def _pv_frozen(self, t_end: float) -> bool:
         """True when the PV stayed within its noise band over the last relay.stall_time s."""
