@@ -52,20 +52,32 @@ def one_line_error(err: str) -> str:
     ("[safety]\noutput_limit = -3\n", "safety.output_limit", "must be > 0"),
     ("[safety]\npv_window = 1.0\n[relay]\ntarget_amplitude = 0.8\n", "relay.target_amplitude",
      "half of safety.pv_window"),
-    ("[safety\npv_window = 1.0\n", None, "not valid TOML"),
+    ("[safety\npv_window = 1.0\n", None, "not valid TOML"),    # out of range or binary: refused before connecting as well
+    (None, None, "not UTF-8"),  # a binary file
+    ("[safety]\npv_window = 1e308\n", "safety.pv_window", "wire format"),
+    ("[safety]\noutput_limit = 1e39\n", "safety.output_limit", "wire format"),
+    (f"[connection]\nbaudrate = {2**63 - 1}\n", "connection.baudrate", "out of range"),
+    ("[connection]\nbaudrate = 50000000\n", "connection.baudrate", "bit/s"),
+    ("[relay]\nmax_cycles = 9999999999\n", "relay.max_cycles", "out of range"),
+    ("[safety]\npv_window = " + "[" * 5000 + "]" * 5000 + "\n", None, "TOML"),
 ])
 def test_bad_config_names_file_key_problem(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                           body: str, key: str | None, problem: str) -> None:
+                                           body: str | None, key: str | None,
+                                           problem: str) -> None:
     cfg = tmp_path / "bad.toml"
-    cfg.write_text(body)
+    if body is None:
+        cfg.write_bytes(bytes(range(256)) * 8)  # a binary file
+    else:
+        cfg.write_text(body)
     out_dir = tmp_path / "out"
-    code, _, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--config", str(cfg),
+    code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--config", str(cfg),
                            "--out", str(out_dir))
     assert code == EXIT_USAGE
     line = one_line_error(err)
     assert str(cfg) in line and problem in line
     if key is not None:
         assert key in line
+    assert "connected to" not in out
     assert not out_dir.exists()  # nothing was connected, nothing recorded, nothing moved
 
 
@@ -253,34 +265,6 @@ def test_tcp_listener_binds_loopback_by_default(where: str) -> None:
 def assert_nothing_connected(out: str, out_dir: Path) -> None:
     assert "connected to" not in out
     assert not (out_dir / "session.jsonl").exists()
-
-
-@pytest.mark.parametrize("body, key, problem", [
-    (None, None, "not UTF-8"),  # a binary file
-    ("[safety]\npv_window = 1e308\n", "safety.pv_window", "wire format"),
-    ("[safety]\noutput_limit = 1e39\n", "safety.output_limit", "wire format"),
-    (f"[connection]\nbaudrate = {2**63 - 1}\n", "connection.baudrate", "out of range"),
-    ("[connection]\nbaudrate = 50000000\n", "connection.baudrate", "bit/s"),
-    ("[relay]\nmax_cycles = 9999999999\n", "relay.max_cycles", "out of range"),
-    ("[safety]\npv_window = " + "[" * 5000 + "]" * 5000 + "\n", None, "TOML"),
-])
-def test_config_out_of_range_or_binary_exit_2_before_connecting(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str], body: str | None, key: str | None,
-        problem: str) -> None:
-    cfg = tmp_path / "bad.toml"
-    if body is None:
-        cfg.write_bytes(bytes(range(256)) * 8)
-    else:
-        cfg.write_text(body)
-    out_dir = tmp_path / "out"
-    code, out, err = run_cli(capsys, "tune", "--port", "sim", "--yes", "--config", str(cfg),
-                             "--out", str(out_dir))
-    assert code == EXIT_USAGE
-    line = one_line_error(err)
-    assert str(cfg) in line and problem in line
-    if key is not None:
-        assert key in line
-    assert_nothing_connected(out, out_dir)
 
 
 def test_out_not_a_directory_or_not_writable_exit_2_before_connecting(
