@@ -68,7 +68,11 @@ def test_spikes_cause_no_false_switches(tmp_path: Path) -> None:
 
 
 def test_runaway_host_guard_trips_within_one_tick(tmp_path: Path) -> None:
-    outcome, tr, s = run_faulty(tmp_path, "unstable=0.4",
+    # 2 (e^{0.4 t} - 1) PV units: past the window (5) against the relay's push the other way
+    # (up to 25 out x 0.25 PV/out) within about 4.5 s, well before the relay, stalled, would
+    # give up (1.4 s at each of its amplitudes: about 6 s); gentle enough over the 1 s rest
+    # check that its line fit still reads the noise
+    outcome, tr, s = run_faulty(tmp_path, "unstable=0.4,unstable_size=2.0",
                                 {"connection": {"loop": "host"},
                                  "relay": {"max_cycles": 50, "min_cycles": 40}})
     assert outcome.reason in ("limit:pv_window", "limit:pv_rate", "fault:pv_window"), \
