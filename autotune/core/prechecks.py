@@ -238,7 +238,7 @@ def assess_direction(t: ArrayLike, pv: ArrayLike, pulse_start_t: float, pulse_si
     ta, pa = _arrays(t, pv)
     before = ta < pulse_start_t
     if np.any(before):
-        baseline = float(np.mean(_median3(pa[before])))
+        baseline = float(np.mean(pa[before]))
     elif ta.size:
         baseline = float(pa[0])
     else:
