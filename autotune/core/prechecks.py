@@ -71,13 +71,11 @@ def _arrays(*xs: ArrayLike) -> list[np.ndarray]:
 
 
 def _median3(x: np.ndarray) -> np.ndarray:
-    """Running median of three (each end the median of its first or last three samples):
-    one-sample spikes do not count as motion, at the ends of the record either."""
+    """Running median of three (ends kept): one-sample spikes do not count as motion."""
     if x.size < 3:
         return x.copy()
     y = x.copy()
     y[1:-1] = np.median(np.stack([x[:-2], x[1:-1], x[2:]]), axis=0)
-    y[0], y[-1] = np.median(x[:3]), np.median(x[-3:])
     return y
 
 
