@@ -29,6 +29,7 @@ than real time (1 for a real board).
 from __future__ import annotations
 
 import contextlib
+import queue
 import sys
 import threading
 import time
@@ -157,6 +158,8 @@ class PoweredRun:
         """Called with each sample record before it is written: extra keys for that sample."""
         self._stop_lock = threading.Lock()
         self._stop_req: _StopRequest | None = None
+        self._signalled: str | None = None  # a signal's name, set by the (lock-free) handler
+        self._signal_queue: queue.SimpleQueue[str | None] = queue.SimpleQueue()
         self._phase_at_stop = Phase.CONNECT.value
         self._in_request: str | None = None
         self._keys: Any = None
@@ -229,6 +232,7 @@ class PoweredRun:
             self.info = self.link.handshake()
         except LinkError as exc:
             raise UserError(f"{opts.port}: {exc}", exit_code=EXIT_LINK) from None
+        self._exits.enter_context(self._signal_watcher())
         self._exits.enter_context(signals.diverted(self._on_signal))
         info = self.info
         check_against_device(self.cfg, info.max_output, info.axis_count, info.tick)
@@ -404,12 +408,39 @@ class PoweredRun:
 
     def _on_signal(self, name: str) -> bool:
         """A signal during the run (see autotune.job.signals): a stop request. False when a
-        stop was already under way (the signal then ends the verb after the stop path)."""
-        if self._stop_req is not None:
+        stop was already under way (the signal then ends the verb after the stop path).
+
+        This runs in the signal handler, between two bytecodes of the main thread, which may
+        hold any lock of the run, the link or the recorder at that moment: it takes none. It
+        hands the request to the watcher thread (SimpleQueue.put is reentrant) and check_stop
+        makes it in the main thread if that comes first."""
+        if self._stop_req is not None or self._signalled is not None:
             return False
-        self.request_stop("aborted", f"{name} received; what was measured is kept",
-                          EXIT_ABORTED)
+        self._signalled = name
+        self._signal_queue.put(name)
         return True
+
+    def _stop_for_signal(self) -> None:
+        name = self._signalled
+        if name is not None and self._stop_req is None:
+            self.request_stop("aborted", f"{name} received; what was measured is kept",
+                              EXIT_ABORTED)
+
+    @contextlib.contextmanager
+    def _signal_watcher(self) -> Iterator[None]:
+        """A thread that makes the stop request for a signal (see _on_signal)."""
+
+        def watch() -> None:
+            while self._signal_queue.get() is not None:
+                self._stop_for_signal()
+
+        thread = threading.Thread(target=watch, name="autotune-signal-stop", daemon=True)
+        thread.start()
+        try:
+            yield
+        finally:
+            self._signal_queue.put(None)
+            thread.join(5.0)
 
     def _on_record_error(self, problem: str) -> None:
         self.request_stop("error:recording",
@@ -487,6 +518,8 @@ class PoweredRun:
 
     def check_stop(self) -> None:
         """Raise RunEnded if a stop was requested (from any thread)."""
+        if self._signalled is not None and self._stop_req is None:
+            self._stop_for_signal()
         req = self._stop_req
         if req is not None:
             self._refine_cause()
