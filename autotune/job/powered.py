@@ -377,15 +377,27 @@ class PoweredRun:
         """Before powering again after `halt`: the samples that came meanwhile are recorded
         (phase "waiting"), the PV start value is measured again at zero output and the limits
         are loaded around it and read back (the PV window now centres on where the PV is)."""
-        for rec in self.link.drain_samples():
-            if rec.axis == self.axis:
-                self.last_sample = rec
-                self._record(rec, "waiting")
+        self.catch_up("waiting")
         first = self._load_limits()
         self.armed = True
         self._start_checks(first, "connect")
         self.snapshot_extra["stopped"] = False
         self.event("rearmed", {"pv_start": self.pv_start, "limits": self.limits_readback})
+
+    def catch_up(self, phase: str | None = None) -> int:
+        """Record every sample waiting in the link's queue (the checks have already run on
+        them) without handing them to the caller, so that the next `next_sample` is one the
+        device sent after the commands acknowledged so far. A stage that starts after the host
+        was busy (a design computed, a file written) thus does not judge its first commands on
+        samples older than them. `phase`: recorded phase (default: the current one). Returns
+        the number of samples recorded."""
+        n = 0
+        for rec in self.link.drain_samples():
+            if rec.axis == self.axis:
+                self.last_sample = rec
+                self._record(rec, phase if phase is not None else self.phase.value)
+                n += 1
+        return n
 
     def _open_session(self, extra: dict[str, Any]) -> None:
         if self.options.out_dir is None:

@@ -126,6 +126,7 @@ def run_step(
     ts = settings.ts if settings.ts is not None else float(run.info.tick)
     pid_settings = settings.pid_settings(candidate.gains, ts)
     g = candidate.gains
+    run.catch_up()  # the start value from where the PV is now, not from a backlog
     start = _start_value(run)
     # output units: the bias, plus what cancels kp (b - 1) start (the setpoint weight's term)
     preset = settings.bias + g.kp * (1.0 - settings.setpoint_weight) * start
@@ -203,6 +204,9 @@ def run_step(
         else:
             host_pid = DiscretePid(dataclasses.replace(pid_settings, bias=0.0))
             host_pid.reset(integral=preset)
+        # the samples still queued predate the PID start (the host may have been busy): the
+        # step judges only what came after it
+        run.catch_up()
         while True:
             rec = run.next_sample()
             # what the loop had in effect at this sample; NaN while it was not running yet
