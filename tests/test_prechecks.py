@@ -19,6 +19,8 @@ from autotune.core.prechecks import (
     breakaway_ramp_duration,
     direction_pulse,
     smallest_step,
+    trailing_median3,
+    weak_response,
 )
 
 DT = 0.01
@@ -138,6 +140,43 @@ def test_direction_single_spike_is_not_motion() -> None:
     y[150] += 5.0  # one corrupt sample
     r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
     assert not r.moved and r.message == MSG_NO_RESPONSE
+
+
+def test_direction_spike_on_the_first_or_last_pulse_sample_is_not_motion() -> None:
+    """The live check stops the pulse on the sample that crossed: a spike there (or on the
+    pulse's first sample) must neither count as motion nor decide the sign (causal median)."""
+    for k in (100, 299):
+        for spike in (+5.0, -5.0):
+            t = np.arange(300) * DT
+            y = np.full(300, 1.0)
+            y[k] += spike
+            r = assess_direction(t, y, 1.0, +1, noise_std=0.01)
+            assert not r.moved and abs(r.change) < 1e-12, (k, spike, r)
+
+
+def test_trailing_median_is_what_a_live_check_sees() -> None:
+    """y[k] depends on x[k-2..k] only: every prefix gives the same values (the live check during
+    the pulse and the assessment after it agree sample by sample)."""
+    x = np.random.default_rng(4).normal(size=40)
+    full = trailing_median3(x)
+    for n in range(3, 41):
+        assert trailing_median3(x[:n])[-1] == full[n - 1]
+        assert full[n - 1] == np.median(x[n - 3:n])
+    assert list(trailing_median3([1.0, 9.0])) == [1.0, 9.0]
+
+
+def test_weak_response_asks_for_a_larger_pulse() -> None:
+    """A move between half the threshold and the threshold (two counts of a coarse sensor) is
+    too weak to decide but not "no response"."""
+    t = np.arange(300) * DT
+    q = 0.088
+    y = np.where(t >= 1.2, 2 * q, 0.0)  # two counts: 0.176
+    weak = assess_direction(t, y, 1.0, +1, noise_std=0.0, min_change=0.25)
+    assert not weak.moved and weak_response(weak)
+    strong = assess_direction(t, y, 1.0, +1, noise_std=0.0, min_change=0.15)
+    assert strong.ok and not weak_response(strong)
+    none = assess_direction(t, np.zeros_like(t), 1.0, +1, noise_std=0.0, min_change=0.25)
+    assert not weak_response(none)
 
 
 def test_direction_late_response_outside_timeout() -> None:

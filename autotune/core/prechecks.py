@@ -44,6 +44,8 @@ __all__ = [
     "pv_resolution",
     "relay_hysteresis",
     "smallest_step",
+    "trailing_median3",
+    "weak_response",
 ]
 
 DIRECTION_MIN_FRACTION = 0.1  # the pulse must move the PV by a tenth of the target amplitude
@@ -76,6 +78,19 @@ def _median3(x: np.ndarray) -> np.ndarray:
         return x.copy()
     y = x.copy()
     y[1:-1] = np.median(np.stack([x[:-2], x[1:-1], x[2:]]), axis=0)
+    return y
+
+
+def trailing_median3(x: ArrayLike) -> np.ndarray:
+    """Causal running median of three (PV units in, PV units out): y[k] = median(x[k-2..k]),
+    the first two samples kept. A one-sample spike never counts as motion, on the last sample
+    either, and the value at sample k is known when sample k arrives: the live check during a
+    pulse and the assessment after it decide on the same numbers."""
+    xa = np.asarray(x, dtype=float).ravel()
+    if xa.size < 3:
+        return xa.copy()
+    y = xa.copy()
+    y[2:] = np.median(np.stack([xa[:-2], xa[1:-1], xa[2:]]), axis=0)
     return y
 
 
@@ -226,9 +241,11 @@ def assess_direction(t: ArrayLike, pv: ArrayLike, pulse_start_t: float, pulse_si
 
     The baseline is the mean PV before the pulse start (the first sample if there is none).
     Samples from the pulse start up to pulse_start_t + timeout (all, when timeout is None) are
-    looked at; the PV counts as moved when it leaves the baseline by more than
-    max(threshold_factor x noise_std, min_change). The direction is that of the largest
-    excursion, so a brief inverse response (non-minimum-phase plant) does not decide it.
+    looked at, through a causal median of three over the whole record (`trailing_median3`:
+    what a live check sees as each sample arrives); the PV counts as moved when it leaves the
+    baseline by more than max(threshold_factor x noise_std, min_change). The direction is that
+    of the largest excursion, so a brief inverse response (non-minimum-phase plant) does not
+    decide it.
     Messages: MSG_SIGN_DISAGREE, MSG_NO_RESPONSE, or "" when ok.
     """
     if pulse_sign not in (-1, 1) or expected_sign not in (-1, 1):
@@ -245,7 +262,7 @@ def assess_direction(t: ArrayLike, pv: ArrayLike, pulse_start_t: float, pulse_si
     if timeout is not None:
         sel &= ta <= pulse_start_t + timeout
     threshold = max(threshold_factor * noise_std, min_change)
-    tw, pw = ta[sel], _median3(pa[sel])
+    tw, pw = ta[sel], trailing_median3(pa)[sel]
     dev = pw - baseline
     dev = np.where(np.isfinite(dev), dev, 0.0)
     if dev.size == 0:
@@ -264,6 +281,18 @@ def assess_direction(t: ArrayLike, pv: ArrayLike, pulse_start_t: float, pulse_si
         msg = ""
     return DirectionReport(ok=moved and sign_ok, moved=moved, sign_ok=sign_ok, change=change,
                            message=msg, threshold=threshold, t_response=t_resp)
+
+
+WEAK_FRACTION = 0.5  # a pulse that moved the PV half the threshold showed a response too
+#                     small to decide on (common practice, no source)
+
+
+def weak_response(report: DirectionReport) -> bool:
+    """True when the pulse moved the PV less than the threshold but at least WEAK_FRACTION of
+    it: a larger pulse should decide (a coarse sensor two counts from its threshold, a pulse
+    not far beyond a dead zone)."""
+    return (not report.moved and report.threshold > 0
+            and abs(report.change) >= WEAK_FRACTION * report.threshold)
 
 
 # ---------------------------------------------------------------------------------- breakaway

@@ -293,10 +293,9 @@ class TuneRun:
         self.centre = rest.mean
         run.say(f"rest: noise {rest.noise_std:.3g}, drift {rest.drift:.3g}/s, resolution "
                 f"{rest.resolution:.3g}")
-        # 2. direction
+        # 2. direction: a pulse; one twice as large when the first moved the PV too little to
+        # decide (a coarse sensor, a pulse just beyond a dead zone), within the output limit
         size = cfg.pulse_size
-        run.set_phase(Phase.PRECHECK_DIRECTION, f"output pulse of {size:g}")
-        base = self._y(rest.mean)
         threshold = pre.direction_threshold(rest.noise_std, cfg.relay.target_amplitude)
         # the drift seen at rest (a load on an integrating loop) is taken out, so that the
         # pulse's own effect decides the direction
@@ -306,23 +305,43 @@ class TuneRun:
         def detrend(t: Any, y: Any) -> Any:
             return y - drift * (t - t_mid)
 
-        window: list[float] = []
+        base_t, base_y = self._rest_t, self._rest_y  # the baseline's samples (sign applied)
+        room = cfg.safety.output_limit - abs(bias)
+        self.t_first_motion = run.last_sample.t
+        while True:
+            run.set_phase(Phase.PRECHECK_DIRECTION, f"output pulse of {size:g}")
+            base = float(np.mean(detrend(base_t, base_y)))
+            # the live check sees what the assessment below sees: the causal median of three
+            # over the baseline's last samples and the pulse's
+            window: list[float] = list(detrend(base_t[-2:], base_y[-2:]))
 
-        def moved(rec: Any) -> bool:
-            window.append(detrend(rec.t, self._y(rec.pv)))
-            recent = sorted(window[-3:])
-            return abs(recent[len(recent) // 2] - base) > threshold
+            def moved(rec: Any, window: list[float] = window, base: float = base) -> bool:
+                window.append(float(detrend(rec.t, self._y(rec.pv))))
+                return bool(abs(pre.trailing_median3(window[-3:])[-1] - base) > threshold)
 
-        t_pulse = run.last_sample.t
-        self._t_pulse = t_pulse
-        self.t_first_motion = t_pulse
-        recs = self._hold(run, bias + size, cfg.prechecks.pulse_timeout, until=moved)
-        run.set_output(bias)
-        # baseline: the rest samples; then the pulse (the first one answers at the next tick)
-        t = np.concatenate([self._rest_t, [r.t for r in recs]])
-        y = detrend(t, np.concatenate([self._rest_y, [self._y(r.pv) for r in recs]]))
-        d = pre.assess_direction(t, y, t_pulse, +1, rest.noise_std, expected_sign=+1,
-                                 min_change=threshold)
+            t_pulse = run.last_sample.t
+            self._t_pulse = t_pulse
+            recs = self._hold(run, bias + size, cfg.prechecks.pulse_timeout, until=moved)
+            run.set_output(bias)
+            t = np.concatenate([base_t, [r.t for r in recs]])
+            y = detrend(t, np.concatenate([base_y, [self._y(r.pv) for r in recs]]))
+            d = pre.assess_direction(t, y, t_pulse, +1, rest.noise_std, expected_sign=+1,
+                                     min_change=threshold)
+            if not pre.weak_response(d) or 2.0 * size > room + 1e-9:
+                break
+            run.event("precheck", {**d.as_dict(), "t_pulse": t_pulse, "pulse": size},
+                      check="direction_weak", ok=False)
+            run.say(f"direction: the PV moved {self.sign * d.change:+.3g} for an output pulse "
+                    f"of {size:+g}, short of the {threshold:.3g} needed to decide: a pulse of "
+                    f"{2.0 * size:+g} follows")
+            # back at the bias; where the PV then holds is the next pulse's baseline
+            again = self._hold(run, bias, cfg.prechecks.rest_time)
+            again = again[len(again) // 2:]
+            if len(again) < 3:
+                break
+            base_t = np.array([r.t for r in again])
+            base_y = np.array([self._y(r.pv) for r in again])
+            size *= 2.0
         # a sensor that reads exactly constant at rest shows its step once the PV moves
         d = replace(d, resolution=pre.smallest_step([r.pv for r in recs]))
         self.direction = d

@@ -59,3 +59,51 @@ name = "coarse-wheel"
     assert unc["ultimate_period"] <= 0.25
     assert res["ultimate_period"] == pytest.approx(2 * math.pi / w,
                                                    rel=max(0.05, unc["ultimate_period"]))
+
+
+def test_weak_direction_pulse_is_repeated_twice_as_large(tmp_path: Path) -> None:
+    """A pulse that moves a coarse PV less than the direction threshold but more than half of
+    it is repeated at twice the size (within the output limit) instead of ending the run with
+    "no response"; the relay then runs as usual.
+
+    Numbers: gain 0.25 PV units per output unit, lags 0.6 s and 0.08 s, so a pulse of 0.15 held
+    for the 2 s pulse timeout moves the PV by about 0.25 * 0.15 * 0.96 = 0.036 (analytic step
+    response of the lag chain, within a count), between half and all of the threshold of a
+    tenth of the 0.5 target amplitude (0.05: the sensor is constant at rest); the second
+    pulse of 0.3 moves it about 0.07."""
+    plant = tmp_path / "wheel.toml"
+    plant.write_text("""
+[plant]
+num = [0.25]
+den = [0.048, 0.68, 1.0]
+delay = 0.05
+[sensor]
+noise = 0.0
+resolution = 0.01
+[device]
+period = 0.01
+name = "coarse-wheel"
+""")
+    cfg = tmp_path / "tune.toml"
+    cfg.write_text("[safety]\nwatchdog = 2.0\n[relay]\ntarget_amplitude = 0.5\n"
+                   "[prechecks]\npulse_size = 0.15\n")
+    out = tmp_path / "run"
+    proc = subprocess.run([sys.executable, "-m", "autotune", "tune",
+                           "--config", str(cfg), "--port", "sim", "--plant", str(plant),
+                           "--yes", "--speed", "10", "--no-step", "--out", str(out)],
+                          capture_output=True, text=True, timeout=240)
+    text = proc.stdout + proc.stderr
+    assert proc.returncode == 0, text[-3000:]
+    assert "a pulse of +0.3 follows" in text, text[-3000:]
+    from autotune.recorder import read_session
+
+    s = read_session(out / "session.jsonl")
+    weak = [e for e in s.events if e.get("check") == "direction_weak"]
+    assert len(weak) == 1
+    d = weak[0]["detail"]
+    assert d["pulse"] == pytest.approx(0.15)
+    assert 0.5 * d["threshold"] <= abs(d["change"]) < d["threshold"]
+    res = json.loads((out / "result.json").read_text())
+    direction = res["prechecks"]["direction"]
+    assert direction["ok"] and direction["change"] > direction["threshold"]
+    assert res["end_reason"] == "converged"
