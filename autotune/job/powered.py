@@ -836,6 +836,12 @@ class PoweredRun:
                         link.request(Stream(self.axis, 0, 1), timeout=0.2, retries=0)
                 with contextlib.suppress(Exception):
                     link.close()
+                if self.recording.writer is not None:
+                    # what came after the last stage read (the reader ran until the close):
+                    # every sample received is in the session file
+                    with contextlib.suppress(Exception):
+                        self.catch_up(Phase.STOPPING.value if self.outcome.stop is not None
+                                      else None)
         finally:
             if self.sim is not None:
                 with contextlib.suppress(Exception):
