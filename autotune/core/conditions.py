@@ -146,6 +146,39 @@ def condition_of_identification(name: str, ident: Any) -> Condition:
                      bool(ident.reliable))
 
 
+def condition_set_of_identification(name: str, ident: Any) -> tuple[Condition, ...]:
+    """The conditions a design of one identified loop must hold on: its chosen model
+    (`condition_of_identification`) and, when that model fails to reproduce what was measured
+    (`ident.reliable` False), every other candidate model fitted to the same record with finite
+    coefficients and a positive gain, as alternatives (`Condition.alternative`) sharing the
+    measured points and ultimate point. A record no single model explains (a nonlinearity, a
+    dead zone the swing did not show) may be closest to any of them: gains robust on all of
+    them are robust on the loop where the chosen one alone is not."""
+    first = condition_of_identification(name, ident)
+    if ident.reliable:
+        return (first,)
+    out = [first]
+    model = ident.analysis.model
+    for kind, cand in getattr(model, "candidates", {}).items():
+        tf = cand.tf
+        if tf is model.tf or kind == model.kind:
+            continue
+        if not all(math.isfinite(c) for c in (*tf.num, *tf.den, tf.delay)):
+            continue
+        if not _positive_gain(tf):
+            continue
+        out.append(replace(first, name=f"{name} ({kind})", model=tf, alternative=True))
+    return tuple(out)
+
+
+def _positive_gain(tf: DelayedTF) -> bool:
+    """The low-frequency gain is positive (the sign convention every design assumes): the
+    lowest-order non-zero coefficients of numerator and denominator agree in sign."""
+    num = next((c for c in reversed(tf.num) if c != 0.0), 0.0)
+    den = next((c for c in reversed(tf.den) if c != 0.0), 0.0)
+    return num * den > 0.0
+
+
 def condition_of_result(name: str, result: Mapping[str, Any]) -> Condition:
     """The design's view of a result.json (a `tune` or `analyze` result): `model` (num, den,
     delay), `ultimate_gain`, `ultimate_period` and the `fourier` points (w rad/s, magnitude,

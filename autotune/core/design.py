@@ -134,6 +134,9 @@ class Condition:
     measured frequency-response points (w rad/s, the static gain at w = 0); model_valid: False
     when the model fails to reproduce what was measured (the designs are then constrained on
     the points as always, PI is preferred and the predicted figures are marked unreliable).
+    alternative: True for another candidate model of the same session as the condition before
+    it (`conditions.condition_set_of_identification`: where no model reproduces the record the
+    designs must hold on each candidate); it does not count as a session of its own.
     """
 
     name: str
@@ -142,6 +145,7 @@ class Condition:
     tu: float | None = None
     points: tuple[MeasuredPoint, ...] = ()
     model_valid: bool = True
+    alternative: bool = False
 
 
 @dataclass(frozen=True)
@@ -616,7 +620,7 @@ def design_proposals(conditions: Sequence[Condition], spec: DesignSpec | None = 
     conds = tuple(conditions)
     if not conds:
         raise ValueError("a design needs at least one condition")
-    several = len(conds) > 1
+    several = sum(not c.alternative for c in conds) > 1
     valid = all(c.model_valid for c in conds)
     plants = [c.model for c in conds]
     points = [pt for c in conds for pt in c.points]
@@ -644,7 +648,12 @@ def design_proposals(conditions: Sequence[Condition], spec: DesignSpec | None = 
         if several else
         "the model does not reproduce the measured response: the predicted figures are "
         "unreliable (the designs are held to the measured points, PI preferred)"
-        for c in conds if not c.model_valid)
+        for c in conds if not c.model_valid and not c.alternative)
+    if any(c.alternative for c in conds):
+        warnings += ("no model reproduces the record, so every proposal is designed and "
+                     "judged on the chosen model and on each other candidate fitted to it "
+                     f"({', '.join(c.name for c in conds if c.alternative)}): the gains hold "
+                     "on whichever is closest to the loop, at the price of a slower response",)
     return DesignResult(proposals, default, note, warnings)
 
 

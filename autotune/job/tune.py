@@ -41,7 +41,7 @@ import numpy as np
 from autotune.config import Config, check_against_noise, relay_plan
 from autotune.core import analysis, deadzone, design, identify
 from autotune.core import prechecks as pre
-from autotune.core.conditions import condition_of_identification
+from autotune.core.conditions import condition_set_of_identification
 from autotune.core.harmonics import cycle_estimate
 from autotune.core.progress import CycleEstimate, Phase
 from autotune.core.relay import RelayExperiment, RelayPlan, RelaySettings
@@ -755,8 +755,9 @@ def propose_gains(ident: identify.Identification, design_cfg: Mapping[str, Any],
     design_cfg: the design limits (`design_table`: ms_target, max_overshoot (%),
     max_settling_time (s), step_size (PV units; None = the relay's target amplitude));
     output_limit in output units; ts the loop period (s). The designs are held to the measured
-    points too (`conditions.condition_of_analysis`); where the model does not reproduce what
-    was measured, PI is preferred and every prediction is marked unreliable. A design failure,
+    points too (`conditions.condition_set_of_identification`); where the model does not
+    reproduce what was measured, they hold on every candidate model fitted to the record as
+    well, PI is preferred and every prediction is marked unreliable. A design failure,
     a default that misses the spec or no default at all is reported in `notes` in our own
     words, not raised: the analysis itself stands.
     """
@@ -768,11 +769,11 @@ def propose_gains(ident: identify.Identification, design_cfg: Mapping[str, Any],
         notes.append("no gains proposed: the identified model is not usable; run the relay "
                      "again with a larger amplitude")
         return []
-    cond = condition_of_identification("session", ident)
+    conds = condition_set_of_identification("session", ident)
     try:
         with np.errstate(all="ignore"), warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            res = design.design_proposals([cond], spec)
+            res = design.design_proposals(conds, spec)
     except Exception:  # noqa: BLE001 - report in our words, the analysis itself stands
         notes.append("no gains proposed: the design found no usable gains for the identified "
                      "model; check the warnings above and run the relay again")
