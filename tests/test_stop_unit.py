@@ -233,3 +233,29 @@ def test_signal_not_consumed_by_the_run_ends_the_verb_afterwards() -> None:
             os.kill(os.getpid(), signal.SIGTERM)
             time.sleep(0.2)
         raise AssertionError("not reached: the block's end raises")  # pragma: no cover
+
+
+@pytest.mark.timeout(30)
+def test_a_signal_while_the_main_thread_holds_the_locks_does_not_hang() -> None:
+    """A signal's handler runs between two bytecodes of the main thread, which may be inside
+    the link's write lock (sending an output), the recorder's or the run's own stop lock: the
+    handler takes none of them, and the stop request follows once they are free."""
+    from autotune.config import config_from_dict
+    from autotune.job.powered import PoweredRun, RunOptions
+
+    run = PoweredRun(config_from_dict({}, "t.toml"), RunOptions(port="loop://", keys=False))
+    run.link = Link("loop://", reply_timeout=0.1, retries=0, silence_timeout=None)
+    try:
+        with signals.routed(), run._signal_watcher(), signals.diverted(run._on_signal):
+            with run.link._write_lock, run._stop_lock, run.recording._lock:
+                os.kill(os.getpid(), signal.SIGINT)
+                deadline = time.monotonic() + 0.3
+                while time.monotonic() < deadline:  # the handler runs in here
+                    time.sleep(0.01)
+                assert not run.stop_requested  # the watcher waits for the locks
+            deadline = time.monotonic() + 5.0
+            while not run.stop_requested and time.monotonic() < deadline:
+                time.sleep(0.01)
+            assert run.stop_requested and run.link.stop_only
+    finally:
+        run.link.close()
