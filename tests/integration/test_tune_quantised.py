@@ -13,31 +13,12 @@ from pathlib import Path
 import pytest
 from scipy import optimize
 
+from autotune.recorder import read_session
+
 
 def test_constant_quantised_sensor(tmp_path: Path) -> None:
     q = 0.05  # PV units: about a tenth of the default target amplitude's swing
-    plant = tmp_path / "wheel.toml"
-    plant.write_text(f"""
-[plant]
-num = [0.25]
-den = [0.048, 0.68, 1.0]
-delay = 0.05
-[sensor]
-noise = 0.0
-resolution = {q}
-[device]
-period = 0.01
-name = "coarse-wheel"
-""")
-    cfg = tmp_path / "tune.toml"
-    cfg.write_text("[safety]\nwatchdog = 2.0\n")  # a busy machine must not trip the watchdog
-    out = tmp_path / "run"
-    proc = subprocess.run([sys.executable, "-m", "autotune", "tune",
-                           "--config", str(cfg), "--port", "sim", "--plant", str(plant),
-                           "--yes", "--speed", "10", "--no-step", "--out", str(out)],
-                          capture_output=True, text=True, timeout=240)
-    text = proc.stdout + proc.stderr
-    assert proc.returncode == 0, text[-3000:]
+    text, out = coarse_wheel_tune(tmp_path, q, "")
     for word in ("Warning", "overflow", "invalid value", "Traceback", "nan"):
         assert word not in text, word
     res = json.loads((out / "result.json").read_text())
@@ -71,32 +52,9 @@ def test_weak_direction_pulse_is_repeated_twice_as_large(tmp_path: Path) -> None
     response of the lag chain, within a count), between half and all of the threshold of a
     tenth of the 0.5 target amplitude (0.05: the sensor is constant at rest); the second
     pulse of 0.3 moves it about 0.07."""
-    plant = tmp_path / "wheel.toml"
-    plant.write_text("""
-[plant]
-num = [0.25]
-den = [0.048, 0.68, 1.0]
-delay = 0.05
-[sensor]
-noise = 0.0
-resolution = 0.01
-[device]
-period = 0.01
-name = "coarse-wheel"
-""")
-    cfg = tmp_path / "tune.toml"
-    cfg.write_text("[safety]\nwatchdog = 2.0\n[relay]\ntarget_amplitude = 0.5\n"
-                   "[prechecks]\npulse_size = 0.15\n")
-    out = tmp_path / "run"
-    proc = subprocess.run([sys.executable, "-m", "autotune", "tune",
-                           "--config", str(cfg), "--port", "sim", "--plant", str(plant),
-                           "--yes", "--speed", "10", "--no-step", "--out", str(out)],
-                          capture_output=True, text=True, timeout=240)
-    text = proc.stdout + proc.stderr
-    assert proc.returncode == 0, text[-3000:]
+    text, out = coarse_wheel_tune(tmp_path, 0.01, "[relay]\ntarget_amplitude = 0.5\n"
+                                  "[prechecks]\npulse_size = 0.15\n")
     assert "a pulse of +0.3 follows" in text, text[-3000:]
-    from autotune.recorder import read_session
-
     s = read_session(out / "session.jsonl")
     weak = [e for e in s.events if e.get("check") == "direction_weak"]
     assert len(weak) == 1
@@ -107,3 +65,32 @@ name = "coarse-wheel"
     direction = res["prechecks"]["direction"]
     assert direction["ok"] and direction["change"] > direction["threshold"]
     assert res["end_reason"] == "converged"
+
+
+def coarse_wheel_tune(tmp_path: Path, resolution: float, config: str) -> tuple[str, Path]:
+    """`autotune tune --no-step` on the cart wheel's plant behind a noise-free sensor quantised
+    to `resolution` (PV units), with `config` (TOML text) after a generous watchdog (a busy
+    machine must not trip it); returns (stdout + stderr, the output folder), exit 0 checked."""
+    plant = tmp_path / "wheel.toml"
+    plant.write_text(f"""
+[plant]
+num = [0.25]
+den = [0.048, 0.68, 1.0]
+delay = 0.05
+[sensor]
+noise = 0.0
+resolution = {resolution}
+[device]
+period = 0.01
+name = "coarse-wheel"
+""")
+    cfg = tmp_path / "tune.toml"
+    cfg.write_text("[safety]\nwatchdog = 2.0\n" + config)
+    out = tmp_path / "run"
+    proc = subprocess.run([sys.executable, "-m", "autotune", "tune",
+                           "--config", str(cfg), "--port", "sim", "--plant", str(plant),
+                           "--yes", "--speed", "10", "--no-step", "--out", str(out)],
+                          capture_output=True, text=True, timeout=240)
+    text = proc.stdout + proc.stderr
+    assert proc.returncode == 0, text[-3000:]
+    return text, out
