@@ -48,6 +48,21 @@ def test_rest_noise_drift_and_resolution() -> None:
     assert r.ok and r.message == ""
 
 
+def test_rest_noise_is_not_widened_by_spikes() -> None:
+    """One-sample spikes of 50 sigma on 1 % of the samples (a corrupt reading) leave the noise
+    at the sensor's own (its standard deviation, within sampling error) and the drift at the
+    line's; the plain standard deviation would be five times larger."""
+    rng = np.random.default_rng(3)
+    t = np.arange(1000) * DT
+    pv = 1.0 + 0.002 * t + rng.normal(0, 0.02, t.size)
+    hit = rng.random(t.size) < 0.01
+    pv[hit] += rng.choice([-1.0, 1.0], hit.sum())
+    r = assess_rest(t, pv, np.zeros(t.size))
+    assert np.std(pv) > 4 * 0.02
+    assert r.noise_std == pytest.approx(0.02, rel=0.1)
+    assert r.drift == pytest.approx(0.002, abs=0.003)
+
+
 def test_rest_coarse_resolution_sets_hysteresis() -> None:
     rng = np.random.default_rng(3)
     t = np.arange(500) * DT

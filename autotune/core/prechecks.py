@@ -142,13 +142,31 @@ def smallest_step(pv: ArrayLike) -> float:
     return float(d.min()) if d.size else 0.0
 
 
+OUTLIER_SIGMAS = 5.0  # residuals beyond this many robust sigmas are outliers (common
+#                      practice, no source)
+
+
+def _inliers(resid: np.ndarray) -> np.ndarray:
+    """Mask of the residuals within OUTLIER_SIGMAS robust standard deviations (1.4826 x the
+    median absolute deviation, which is the standard deviation for Gaussian noise). All are
+    kept when the MAD is zero (a quantised sensor resting on one level: its flicker is the
+    noise) or when fewer than 3 would remain."""
+    mad = float(np.median(np.abs(resid - np.median(resid))))
+    if not mad > 0:
+        return np.ones(resid.size, dtype=bool)
+    keep = np.abs(resid - np.median(resid)) <= OUTLIER_SIGMAS * 1.4826 * mad
+    return keep if int(keep.sum()) >= 3 else np.ones(resid.size, dtype=bool)
+
+
 def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
                 pv_window: float | None = None) -> RestReport:
     """Noise, drift and resolution of the PV while the output is held (at least 3 samples).
 
     The drift is the slope of a least-squares line through (t, pv); the noise is the standard
-    deviation of the residuals (ddof=2). With `pv_window` (PV units) the check fails when
-    6 x noise (a +/-3 sigma band) does not fit inside the window.
+    deviation of the residuals (ddof=2) once outliers are set aside (`_inliers`: one-sample
+    spikes of a corrupt reading are not sensor noise, and counting them would widen the relay
+    hysteresis and every noise-based threshold). With `pv_window` (PV units) the check fails
+    when 6 x noise (a +/-3 sigma band) does not fit inside the window.
     """
     ta, pa, oa = _arrays(t, pv, out)
     if ta.size < 3:
@@ -161,8 +179,11 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
         slope, noise = 0.0, 0.0
     elif span > 0:
         slope, intercept = np.polyfit(tc, pa, 1)
-        resid = pa - (slope * tc + intercept)
-        noise = float(np.sqrt(np.sum(resid**2) / max(ta.size - 2, 1)))
+        keep = _inliers(pa - (slope * tc + intercept))
+        if not np.all(keep):  # the line again without the outliers
+            slope, intercept = np.polyfit(tc[keep], pa[keep], 1)
+        resid = (pa - (slope * tc + intercept))[keep]
+        noise = float(np.sqrt(np.sum(resid**2) / max(resid.size - 2, 1)))
     else:
         slope, noise = 0.0, float(np.std(pa, ddof=1))
     res = smallest_step(pa)

@@ -27,9 +27,21 @@ REPO = Path(__file__).resolve().parents[2]
 
 
 def test_stuck_sensor_stops_with_no_response(tmp_path: Path) -> None:
-    outcome, tr, s = run_faulty(tmp_path, "stuck_after=6",
+    # The sensor freezes 10 s of device time after the handshake: normally during the relay,
+    # where the no-response detector must stop the run; on a machine so busy that the
+    # prechecks had not ended by then, the direction pulse meets the frozen sensor instead and
+    # stop the run (either way nothing runs on a dead sensor).
+    outcome, tr, s = run_faulty(tmp_path, "stuck_after=10",
                                 {"connection": {"loop": "host"},
-                                 "relay": {"max_cycles": 50, "min_cycles": 40}})
+                                 "relay": {"max_cycles": 60, "min_cycles": 50}})
+    moving = np.nonzero(np.diff(s.pv) != 0)[0]
+    frozen_from = s.t[moving[-1] + 1] if moving.size else s.t[0]
+    relay_ran = np.any(s.phase_mask("relay") & (s.t < frozen_from))
+    if not relay_ran:  # frozen during the rest or the pulse: the prechecks stop the run
+        assert outcome.reason.startswith("precheck:"), (outcome.reason, outcome.message)
+        assert outcome.stop_confirmed
+        assert_session_complete(s, outcome.reason)
+        return
     assert outcome.reason == "fault:no_response", (outcome.reason, outcome.message)
     assert outcome.exit_code == EXIT_FAILED
     assert outcome.stop_confirmed
