@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import shutil
 import subprocess
+from collections.abc import Mapping
 from pathlib import Path
 
 from autotune.simdevice import SimDevice, launch
@@ -18,6 +19,10 @@ from autotune.simdevice import SimDevice, launch
 BOARD_DIR = Path(__file__).resolve().parent.parent / "protocol" / "board"
 BUILD_DIR = BOARD_DIR / "build"
 BOARD_SIM = BUILD_DIR / "board-sim"
+MAX_AXES = 8
+"""Axes board-sim has room for (SIM_AXES in protocol/board/Makefile)."""
+AXIS_PLANT_KEYS = ("gain", "lag", "lag2", "delay", "deadband", "load", "noise", "integrating")
+"""Plant figures one axis may have of its own (board-sim --axis-plant)."""
 
 
 class BuildError(RuntimeError):
@@ -57,8 +62,20 @@ def board_sim_command(gain: float, lag: float, delay: float, *, lag2: float = 0.
                       integrating: bool = False, deadband: float = 0.0, load: float = 0.0,
                       noise: float = 0.0, resolution: float = 0.0, period: float = 0.01,
                       speed: float = 1.0, baud: int | None = None, watchdog: float = 0.25,
+                      axes: int = 1,
+                      axis_plants: Mapping[int, Mapping[str, float | bool]] | None = None,
                       extra: tuple[str, ...] = ()) -> list[str]:
-    """The board-sim command line for a plant K / ((T s + 1)(T2 s + 1)) [1/s] exp(-L s)."""
+    """The board-sim command line for a plant K / ((T s + 1)(T2 s + 1)) [1/s] exp(-L s).
+
+    ``axes`` (1..MAX_AXES) axes, each with its own copy of that plant; ``axis_plants`` maps an
+    axis (0-based, < axes) to the figures it has of its own, by the names of AXIS_PLANT_KEYS
+    (gain in PV units per output unit, or per second when integrating; lag, lag2 and delay in
+    s; deadband and load in output units; noise in PV units; integrating a bool). With the
+    defaults the command line is the single-axis one. ValueError for an axis or key out of
+    range.
+    """
+    if not 1 <= axes <= MAX_AXES:
+        raise ValueError(f"axes must be 1..{MAX_AXES}, got {axes}")
     cmd = [str(BOARD_SIM), "--pty", "--gain", repr(gain), "--lag", repr(lag), "--delay",
            repr(delay), "--lag2", repr(lag2), "--deadband", repr(deadband), "--load",
            repr(load), "--noise", repr(noise), "--resolution", repr(resolution), "--period",
@@ -67,6 +84,19 @@ def board_sim_command(gain: float, lag: float, delay: float, *, lag2: float = 0.
         cmd.append("--integrating")
     if baud is not None:
         cmd += ["--baud", str(baud)]
+    if axes != 1:
+        cmd += ["--axes", str(axes)]
+    for axis, figures in sorted((axis_plants or {}).items()):
+        if not 0 <= axis < axes:
+            raise ValueError(f"axis_plants: axis {axis} is not one of 0..{axes - 1}")
+        unknown = sorted(set(figures) - set(AXIS_PLANT_KEYS))
+        if unknown:
+            raise ValueError(f"axis_plants: unknown key(s) {', '.join(unknown)} (known: "
+                             f"{', '.join(AXIS_PLANT_KEYS)})")
+        if figures:
+            items = ",".join(f"{key}={int(val) if isinstance(val, bool) else repr(float(val))}"
+                             for key, val in figures.items())
+            cmd += ["--axis-plant", f"{axis}:{items}"]
     return cmd + list(extra)
 
 

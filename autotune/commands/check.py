@@ -182,7 +182,7 @@ def _check(link: Link, args: argparse.Namespace) -> int:
                                   ("store gains", info.has_store_gains)) if on]
     print(f"device      {info.device_name or '-'} (firmware {info.firmware or '-'}), "
           f"protocol {info.protocol_version}, boot id {info.boot_id:08x}")
-    print(f"            {info.axis_count} axis{'es' if info.axis_count != 1 else ''}, tick "
+    print(f"            {info.axis_count} {'axis' if info.axis_count == 1 else 'axes'}, tick "
           f"{info.tick_us / 1000:g} ms ({1e6 / info.tick_us:g} Hz), max output "
           f"{info.max_output:g}, offers: {', '.join(caps) or 'nothing'}")
     declared = f"{info.pv_resolution:g} PV units" if info.pv_resolution > 0 else "not declared"

@@ -272,6 +272,8 @@ int atb_init(atb_board *b, const atb_config *config, const atb_hooks *hooks)
     uint32_t id;
     for (i = 0; i < sizeof *b; i++)
         p[i] = 0u;
+    /* kept even when the config is refused: atb_tick() then writes zero to every axis */
+    b->hooks = hooks;
     if (config == NULL || hooks == NULL || hooks->read_pv == NULL ||
         hooks->write_output == NULL || hooks->micros == NULL || hooks->send == NULL ||
         config->tick_us == 0u || config->axis_count < 1u || config->axis_count > ATB_MAX_AXES ||
@@ -599,7 +601,10 @@ static void handle_frame(atb_board *b, uint8_t type, uint16_t seq, const uint8_t
 {
     uint8_t axis;
     atb_axis *a;
-    b->last_rx_us = b->hooks->micros(b->hooks->user); /* any good frame feeds the watchdog */
+    /* any good frame feeds the watchdog, a refused one too, except Stop (SPEC.md 3.4): a
+     * Stop never lengthens the time an output may stay on while the host is otherwise silent */
+    if (type != T_STOP)
+        b->last_rx_us = b->hooks->micros(b->hooks->user);
     /* checks in the order of SPEC.md: type, length, axis, finite values, own rules */
     if (type < T_HELLO || type > T_STORE_GAINS) {
         send_nak(b, type, seq, ATB_NAK_UNKNOWN_TYPE, (float)type);
@@ -832,8 +837,10 @@ void atb_tick(atb_board *b)
     uint8_t i, n;
     uint32_t now;
     if (b->config == NULL) {
+        /* an unusable config: every axis the board state has room for is held at zero */
         if (b->hooks != NULL && b->hooks->write_output != NULL)
-            (void)b->hooks->write_output(b->hooks->user, 0, 0.0f);
+            for (i = 0; i < ATB_MAX_AXES; i++)
+                (void)b->hooks->write_output(b->hooks->user, i, 0.0f);
         return;
     }
     n = b->config->axis_count;

@@ -48,7 +48,10 @@ extern "C" {
 
 /* ------------------------------------------------------------------ compile-time sizes */
 
-/** Number of axes the board state has room for (override with -DATB_MAX_AXES=n, 1..8). */
+/** Number of axes the board state has room for (override with -DATB_MAX_AXES=n, 1..8).
+ *  Every axis has its own limits, mode, fault latch and sample stream; the watchdog measures
+ *  the one host's silence against each moving axis's own watchdog_ms; Stop and ClearFault act
+ *  on every axis at once (SPEC.md 0x03, 0x04). */
 #ifndef ATB_MAX_AXES
 #define ATB_MAX_AXES 1
 #endif
@@ -219,7 +222,8 @@ typedef struct atb_board {
 /** Set up `b` for `config` and `hooks` (both must stay valid). All axes idle, no limits,
  *  streaming off, no fault. Returns 0, or -1 when the config is unusable (tick_us = 0,
  *  axis_count outside 1..ATB_MAX_AXES, max_output not > 0 or not finite, a required hook
- *  missing): the board then answers nothing and atb_tick() only writes zero outputs. */
+ *  missing): the board then answers nothing and atb_tick() only writes zero outputs, to
+ *  every axis 0 .. ATB_MAX_AXES - 1 (when write_output was given). */
 int atb_init(atb_board *b, const atb_config *config, const atb_hooks *hooks);
 
 /** Feed one received byte. A frame that completes is handled at once and its reply sent. */

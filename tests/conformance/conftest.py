@@ -31,9 +31,10 @@ BOARDS = ("mock", "board-sim")
 
 @pytest.fixture(scope="session")
 def c_build() -> None:
-    """Build board-sim, the spec vectors and the fuzz harness once (fails with the cause)."""
+    """Build board-sim, the spec vectors, the fuzz harness and the library with room for
+    several axes once (fails with the cause)."""
     try:
-        build("sim", "fuzz", "build/spec-vectors")
+        build("sim", "fuzz", "build/spec-vectors", "build/atboard-axes.o")
     except BuildError as exc:
         pytest.fail(f"the C code of protocol/board could not be built: {exc}", pytrace=False)
 

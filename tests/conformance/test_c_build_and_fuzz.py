@@ -32,3 +32,7 @@ def test_decoder_fuzz_without_sanitizer_reports(c_build) -> None:
     assert found, proc.stdout
     fed, good, crc, framing = map(int, found.groups())
     assert fed >= FUZZ_FRAMES and good > 0.3 * fed and crc > 0 and framing > 0
+    # the board under fuzz has two axes (-DATB_MAX_AXES=2): the per-axis checks ran
+    found = re.search(r"(\d+) axes, (\d+) non-zero outputs checked against the watchdog",
+                      proc.stdout)
+    assert found and int(found.group(1)) == 2 and int(found.group(2)) > 0, proc.stdout

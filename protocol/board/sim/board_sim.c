@@ -2,7 +2,11 @@
  * board-sim: the atboard library on a simulated plant, served on a pseudo-terminal.
  *
  *   board-sim --pty --gain K --lag T --delay L [options]   (see --help)
+ *   board-sim --pty --gain K --lag T --delay L --axes 2 --axis-plant 1:gain=3,lag=0.8
  *
+ * With --axes N the board offers N axes, each with its own plant (its own state, delay line
+ * and noise); every axis takes the plant of the plain options unless --axis-plant I:... gives
+ * axis I other figures.
  * The first stdout line is the pty path to open (nothing else goes to stdout); messages go to
  * stderr. Simulated time runs --speed times faster than the wall clock; every time on the wire
  * is device time, and the library's microsecond clock is simulated time too, so its watchdog
@@ -217,6 +221,11 @@ static void pty_receive(atb_board *b)
 
 /* ------------------------------------------------------------------ options */
 
+#define STR_(x) #x
+#define STR(x) STR_(x)
+#define AXES_TEXT STR(ATB_MAX_AXES)
+#define MAX_AXIS_PLANTS 32
+
 static void usage(FILE *f)
 {
     fputs(
@@ -245,8 +254,13 @@ static void usage(FILE *f)
         "  --max-output U    largest output limit accepted, also the actuator's saturation\n"
         "                    (default 100)\n"
         "  --watchdog S      watchdog when SetLimits sends 0, s (default 0.25)\n"
-        "  --axes N          axes, each with the same plant (default 1, at most "
-        "ATB_MAX_AXES)\n"
+        "  --axes N          axes, each with its own plant, by default all alike\n"
+        "                    (default 1, at most " AXES_TEXT ")\n"
+        "  --axis-plant I:KEY=V[,KEY=V...]\n"
+        "                    other plant figures for axis I (0-based, < N); KEY is gain,\n"
+        "                    lag, lag2, delay, deadband, load, noise or integrating (0/1);\n"
+        "                    the figures not named are those of the plain options;\n"
+        "                    repeat the option for more axes\n"
         "  --name TEXT       device name in the handshake (default board-sim)\n"
         "  --no-relay        do not offer the device relay\n"
         "  --no-pid          do not offer the device PID\n"
@@ -270,12 +284,84 @@ static int number(const char *opt, const char *text, double *out)
     return 0;
 }
 
+/* Apply "I:KEY=V,KEY=V" to the plants of `axes` axes; returns 0, or -1 after a message. */
+static int axis_plant(const char *spec, plant_params *pps, int axes)
+{
+    char buf[512], *item, *save = NULL, *colon, *end;
+    long axis;
+    snprintf(buf, sizeof buf, "%s", spec);
+    colon = strchr(buf, ':');
+    if (colon == NULL) {
+        fprintf(stderr, "board-sim: --axis-plant: expected I:KEY=VALUE[,...], got '%s'\n", spec);
+        return -1;
+    }
+    *colon = '\0';
+    errno = 0;
+    axis = strtol(buf, &end, 10);
+    if (errno || end == buf || *end != '\0' || axis < 0 || axis >= axes) {
+        fprintf(stderr, "board-sim: --axis-plant: axis '%s' is not one of 0..%d (see --axes)\n",
+                buf, axes - 1);
+        return -1;
+    }
+    for (item = strtok_r(colon + 1, ",", &save); item != NULL; item = strtok_r(NULL, ",", &save)) {
+        plant_params *pp = &pps[axis];
+        char *eq = strchr(item, '=');
+        double v, *target = NULL;
+        if (eq == NULL) {
+            fprintf(stderr, "board-sim: --axis-plant: expected KEY=VALUE, got '%s'\n", item);
+            return -1;
+        }
+        *eq = '\0';
+        if (number(item, eq + 1, &v) != 0)
+            return -1;
+        if (!strcmp(item, "gain")) target = &pp->gain;
+        else if (!strcmp(item, "lag")) target = &pp->lag1;
+        else if (!strcmp(item, "lag2")) target = &pp->lag2;
+        else if (!strcmp(item, "delay")) target = &pp->delay;
+        else if (!strcmp(item, "deadband")) target = &pp->deadband;
+        else if (!strcmp(item, "load")) target = &pp->load;
+        else if (!strcmp(item, "noise")) target = &pp->noise;
+        else if (!strcmp(item, "integrating")) {
+            if (v != 0.0 && v != 1.0) {
+                fprintf(stderr, "board-sim: --axis-plant: integrating is 0 or 1\n");
+                return -1;
+            }
+            pp->integrating = (int)v;
+            continue;
+        } else {
+            fprintf(stderr, "board-sim: --axis-plant: unknown key '%s' (gain, lag, lag2, delay, "
+                            "deadband, load, noise, integrating)\n", item);
+            return -1;
+        }
+        *target = v;
+    }
+    return 0;
+}
+
+/* The figures of one axis's plant in range? returns 0, or -1 after a message. */
+static int plant_ok(const plant_params *pp, int axis)
+{
+    if (pp->delay < 0.0 || pp->lag1 < 0.0 || pp->lag2 < 0.0 || pp->deadband < 0.0 ||
+        pp->noise < 0.0) {
+        fprintf(stderr, "board-sim: axis %d: times, dead zone and noise must be >= 0\n", axis);
+        return -1;
+    }
+    if (pp->lag1 == 0.0 && pp->lag2 == 0.0 && !pp->integrating) {
+        fprintf(stderr, "board-sim: axis %d: the plant needs a lag (--lag T > 0) or "
+                        "--integrating\n", axis);
+        return -1;
+    }
+    return 0;
+}
+
 int main(int argc, char **argv)
 {
     static atb_board board;
     static atb_hooks hooks;
     static atb_config config;
-    plant_params pp;
+    plant_params pp, pps[ATB_MAX_AXES];
+    const char *axis_plants[MAX_AXIS_PLANTS];
+    int n_axis_plants = 0;
     double period = 0.01, speed = 1.0, max_output = 100.0, watchdog = 0.25;
     double baud = 0.0, seed = 1.0, axes = 1.0;
     int use_pty = 0, have_gain = 0, have_lag = 0, have_delay = 0, i, relay = 1, pid = 1;
@@ -313,6 +399,18 @@ int main(int argc, char **argv)
                 return 2;
             }
             name = val;
+            i++;
+            continue;
+        } else if (!strcmp(a, "--axis-plant")) {
+            if (val == NULL) {
+                fprintf(stderr, "board-sim: --axis-plant needs a value\n");
+                return 2;
+            }
+            if (n_axis_plants == MAX_AXIS_PLANTS) {
+                fprintf(stderr, "board-sim: at most %d --axis-plant options\n", MAX_AXIS_PLANTS);
+                return 2;
+            }
+            axis_plants[n_axis_plants++] = val;
             i++;
             continue;
         }
@@ -364,10 +462,16 @@ int main(int argc, char **argv)
     S.axes = (int)axes;
     pp.period = period;
     pp.limit = max_output;
-    pp.seed = (uint64_t)seed;
+    for (i = 0; i < S.axes; i++)
+        pps[i] = pp;
+    for (i = 0; i < n_axis_plants; i++)
+        if (axis_plant(axis_plants[i], pps, S.axes) != 0)
+            return 2;
     for (i = 0; i < S.axes; i++) {
-        pp.seed = (uint64_t)seed * 7919u + (uint64_t)i;
-        if (plant_init(&S.pl[i], &pp) != 0) {
+        pps[i].seed = (uint64_t)seed * 7919u + (uint64_t)i;
+        if (plant_ok(&pps[i], i) != 0)
+            return 2;
+        if (plant_init(&S.pl[i], &pps[i]) != 0) {
             fprintf(stderr, "board-sim: bad plant parameters\n");
             return 2;
         }

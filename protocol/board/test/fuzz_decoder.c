@@ -17,7 +17,12 @@
  *     Stopped at the next tick), and nothing is answered to a bad frame;
  *   - every frame sent decodes (COBS, CRC), has a device-to-host type and its exact length;
  *   - every output written is finite, zero while the axis is idle or faulted, within
- *     +/-output_limit, and zero before limits are set.
+ *     +/-output_limit, and zero before limits are set;
+ *   - with several axes (built with -DATB_MAX_AXES=2): every tick reads and writes each axis
+ *     exactly once, in order; Sample and Fault frames name an existing axis; no axis has a
+ *     non-zero output once the host has been silent for that axis's watchdog period (every
+ *     good frame but Stop feeds it, SPEC.md 3.4); and when Stopped goes out, every axis's
+ *     output of that tick is zero (unless a motion request came after the Stop).
  */
 #include <math.h>
 #include <stdio.h>
@@ -37,6 +42,13 @@ static long immediate_replies, stopped_replies, samples, faults, sent_frames;
 static long last_reply_seq = -1;
 static long outputs_written, outputs_nonzero;
 static long mode_seen[4];
+/* per tick: reads and writes of each axis, the outputs written */
+static int tick_reads[AXES], tick_writes[AXES], next_axis_read, next_axis_write;
+static float tick_out[AXES];
+/* reference watchdog: clock at the last good frame other than Stop */
+static uint32_t last_feed_us;
+static int motion_after_stop;
+static long watchdog_checks;
 
 static uint64_t rnd(void)
 {
@@ -56,6 +68,9 @@ static int hook_read_pv(void *u, uint8_t axis, float *pv)
 {
     (void)u;
     CHECK(axis < AXES);
+    CHECK(in_tick && axis == next_axis_read);
+    next_axis_read++;
+    tick_reads[axis]++;
     switch (rnd_below(40)) {
     case 0: return 1; /* sensor failure */
     case 1: *pv = NAN; return 0;
@@ -72,6 +87,15 @@ static int hook_write_output(void *u, uint8_t axis, float out)
     (void)u;
     CHECK(axis < AXES);
     a = &board.axis[axis];
+    CHECK(in_tick);
+    if (tick_writes[axis] == 0) { /* a driver fault writes the same axis a second time, 0 */
+        CHECK(axis == next_axis_write);
+        next_axis_write++;
+    } else {
+        CHECK(tick_writes[axis] == 1 && out == 0.0f && a->fault == ATB_FAULT_DRIVER);
+    }
+    tick_writes[axis]++;
+    tick_out[axis] = out;
     CHECK(isfinite(out));
     if (!a->limits_set || a->fault || a->mode == ATB_MODE_IDLE)
         CHECK(out == 0.0f);
@@ -110,11 +134,16 @@ static void hook_send(void *u, const uint8_t *d, size_t n)
     sent_frames++;
     if (dec[0] == 0x90) {
         CHECK(in_tick);
+        CHECK(dec[3] < AXES); /* Sample.axis */
         samples++;
     } else if (dec[0] == 0x91) {
+        CHECK(dec[4] < AXES); /* Fault.axis */
         faults++;
     } else if (dec[0] == 0x85) {
         CHECK(in_tick); /* Stopped only from a tick */
+        if (!motion_after_stop)
+            for (i = 0; i < AXES; i++)
+                CHECK(tick_out[i] == 0.0f); /* Stop zeroes every axis */
         stopped_replies++;
     } else {
         CHECK(!in_tick); /* replies only while a frame is handled */
@@ -349,9 +378,12 @@ static void feed_byte(uint8_t byte)
     uint16_t seq = 0;
     size_t plen = 0;
     long before = immediate_replies;
+    uint32_t fed_before = board.last_rx_us;
     int good = ref_feed(byte, &type, &seq, &plen);
     last_reply_seq = -1;
     atb_rx_byte(&board, byte);
+    if (good && type == 0x03)
+        CHECK(board.last_rx_us == fed_before); /* a Stop does not feed the watchdog */
     CHECK(board.frames_good == (uint32_t)ref.good);
     CHECK(board.crc_errors == (uint32_t)ref.crc);
     CHECK(board.framing_errors == (uint32_t)ref.framing);
@@ -359,10 +391,15 @@ static void feed_byte(uint8_t byte)
         CHECK(immediate_replies == before); /* bad frames are dropped silently */
         return;
     }
+    if (type != 0x03)
+        last_feed_us = clock_us;
     if (type == 0x03 && plen == 0) { /* Stop: answered at the next tick */
         CHECK(immediate_replies == before);
         ref.stops_valid++;
+        motion_after_stop = 0;
     } else {
+        if (type == 0x08 || type == 0x09 || type == 0x0A)
+            motion_after_stop = 1;
         CHECK(immediate_replies == before + 1);
         CHECK(last_reply_seq == seq);
     }
@@ -371,9 +408,25 @@ static void feed_byte(uint8_t byte)
 static void tick(void)
 {
     clock_us += 1000u + (rnd_below(100) == 0 ? rnd_below(400000) : 0u);
+    int i;
+    for (i = 0; i < AXES; i++) {
+        tick_reads[i] = 0;
+        tick_writes[i] = 0;
+        tick_out[i] = 0.0f;
+    }
+    next_axis_read = 0;
+    next_axis_write = 0;
     in_tick = 1;
     atb_tick(&board);
     in_tick = 0;
+    for (i = 0; i < AXES; i++) {
+        CHECK(tick_reads[i] == 1 && tick_writes[i] >= 1);
+        /* the watchdog holds every axis at zero once the host has been silent long enough */
+        if (tick_out[i] != 0.0f) {
+            CHECK((uint32_t)(clock_us - last_feed_us) < board.axis[i].watchdog_us);
+            watchdog_checks++;
+        }
+    }
 }
 
 int main(int argc, char **argv)
@@ -393,6 +446,20 @@ int main(int argc, char **argv)
             seed = (unsigned long long)atoll(argv[i + 1]);
     }
     rng_state = seed * 0x9E3779B97F4A7C15ull + 1u;
+    {
+        /* a refused config: nothing is answered, and a tick holds every axis at zero */
+        static const atb_config bad = {"fuzz", "fz", 1000u, 0u, 100.0f, 0.01f, 250u,
+                                       ATB_CAP_ALL, 0u};
+        CHECK(atb_init(&board, &bad, &hooks) == -1);
+        atb_rx_bytes(&board, (const uint8_t *)"\x02\x01\x01\x02\x01\x03\x6c\x88", 9u);
+        CHECK(immediate_replies == 0);
+        in_tick = 1;
+        atb_tick(&board);
+        in_tick = 0;
+        for (i = 0; i < AXES; i++)
+            CHECK(tick_writes[i] == 1 && tick_out[i] == 0.0f && tick_reads[i] == 0);
+        CHECK(sent_frames == 0);
+    }
     CHECK(atb_init(&board, &cfg, &hooks) == 0);
     while (fed < frames) {
         uint32_t kind = rnd_below(100), t;
@@ -447,9 +514,9 @@ int main(int argc, char **argv)
     printf("fuzz: %ld frames fed (seed %llu): %ld good, %ld CRC errors, %ld framing errors "
            "(library counters equal the reference); %ld replies, %ld Stopped, %ld samples, "
            "%ld faults; %ld outputs written, %ld non-zero (idle %ld, host %ld, relay %ld, "
-           "pid %ld ticks)\n",
+           "pid %ld ticks); %d axes, %ld non-zero outputs checked against the watchdog\n",
            fed, seed, ref.good, ref.crc, ref.framing, immediate_replies,
            stopped_replies, samples, faults, outputs_written, outputs_nonzero, mode_seen[0],
-           mode_seen[1], mode_seen[2], mode_seen[3]);
+           mode_seen[1], mode_seen[2], mode_seen[3], AXES, watchdog_checks);
     return 0;
 }

@@ -1,9 +1,12 @@
 /* libfuzzer_board.c - libFuzzer entry: the input bytes go to the receiver, a tick after each
- * delimiter. Build with `make libfuzzer` (clang); optional, not part of the tests. */
+ * delimiter, on a board of two axes. Build with `make libfuzzer` (clang); optional, not part
+ * of the tests. */
 #include <stddef.h>
 #include <stdint.h>
 
 #include "../atboard.h"
+
+#define AXES (ATB_MAX_AXES < 2 ? ATB_MAX_AXES : 2) /* built with -DATB_MAX_AXES=2 */
 
 static float last_limit;
 static atb_board board;
@@ -25,7 +28,7 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size);
 int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
 {
     static const atb_hooks hooks = {NULL, read_pv, write_output, micros, send, NULL};
-    static const atb_config cfg = {"lf", "lf", 1000u, 1u, 100.0f, 0.0f, 250u, ATB_CAP_ALL, 1u};
+    static const atb_config cfg = {"lf", "lf", 1000u, AXES, 100.0f, 0.0f, 250u, ATB_CAP_ALL, 1u};
     size_t i;
     atb_init(&board, &cfg, &hooks);
     for (i = 0; i < size; i++) {
