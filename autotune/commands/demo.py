@@ -3,24 +3,35 @@
 Starts the simulated board (autotune.simdevice: `python -m mock_device` on a pseudo-terminal) in
 the background and runs start screen, relay, proposals, confirmation step and accept against it,
 exactly as against a real board on a serial port. `--yes` runs it unattended.
+
+`--plant drive-base` runs a plan (autotune.job.plan): the two wheel loops of a two-wheel drive
+base, one after the other on one connection, each loop's files under OUT/<loop name>/, then the
+matched-loop report (autotune.commands.matched) in summary.json and summary.txt beside them.
 """
 
 from __future__ import annotations
 
 import argparse
+import dataclasses
+import json
 import sys
 from pathlib import Path
 
+from autotune.commands.matched import matched_report
 from autotune.commands.options import add_view_options, default_out_dir, terminal_for
-from autotune.config import Config, config_from_dict, load_config, with_overrides
-from autotune.errors import UserError
+from autotune.config import Config, LoopConfig, config_from_dict, load_config, with_overrides
+from autotune.errors import EXIT_OK, UserError
+from autotune.job.job import JobOutcome
+from autotune.job.plan import PlanOutcome, run_plan
+from autotune.job.powered import Connection
 from autotune.job.requests import BoardRequest, JobRequest
+from autotune.recorder import write_atomic, write_result
 from autotune.simdevice import SIM
 from autotune.ui.app import run_job
 
 HELP = "run the whole tuning job against the built-in simulated board (no hardware needed)"
 
-PLANTS = ("cart-wheel", "mast-pan")
+PLANTS = ("cart-wheel", "mast-pan", "drive-base")
 
 # Demo settings per scenario (invented demo data): limits and relay targets that suit each plant.
 # cart-wheel: wheel speed in rad/s, output in % duty; mast-pan: pan angle in degrees, % duty.
@@ -45,6 +56,22 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "design.step_size": 12.0,
         "step.duration": 20.0,
     },
+    # drive-base: two wheel-speed loops in rad/s, output in % duty (each wheel much like the
+    # cart's); the limits hold for both wheels. The second wheel's analysis follows a whole
+    # loop's run: a longer watchdog than the others' leaves a busy machine room at --speed
+    "drive-base": {
+        "safety.watchdog": 2.0,
+        "safety.output_limit": 40.0,
+        "safety.pv_window": 6.0,
+        "relay.target_amplitude": 0.4,
+        "design.step_size": 2.5,
+    },
+}
+
+# The plan of a scenario with several loops: [[loop]] tables as in a config file.
+DEMO_PLANS: dict[str, list[dict[str, object]]] = {
+    "drive-base": [{"name": "left", "axis": 0, "role": "matched"},
+                   {"name": "right", "axis": 1, "role": "matched"}],
 }
 
 
@@ -60,8 +87,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "accepted and written."
     )
     p.add_argument("--plant", choices=PLANTS, default="cart-wheel",
-                   help="simulated scenario: a cart's wheel-speed loop or a camera mast's "
-                        "pan-angle loop (default: cart-wheel)")
+                   help="simulated scenario: a cart's wheel-speed loop, a camera mast's "
+                        "pan-angle loop, or the two wheel loops of a drive base, tuned in "
+                        "turn and compared (default: cart-wheel)")
     p.add_argument("--yes", action="store_true",
                    help="run unattended: no questions, default proposal, accept a passing step")
     p.add_argument("--out", metavar="DIR",
@@ -79,10 +107,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def build_config(args: argparse.Namespace) -> Config:
     """The demo's config: the scenario's settings, then the config file, then the options."""
+    plan = {"loop": DEMO_PLANS[args.plant]} if args.plant in DEMO_PLANS else {}
     if args.config:
         cfg = load_config(args.config)
+        if plan and not cfg.plan:  # the file's settings on the scenario's plan
+            cfg = dataclasses.replace(cfg, plan=config_from_dict(plan, "<demo>").plan)
     else:
-        cfg = with_overrides(config_from_dict({}, "<demo>"), dict(DEMO_CONFIG[args.plant]),
+        cfg = with_overrides(config_from_dict(plan, "<demo>"), dict(DEMO_CONFIG[args.plant]),
                              origin=f"{args.plant} demo scenario")
     return with_overrides(cfg, {"connection.plant": args.plant,
                                 "connection.speed": args.speed,
@@ -98,7 +129,41 @@ def run(args: argparse.Namespace) -> int:
     # mock_device` process on a pty) in the background and ends it with the job
     req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None, args.seed),
                      out_dir=out, verb="demo", yes=args.yes)
+    if cfg.plan:
+        return _run_plan(args, req)
     outcome = run_job(req, term=terminal_for(args))
     if outcome.exit_code != 0:
         print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
     return outcome.exit_code
+
+
+def _run_plan(args: argparse.Namespace, req: JobRequest) -> int:
+    """The plan, each loop on the terminal as a one-loop demo; then the matched-loop report."""
+
+    def run_loop(r: JobRequest, conn: Connection, loop: LoopConfig) -> JobOutcome:
+        return run_job(r, term=terminal_for(args), connection=conn)
+
+    outcome = run_plan(req, run_loop, say=print)
+    if outcome.exit_code == EXIT_OK:
+        _matched(outcome)
+    if outcome.summary_path is not None:
+        print(f"summary: {outcome.summary_path}")
+    if outcome.exit_code != EXIT_OK:
+        print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
+    return outcome.exit_code
+
+
+def _matched(outcome: PlanOutcome) -> None:
+    """The matched loops' report into summary.json and summary.txt, and on the screen."""
+    runs = [r for r in outcome.loops if r.loop.role == "matched" and r.outcome is not None
+            and r.outcome.session_path is not None]
+    if len(runs) < 2 or outcome.summary_path is None:
+        return
+    report, lines = matched_report([r.loop.name for r in runs],
+                                   [str(r.outcome.session_path) for r in runs if r.outcome])
+    summary = json.loads(outcome.summary_path.read_text(encoding="utf-8"))
+    summary["matched"] = report
+    write_result(outcome.summary_path, summary)
+    write_atomic(outcome.summary_path.with_suffix(".txt"), "\n".join(lines) + "\n")
+    for line in lines:
+        print(line)

@@ -23,9 +23,8 @@ from typing import Any
 from autotune.config import LoopConfig, check_against_device
 from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
 from autotune.gainsfile import GainsFileError, read_gains_file
-from autotune.job.job import JobOutcome, TuningJob
+from autotune.job.job import JobOutcome, Quiet, TuningJob
 from autotune.job.limits import load_limits, start_samples
-from autotune.job.operator import Operator
 from autotune.job.powered import Connection, open_connection
 from autotune.job.requests import JobRequest
 from autotune.job.terms import RunOptions
@@ -90,11 +89,22 @@ def _preload_limits(conn: Connection, request: JobRequest, runs: list[LoopRun],
             f"{run.limits['pv_high']:g}, watchdog {run.limits['watchdog_ms']} ms)")
 
 
-def run_plan(request: JobRequest, operator_for: Callable[[LoopConfig], Operator], *,
+RunLoop = Callable[[JobRequest, Connection, LoopConfig], JobOutcome]
+"""Runs one loop's job: its request (configuration, folder), the plan's open connection and
+its [[loop]] table in, how the job ended out (the front end's way of running a TuningJob with
+``connection=``; `quiet_loop` for nobody to ask)."""
+
+
+def quiet_loop(request: JobRequest, connection: Connection, loop: LoopConfig) -> JobOutcome:
+    """A RunLoop with nobody to ask (tests, scripts: the request says --yes)."""
+    return TuningJob(request, Quiet(), connection=connection).run()
+
+
+def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
              say: Callable[[str], None] = lambda _line: None) -> PlanOutcome:
-    """Run the plan of `request.cfg` (see the module docstring). `operator_for(loop)` gives
-    the operator each loop's job talks to; `say` prints the plan's own lines. Never leaves a
-    motor powered; the connection is closed on every path out."""
+    """Run the plan of `request.cfg` (see the module docstring); `run_loop` runs each loop's
+    job (see RunLoop); `say` prints the plan's own lines. Never leaves a motor powered; the
+    connection is closed on every path out."""
     cfg = request.cfg
     if not cfg.plan:
         raise UserError("the configuration holds no [[loop]] plan", exit_code=EXIT_USAGE)
@@ -122,7 +132,7 @@ def run_plan(request: JobRequest, operator_for: Callable[[LoopConfig], Operator]
             say(f"loop {run.loop.name} (axis {run.loop.axis}, {run.loop.role})")
             loop_req = replace(request, cfg=cfg.for_loop(run.loop), out_dir=run.out_dir,
                                gains_file=None)
-            run.outcome = TuningJob(loop_req, operator_for(run.loop), connection=conn).run()
+            run.outcome = run_loop(loop_req, conn, run.loop)
             if run.outcome.exit_code != EXIT_OK:
                 outcome.exit_code = run.outcome.exit_code
                 outcome.reason = run.outcome.reason

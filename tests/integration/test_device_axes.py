@@ -56,10 +56,10 @@ def test_two_wheels_on_one_connection(mock_device, open_link):
     for side in (left, right):
         steps = {round((b.t - a.t) / TICK) for a, b in zip(side, side[1:], strict=False)}
         assert steps == {1}
-    # steady speeds K (u - deadband), the scenario's invented figures: 0.30 (30 - 1) = 8.7 and
-    # 0.285 (30 - 2) = 7.98 rad/s (analytic static gain of a dead zone then K/(...) plant)
-    assert left[-1].pv == pytest.approx(0.30 * 29.0, abs=0.15)
-    assert right[-1].pv == pytest.approx(0.285 * 28.0, abs=0.15)
+    # steady speeds K (u - deadband), the scenario's invented figures: 0.30 (30 - 0.5) = 8.85
+    # and 0.285 (30 - 1) = 8.27 rad/s (analytic static gain of a dead zone then K/(...) plant)
+    assert left[-1].pv == pytest.approx(0.30 * 29.5, abs=0.15)
+    assert right[-1].pv == pytest.approx(0.285 * 29.0, abs=0.15)
 
     # one Stop, no axis: both wheels zero from the same device tick on
     assert link.stop() is True

@@ -17,7 +17,7 @@ from scipy.optimize import brentq
 from autotune.config import config_from_dict
 from autotune.core.progress import Phase
 from autotune.errors import EXIT_ABORTED, EXIT_OK
-from autotune.job.job import Quiet
+from autotune.job.job import Quiet, TuningJob
 from autotune.job.plan import run_plan
 from autotune.job.requests import BoardRequest, JobRequest
 from autotune.recorder import read_session
@@ -55,7 +55,7 @@ def test_drive_base_plan_tunes_both_wheels_on_one_connection(tmp_path: Path) -> 
     req = JobRequest(cfg=plan_config(), board=BoardRequest("sim", "drive-base", 4.0, None, 1),
                      out_dir=out, verb="demo", yes=True)
     lines: list[str] = []
-    res = run_plan(req, lambda loop: Quiet(), say=lines.append)
+    res = run_plan(req, say=lines.append)
     assert res.exit_code == EXIT_OK, res.message
     # both axes' limits were loaded and read back before the first loop began
     first_loop = lines.index("loop left (axis 0, matched)")
@@ -108,7 +108,8 @@ def test_abort_in_the_first_loop_stops_within_two_ticks_and_ends_the_plan(tmp_pa
     req = JobRequest(cfg=plan_config(), board=BoardRequest("sim", "drive-base", 1.0, None, 2),
                      out_dir=out, verb="demo", yes=True)
     ops = {"left": AbortDuringRelay(), "right": Quiet()}
-    res = run_plan(req, lambda loop: ops[loop.name])
+    res = run_plan(req, lambda r, conn, loop: TuningJob(r, ops[loop.name],
+                                                        connection=conn).run())
     assert ops["left"].pressed
     assert res.exit_code == EXIT_ABORTED and res.reason == "aborted"
     s = read_session(out / "left" / "session.jsonl")
