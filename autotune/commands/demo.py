@@ -13,19 +13,14 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import json
 import sys
 from pathlib import Path
 
-from autotune.commands.matched import matched_report
+from autotune.commands.matched import run_plan_verb
 from autotune.commands.options import add_view_options, default_out_dir, terminal_for
-from autotune.config import Config, LoopConfig, config_from_dict, load_config, with_overrides
-from autotune.errors import EXIT_OK, UserError
-from autotune.job.job import JobOutcome
-from autotune.job.plan import PlanOutcome, run_plan
-from autotune.job.powered import Connection
+from autotune.config import Config, config_from_dict, load_config, with_overrides
+from autotune.errors import UserError
 from autotune.job.requests import BoardRequest, JobRequest
-from autotune.recorder import write_atomic, write_result
 from autotune.simdevice import SIM
 from autotune.ui.app import run_job
 
@@ -130,40 +125,9 @@ def run(args: argparse.Namespace) -> int:
     req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None, args.seed),
                      out_dir=out, verb="demo", yes=args.yes)
     if cfg.plan:
-        return _run_plan(args, req)
+        return run_plan_verb(args, req)
     outcome = run_job(req, term=terminal_for(args))
     if outcome.exit_code != 0:
         print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
     return outcome.exit_code
 
-
-def _run_plan(args: argparse.Namespace, req: JobRequest) -> int:
-    """The plan, each loop on the terminal as a one-loop demo; then the matched-loop report."""
-
-    def run_loop(r: JobRequest, conn: Connection, loop: LoopConfig) -> JobOutcome:
-        return run_job(r, term=terminal_for(args), connection=conn)
-
-    outcome = run_plan(req, run_loop, say=print)
-    if outcome.exit_code == EXIT_OK:
-        _matched(outcome)
-    if outcome.summary_path is not None:
-        print(f"summary: {outcome.summary_path}")
-    if outcome.exit_code != EXIT_OK:
-        print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
-    return outcome.exit_code
-
-
-def _matched(outcome: PlanOutcome) -> None:
-    """The matched loops' report into summary.json and summary.txt, and on the screen."""
-    runs = [r for r in outcome.loops if r.loop.role == "matched" and r.outcome is not None
-            and r.outcome.session_path is not None]
-    if len(runs) < 2 or outcome.summary_path is None:
-        return
-    report, lines = matched_report([r.loop.name for r in runs],
-                                   [str(r.outcome.session_path) for r in runs if r.outcome])
-    summary = json.loads(outcome.summary_path.read_text(encoding="utf-8"))
-    summary["matched"] = report
-    write_result(outcome.summary_path, summary)
-    write_atomic(outcome.summary_path.with_suffix(".txt"), "\n".join(lines) + "\n")
-    for line in lines:
-        print(line)

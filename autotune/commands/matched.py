@@ -1,4 +1,5 @@
-"""Matched loops of a plan (the two wheels of a drive base): what was identified on each, side
+"""Plans on the terminal (`tune` and `demo` with a [[loop]] plan) and the matched loops of a plan
+(the two wheels of a drive base): what was identified on each, side
 by side, and one design for all of them, with the choice between one common set of gains and
 each loop's own. The work is the offline one of `autotune compare` and `autotune analyze S S...`
 (autotune.commands.sessions: the same session reading, comparison and joint design); only the
@@ -7,12 +8,16 @@ loops here sit on different axes, by design.
 
 from __future__ import annotations
 
+import argparse
 import dataclasses
+import json
 import math
+import sys
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from autotune.commands.options import terminal_for
 from autotune.commands.sessions import (
     comparison_json,
     comparison_lines,
@@ -20,8 +25,16 @@ from autotune.commands.sessions import (
     load_session,
     spec_of,
 )
+from autotune.config import LoopConfig
 from autotune.core import design
 from autotune.core.conditions import compare_figures, loop_mismatch
+from autotune.errors import EXIT_OK
+from autotune.job.job import JobOutcome
+from autotune.job.plan import PlanOutcome, run_plan
+from autotune.job.powered import Connection
+from autotune.job.requests import JobRequest
+from autotune.recorder import write_atomic, write_result
+from autotune.ui.app import run_job
 
 RISE_MATCH = 0.05
 """Predicted rise times within this fraction of each other make two closed loops alike (a
@@ -117,3 +130,36 @@ def matched_report(names: Sequence[str], paths: Sequence[str | Path]
     report.update(choice=choice, reason=reason)
     lines.append(f"choice: {choice}: {reason}")
     return report, lines
+
+
+def run_plan_verb(args: argparse.Namespace, req: JobRequest) -> int:
+    """A verb's plan (`tune`, `demo`): each loop on the terminal as that verb runs one loop,
+    then the matched loops' report into summary.json and summary.txt; the exit code."""
+
+    def run_loop(r: JobRequest, conn: Connection, loop: LoopConfig) -> JobOutcome:
+        return run_job(r, term=terminal_for(args), connection=conn)
+
+    outcome = run_plan(req, run_loop, say=print)
+    if outcome.exit_code == EXIT_OK:
+        _matched(outcome)
+    if outcome.summary_path is not None:
+        print(f"summary: {outcome.summary_path}")
+    if outcome.exit_code != EXIT_OK:
+        print(f"autotune {req.verb}: {outcome.message or outcome.reason}", file=sys.stderr)
+    return outcome.exit_code
+
+
+def _matched(outcome: PlanOutcome) -> None:
+    """The matched loops' report into summary.json and summary.txt, and on the screen."""
+    runs = [r for r in outcome.loops if r.loop.role == "matched" and r.outcome is not None
+            and r.outcome.session_path is not None]
+    if len(runs) < 2 or outcome.summary_path is None:
+        return
+    report, lines = matched_report([r.loop.name for r in runs],
+                                   [str(r.outcome.session_path) for r in runs if r.outcome])
+    summary = json.loads(outcome.summary_path.read_text(encoding="utf-8"))
+    summary["matched"] = report
+    write_result(outcome.summary_path, summary)
+    write_atomic(outcome.summary_path.with_suffix(".txt"), "\n".join(lines) + "\n")
+    for line in lines:
+        print(line)

@@ -50,3 +50,41 @@ def test_unattended_drive_base_demo_writes_every_loop_and_the_summary(tmp_path: 
     text = (out / "summary.txt").read_text()
     assert "matched loops: left, right" in text and "choice:" in text
     assert f"summary: {out / 'summary.json'}" in proc.stdout
+
+
+PLAN = """
+[safety]
+watchdog = 2.0      # device time: room for a busy test machine at --speed
+output_limit = 40.0
+pv_window = 6.0
+[relay]
+target_amplitude = 0.4
+[[loop]]
+name = "left"
+axis = 0
+[[loop]]
+name = "right"
+axis = 1
+"""
+
+
+def test_tune_runs_the_plan_of_its_config(tmp_path: Path) -> None:
+    cfg = tmp_path / "base.toml"
+    cfg.write_text(PLAN)
+    out = tmp_path / "tune"
+    cmd = [sys.executable, "-m", "autotune", "tune", "--config", str(cfg), "--port", "sim",
+           "--plant", "drive-base", "--yes", "--no-step", "--view", "lines", "--speed", "4",
+           "--out", str(out)]
+    proc = subprocess.run(cmd, cwd=str(ROOT), capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-2000:]
+    for loop in ("left", "right"):
+        result = json.loads((out / loop / "result.json").read_text())
+        assert result["end_reason"] == "converged"
+    summary = json.loads((out / "summary.json").read_text())
+    assert [lp["reason"] for lp in summary["loops"]] == ["converged", "converged"]
+    assert "matched" not in summary  # single loops: no comparison
+    # --axis names one loop: with a plan it is refused, before anything is connected
+    bad = subprocess.run([*cmd[:-2], "--out", str(tmp_path / "bad"), "--axis", "1"],
+                         cwd=str(ROOT), capture_output=True, text=True, timeout=60)
+    assert bad.returncode == 2
+    assert "--axis 1" in bad.stderr and "[[loop]] plan" in bad.stderr
