@@ -12,7 +12,14 @@ dataclasses). An unknown section or key, a wrong type or an impossible combinati
 [design]       # what the proposed gains should achieve
 [step]         # the confirmation step test
 [spec]         # what the confirmation step must show to pass
+[[loop]]       # a plan: several loops of one board, tuned in order on one connection
 ```
+
+A plan lists one ``[[loop]]`` table a loop (see LoopConfig): its ``name`` (the folder of its
+files under the output folder), its ``axis`` on the board, its ``role`` and, in a
+``[loop.limits]`` table, the keys of ``[safety]`` that differ for it. Everything else comes
+from the sections above, shared by every loop. Without a plan the job tunes the one loop
+``connection.axis`` names, as before.
 
 Units: seconds, PV units, output units. Keys whose default is `None` ("automatic") are simply
 left out of the file; TOML has no null.
@@ -33,6 +40,13 @@ from autotune.core.relay import RelayPlan
 from autotune.errors import ConfigError
 
 LoopMode = Literal["auto", "host", "device"]
+LoopRole = Literal["single", "matched"]
+"""A loop of a plan: "single" is tuned on its own; "matched" loops (two wheels of a drive base,
+say) are tuned in turn and then compared, for gains that make them respond alike."""
+MAX_LOOPS = 8
+"""Most loops a plan may hold (a drive base and a few more; the board's axes bound it too)."""
+LOOP_NAME_CHARS = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_-")
+"""A loop name is a folder name: letters, digits, '_' and '-' only."""
 
 WIRE_FLOAT_MAX = 3.4028234663852886e38
 """Largest float32, what the wire carries: a setting beyond it cannot be sent to the board."""
@@ -242,8 +256,33 @@ class SpecConfig:
 
 
 @dataclass(frozen=True)
+class LoopConfig:
+    """One loop of a plan (a ``[[loop]]`` table).
+
+    name: the loop's name, also the folder of its files under the output folder (letters,
+        digits, '_' and '-'; unique in the plan, whatever the letter case).
+    axis: the loop's axis on the board (0-based; one loop an axis).
+    role: "single" (tuned on its own) or "matched" (tuned, then compared with the plan's other
+        matched loops; at least two).
+    sign: +1 when a positive output makes this loop's PV rise, -1 when it makes it fall;
+        None = connection.sign.
+    limits: the ``[safety]`` keys set for this loop (``[loop.limits]``), as (key, value) pairs;
+        every other limit is the ``[safety]`` one.
+    """
+
+    name: str
+    axis: int
+    role: LoopRole = "single"
+    sign: int | None = None
+    limits: tuple[tuple[str, Any], ...] = ()
+
+
+@dataclass(frozen=True)
 class Config:
-    """The whole configuration; `source` is the file it came from (or "<defaults>")."""
+    """The whole configuration; `source` is the file it came from (or "<defaults>").
+
+    `plan` holds the ``[[loop]]`` tables (empty: one loop, `connection.axis`); `for_loop`
+    gives the configuration one loop of it runs with."""
 
     connection: ConnectionConfig = field(default_factory=ConnectionConfig)
     safety: SafetyConfig = field(default_factory=SafetyConfig)
@@ -255,6 +294,15 @@ class Config:
     source: str = "<defaults>"
     overrides: tuple[tuple[str, str], ...] = ()
     """("section.key", where it was set) for each value set after the file (with_overrides)."""
+    plan: tuple[LoopConfig, ...] = ()
+
+    def for_loop(self, loop: LoopConfig) -> Config:
+        """The configuration of one loop of the plan: its axis, its sign, its limits over the
+        shared ``[safety]``, no plan (the single-loop job runs it as it stands)."""
+        connection = replace(self.connection, axis=loop.axis,
+                             sign=self.connection.sign if loop.sign is None else loop.sign)
+        safety = replace(self.safety, **dict(loop.limits))
+        return replace(self, connection=connection, safety=safety, plan=())
 
     def source_of(self, key: str) -> str:
         """Where the value of `key` ("section.key") came from: the override's origin (e.g.
@@ -279,6 +327,10 @@ class Config:
         """Plain dict of all sections (for the session header)."""
         d = dataclasses.asdict(self)
         d.pop("overrides", None)
+        if not self.plan:
+            d.pop("plan", None)  # a one-loop run's header is as it always was
+        else:
+            d["plan"] = [dict(loop, limits=dict(loop["limits"])) for loop in d["plan"]]
         return d
 
 
@@ -368,16 +420,94 @@ def config_from_dict(data: dict[str, Any], path: str = "<dict>") -> Config:
     if not isinstance(data, dict):
         raise ConfigError(path, None, "expected a table of sections")
     parts: dict[str, Any] = {}
+    plan: tuple[LoopConfig, ...] = ()
     for name, value in data.items():
+        if name == "loop":
+            plan = _plan_from_list(value, path)
+            continue
         if name not in SECTIONS:
-            known = ", ".join(f"[{s}]" for s in SECTIONS)
+            known = ", ".join([*(f"[{s}]" for s in SECTIONS), "[[loop]]"])
             raise ConfigError(path, name, f"unknown section (known sections: {known})")
         if not isinstance(value, dict):
             raise ConfigError(path, name, f"expected a [{name}] table, got {value!r}")
         parts[name] = _section_from_dict(SECTIONS[name], value, path, name)
-    cfg = Config(**parts, source=path)
+    if plan and "axis" in data.get("connection", {}):
+        raise ConfigError(path, "connection.axis",
+                          "not used with a [[loop]] plan: give each loop its own axis")
+    cfg = Config(**parts, source=path, plan=plan)
     validate(cfg)
     return cfg
+
+
+_LOOP_KEYS = {f.name for f in fields(LoopConfig)}
+
+
+def _plan_from_list(value: Any, path: str) -> tuple[LoopConfig, ...]:
+    """The ``[[loop]]`` tables as LoopConfigs (types and keys checked; ranges in validate)."""
+    if not isinstance(value, list) or not all(isinstance(t, dict) for t in value):
+        raise ConfigError(path, "loop", "expected [[loop]] tables (an array of tables)")
+    plan = []
+    for i, table in enumerate(value):
+        where = f"loop[{i}]"
+        for key in table:
+            if key not in _LOOP_KEYS:
+                known = ", ".join(sorted(_LOOP_KEYS))
+                raise ConfigError(path, f"{where}.{key}", f"unknown key (known keys: {known})")
+        for key in ("name", "axis"):
+            if key not in table:
+                raise ConfigError(path, f"{where}.{key}", "must be given")
+        hints = typing.get_type_hints(LoopConfig)
+        kwargs: dict[str, Any] = {}
+        for key in ("name", "axis", "role", "sign"):
+            if key in table:
+                try:
+                    kwargs[key] = _coerce(hints[key], table[key])
+                except TypeError:
+                    raise ConfigError(path, f"{where}.{key}",
+                                      f"expected {_type_name(hints[key])}, got {table[key]!r}"
+                                      ) from None
+        limits = table.get("limits", {})
+        if not isinstance(limits, dict):
+            raise ConfigError(path, f"{where}.limits",
+                              f"expected a [loop.limits] table, got {limits!r}")
+        checked = _section_from_dict(SafetyConfig, limits, path, f"{where}.limits")
+        kwargs["limits"] = tuple((k, getattr(checked, k)) for k in limits)
+        plan.append(LoopConfig(**kwargs))
+    return tuple(plan)
+
+
+def _validate_plan(cfg: Config, src: str) -> None:
+    """The plan's own rules, then every loop's configuration as the job will run it."""
+    plan = cfg.plan
+    if not plan:
+        return
+    if len(plan) > MAX_LOOPS:
+        raise ConfigError(src, "loop", f"at most {MAX_LOOPS} loops, got {len(plan)}")
+    names: dict[str, int] = {}
+    axes: dict[int, str] = {}
+    for i, loop in enumerate(plan):
+        where = f"loop[{i}]"
+        if not loop.name or not set(loop.name) <= LOOP_NAME_CHARS:
+            raise ConfigError(src, f"{where}.name", f"{loop.name!r}: letters, digits, '_' and "
+                              "'-' only (it names the loop's folder)")
+        if loop.name.lower() in names:
+            raise ConfigError(src, f"{where}.name", f"{loop.name!r} is taken by "
+                              f"loop[{names[loop.name.lower()]}]")
+        names[loop.name.lower()] = i
+        if not 0 <= loop.axis <= 255:
+            raise ConfigError(src, f"{where}.axis", f"must be 0..255, got {loop.axis}")
+        if loop.axis in axes:
+            raise ConfigError(src, f"{where}.axis", f"axis {loop.axis} is already loop "
+                              f"{axes[loop.axis]!r}'s: one loop an axis")
+        axes[loop.axis] = loop.name
+        if loop.sign is not None and loop.sign not in (1, -1):
+            raise ConfigError(src, f"{where}.sign", f"must be +1 or -1, got {loop.sign}")
+    if sum(loop.role == "matched" for loop in plan) == 1:
+        (i,) = (i for i, loop in enumerate(plan) if loop.role == "matched")
+        raise ConfigError(src, f"loop[{i}].role",
+                          "a matched loop needs another matched loop to be compared with")
+    for loop in plan:
+        validate(cfg.for_loop(loop), source=f"{src}, loop {loop.name!r}")
 
 
 def load_config(path: str | Path | None) -> Config:
@@ -574,6 +704,7 @@ def validate(cfg: Config, source: str | None = None) -> None:
                           f"{st.size:g} exceeds safety.pv_window {s.pv_window:g}")
     if s.max_sample_gap < 0.0:  # pragma: no cover (caught above)
         raise ConfigError(src, "safety.max_sample_gap", "must be > 0")
+    _validate_plan(cfg, src)
 
 
 def check_against_device(cfg: Config, max_output: float, axis_count: int,

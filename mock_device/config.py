@@ -24,8 +24,15 @@ A plant file has these tables (every table and key is optional; defaults shown):
     seed = 0             # seed of the sensor noise generator (--seed overrides)
     [faults]             # same keys as --faults (see mock_device.faults)
 
+A board with several axes lists them as ``[[axis]]`` tables instead of the top-level
+``[plant]``, ``[actuator]`` and ``[sensor]`` (which are then an error); each holds its own
+``[axis.plant]``, ``[axis.actuator]`` and ``[axis.sensor]`` (same keys and defaults as above)
+and an optional ``name`` (free text, for the reader and the logs). Axes are numbered from 0 in
+the order written; ``[device]`` and ``[faults]`` are shared (the device faults act on axis 0).
+A file without ``[[axis]]`` is a one-axis board, exactly as before.
+
 Unknown tables or keys and wrong types raise MockConfigError naming the file and the key.
-Built-in scenarios (``cart-wheel``, ``cart-wheel-loaded``, ``mast-pan``) live in
+Built-in scenarios (``cart-wheel``, ``cart-wheel-loaded``, ``mast-pan``, ``drive-base``) live in
 mock_device/scenarios/.
 """
 
@@ -42,6 +49,7 @@ from mock_device.faults import FaultSpec, FaultSpecError, fault_spec_from_mappin
 
 __all__ = [
     "ActuatorConfig",
+    "AxisConfig",
     "DeviceConfig",
     "MockConfig",
     "MockConfigError",
@@ -52,7 +60,9 @@ __all__ = [
     "parse_config",
 ]
 
-SCENARIOS = ("cart-wheel", "cart-wheel-loaded", "mast-pan")
+SCENARIOS = ("cart-wheel", "cart-wheel-loaded", "mast-pan", "drive-base")
+MAX_AXES = 8
+"""Most axes a plant file may declare (a drive base or a small arm; the wire allows 255)."""
 COEFFICIENT_MAX = 1e12
 """Largest |coefficient| of num and den once both are divided by den[0]: far beyond any motor
 loop (time constants down to a microsecond), well inside what the simulation keeps finite."""
@@ -111,8 +121,21 @@ class DeviceConfig:
 
 
 @dataclass(frozen=True)
+class AxisConfig:
+    """One axis of the board: its plant, actuator and sensor; ``name`` is free text."""
+
+    plant: PlantConfig = field(default_factory=PlantConfig)
+    actuator: ActuatorConfig = field(default_factory=ActuatorConfig)
+    sensor: SensorConfig = field(default_factory=SensorConfig)
+    name: str = ""
+
+
+@dataclass(frozen=True)
 class MockConfig:
-    """Everything the mock device needs; ``source`` names the file or scenario."""
+    """Everything the mock device needs; ``source`` names the file or scenario.
+
+    ``plant``, ``actuator`` and ``sensor`` are axis 0's; ``axes`` lists every axis of a board
+    with several (empty for a one-axis board: use ``axis_configs``)."""
 
     plant: PlantConfig = field(default_factory=PlantConfig)
     actuator: ActuatorConfig = field(default_factory=ActuatorConfig)
@@ -120,6 +143,12 @@ class MockConfig:
     device: DeviceConfig = field(default_factory=DeviceConfig)
     faults: FaultSpec = field(default_factory=FaultSpec)
     source: str = "<defaults>"
+    axes: tuple[AxisConfig, ...] = ()
+
+    @property
+    def axis_configs(self) -> tuple[AxisConfig, ...]:
+        """Every axis, numbered from 0 (one for a file without ``[[axis]]``)."""
+        return self.axes or (AxisConfig(self.plant, self.actuator, self.sensor),)
 
 
 # key -> kind: "float", "floats", "str", "bool", "int"
@@ -176,10 +205,63 @@ def _typed(source: str, key: str, kind: str, value: Any) -> Any:
     raise AssertionError(kind)
 
 
+_AXIS_TABLES = ("plant", "actuator", "sensor")
+
+
+def _section(source: str, table: str, content: Any, prefix: str = "") -> dict[str, Any]:
+    """Typed values of one table; ``prefix`` names the enclosing ``[[axis]]`` in errors."""
+    if not isinstance(content, dict):
+        raise MockConfigError(source, f"{prefix}[{table}]", "expected a table")
+    schema = _SCHEMA[table]
+    values: dict[str, Any] = {}
+    for key, value in content.items():
+        name = f"{prefix}[{table}] {key}"
+        if key not in schema:
+            raise MockConfigError(
+                source, name, f"unknown key (known in [{table}]: {', '.join(schema)})"
+            )
+        values[key] = _typed(source, name, schema[key], value)
+    return values
+
+
+def _axes(source: str, content: Any) -> tuple[AxisConfig, ...]:
+    """The ``[[axis]]`` tables: each its plant, actuator, sensor and name."""
+    if not isinstance(content, list) or not all(isinstance(a, dict) for a in content):
+        raise MockConfigError(source, "[[axis]]", "expected an array of tables ([[axis]])")
+    if not 1 <= len(content) <= MAX_AXES:
+        raise MockConfigError(source, "[[axis]]",
+                              f"between 1 and {MAX_AXES} axes, got {len(content)}")
+    axes = []
+    for i, table in enumerate(content):
+        prefix = f"[[axis]] {i} "
+        parts: dict[str, Any] = {}
+        name = ""
+        for key, value in table.items():
+            if key == "name":
+                name = _typed(source, f"{prefix}name", "str", value)
+            elif key in _AXIS_TABLES:
+                parts[key] = _section(source, key, value, prefix)
+            else:
+                raise MockConfigError(
+                    source, f"{prefix}{key}",
+                    f"unknown key (known in [[axis]]: name, {', '.join(_AXIS_TABLES)})",
+                )
+        axis = AxisConfig(
+            PlantConfig(**parts.get("plant", {})),
+            ActuatorConfig(**parts.get("actuator", {})),
+            SensorConfig(**parts.get("sensor", {})),
+            name,
+        )
+        _check_axis(source, axis.plant, axis.actuator, axis.sensor, prefix)
+        axes.append(axis)
+    return tuple(axes)
+
+
 def parse_config(data: dict[str, Any], source: str = "<plant file>") -> MockConfig:
     """Validate a parsed TOML document and build a MockConfig (errors name source and key)."""
     sections: dict[str, dict[str, Any]] = {}
     faults = FaultSpec()
+    axes: tuple[AxisConfig, ...] = ()
     for table, content in data.items():
         if table == "faults":
             if not isinstance(content, dict):
@@ -189,40 +271,47 @@ def parse_config(data: dict[str, Any], source: str = "<plant file>") -> MockConf
             except FaultSpecError as exc:
                 raise MockConfigError(source, f"[faults] {exc.key}", exc.problem) from exc
             continue
+        if table == "axis":
+            axes = _axes(source, content)
+            continue
         if table not in _SCHEMA:
             raise MockConfigError(
-                source, f"[{table}]", f"unknown table (known: {', '.join([*_SCHEMA, 'faults'])})"
+                source, f"[{table}]",
+                f"unknown table (known: {', '.join([*_SCHEMA, 'faults', '[axis]'])})",
             )
-        if not isinstance(content, dict):
-            raise MockConfigError(source, f"[{table}]", "expected a table")
-        schema = _SCHEMA[table]
-        values: dict[str, Any] = {}
-        for key, value in content.items():
-            name = f"[{table}] {key}"
-            if key not in schema:
+        sections[table] = _section(source, table, content)
+    if axes:
+        for table in _AXIS_TABLES:
+            if table in sections:
                 raise MockConfigError(
-                    source, name, f"unknown key (known in [{table}]: {', '.join(schema)})"
+                    source, f"[{table}]",
+                    "not allowed beside [[axis]]: give each axis its own [axis.{table}]",
                 )
-            values[key] = _typed(source, name, schema[key], value)
-        sections[table] = values
 
+    device = DeviceConfig(**sections.get("device", {}))
+    if axes:
+        _check_device(source, device)
+        first = axes[0]
+        return MockConfig(first.plant, first.actuator, first.sensor, device, faults, source, axes)
     plant = PlantConfig(**sections.get("plant", {}))
     actuator = ActuatorConfig(**sections.get("actuator", {}))
     sensor = SensorConfig(**sections.get("sensor", {}))
-    device = DeviceConfig(**sections.get("device", {}))
-    _check(source, plant, actuator, sensor, device)
+    _check_axis(source, plant, actuator, sensor)
+    _check_device(source, device)
     return MockConfig(plant, actuator, sensor, device, faults, source)
 
 
-def _check(
+def _check_axis(
     source: str,
     plant: PlantConfig,
     actuator: ActuatorConfig,
     sensor: SensorConfig,
-    device: DeviceConfig,
+    prefix: str = "",
 ) -> None:
+    """Ranges of one axis's plant, actuator and sensor; ``prefix`` names its ``[[axis]]``."""
+
     def err(key: str, problem: str) -> MockConfigError:
-        return MockConfigError(source, key, problem)
+        return MockConfigError(source, prefix + key, problem)
 
     if plant.den[0] == 0.0:
         raise err("[plant] den", "leading coefficient must not be 0")
@@ -246,14 +335,24 @@ def _check(
     if not 0.0 <= actuator.deadband < actuator.limit:
         raise err("[actuator] deadband", f"must be in [0, limit), got {actuator.deadband}")
     for key, value in (("[plant] load", plant.load), ("[actuator] limit", actuator.limit),
-                       ("[sensor] offset", sensor.offset), ("[sensor] noise", sensor.noise),
-                       ("[device] max_output", device.max_output)):
+                       ("[sensor] offset", sensor.offset), ("[sensor] noise", sensor.noise)):
         if not abs(value) <= 1e9:
             raise err(key, f"{value:g} is out of range: at most 1e9 in magnitude")
     if sensor.noise < 0.0:
         raise err("[sensor] noise", f"must be >= 0, got {sensor.noise}")
     if sensor.resolution < 0.0:
         raise err("[sensor] resolution", f"must be >= 0, got {sensor.resolution}")
+
+
+def _check_device(source: str, device: DeviceConfig) -> None:
+    """Ranges of the shared ``[device]`` table."""
+
+    def err(key: str, problem: str) -> MockConfigError:
+        return MockConfigError(source, key, problem)
+
+    if not abs(device.max_output) <= 1e9:
+        raise err("[device] max_output",
+                  f"{device.max_output:g} is out of range: at most 1e9 in magnitude")
     if not 1e-4 <= device.period <= 1.0:
         raise err("[device] period", f"must be in [0.0001, 1] s, got {device.period}")
     if device.max_output <= 0.0:

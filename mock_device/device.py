@@ -1,4 +1,4 @@
-"""Device state machine of the mock controller board (one axis). No I/O, no clock.
+"""Device state machine of the mock controller board (one or several axes). No I/O, no clock.
 
 The I/O loop (mock_device.server) feeds it received frames with ``handle_frame`` between ticks
 and calls ``tick`` once per device period; both return the frames to send as ``Outgoing``
@@ -18,6 +18,15 @@ Tick k at device time t_k = k * tick_us (microseconds):
   5. streaming and k % decimation == 0 -> Sample(t_k, pv_k, applied u_k, setpoint, flags);
      then the Fault frame of a fault latched in this tick (after the Sample that shows it);
      Stop requests received before this tick are answered with Stopped now (output is zero).
+
+Several axes (a plant file with ``[[axis]]`` tables): each axis has its own plant, mode,
+limits, relay, PID, offset, stream and fault latch (as in protocol/board's C library), and
+the tick runs steps 1-4 on every axis in axis order, then 5 for each axis (its Sample, then
+the Fault frame naming it). Shared: one watchdog clock (any good frame from the host but Stop
+feeds it, so a silent host trips every non-idle axis, each after its own watchdog period),
+Stop, which idles every axis, and ClearFault, which clears every axis's latch. A fault on one
+axis leaves the others moving: the host stops them all when it sees the Fault frame. The
+injected device faults (sensor, actuator sign) act on axis 0.
 """
 
 from __future__ import annotations
@@ -31,7 +40,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from mock_device.config import MockConfig
+from mock_device.config import AxisConfig, MockConfig
 from mock_device.faults import DeviceFaults, FaultSpec
 from mock_device.plant import Actuator, LtiPlant, Sensor
 from protocol import messages as m
@@ -39,7 +48,6 @@ from protocol.errors import BadLength, DecodeError, UnknownType
 from protocol.framing import RawFrame
 
 FIRMWARE = "mock-1.0"
-AXIS_COUNT = 1
 
 
 class Outgoing(NamedTuple):
@@ -90,13 +98,139 @@ def _default_boot_id() -> int:
     return secrets.randbits(32) or 1
 
 
+class Axis:
+    """One axis of the board: its physics (kept over a reset) and its volatile state.
+
+    Args:
+        config: the axis's plant, actuator and sensor.
+        period: device tick, s (the plant's integration step is a tenth of it).
+        rng: sensor noise generator.
+    """
+
+    def __init__(self, config: AxisConfig, period: float, rng: np.random.Generator) -> None:
+        self.config = config
+        self.period = period
+        self.plant = LtiPlant(
+            config.plant.num, config.plant.den, config.plant.delay, max_step=period / 10
+        )
+        self.actuator = Actuator(config.actuator.limit, config.actuator.deadband)
+        self.sensor = Sensor(
+            config.sensor.noise, config.sensor.resolution, config.sensor.offset, rng
+        )
+        self.load = config.plant.load
+        self.power_up()
+
+    def power_up(self) -> None:
+        """Volatile state after power-up or reset (the plant's physics carries on)."""
+        self.mode = m.Mode.IDLE
+        self.limits: AxisLimits | None = None
+        self.host_output = 0.0
+        self.offset = 0.0
+        self.relay_centre = 0.0
+        self.relay_bias = 0.0
+        self.relay_high_amp = 0.0
+        self.relay_low_amp = 0.0
+        self.relay_hyst = 0.0
+        self.relay_high = False
+        self.pid: PidState | None = None
+        self.streaming = False
+        self.decimation = 1
+        self.applied = 0.0  # drive applied over the current tick interval, output units
+        self.clamped = False
+        self._pv_hist: list[float] = []  # last three raw PV values (for the rate check)
+        self._pvf_prev: float | None = None
+        self.pv = self.sensor.offset  # last PV read
+        self.stored_gains: tuple[float, float, float] | None = None
+        self.fault: m.FaultCode | None = None
+        self.fault_value = 0.0
+        self.fault_us = 0
+
+    def go_idle(self) -> None:
+        """IDLE, output 0 (the offset is kept: only Stop clears it)."""
+        self.mode = m.Mode.IDLE
+        self.host_output = 0.0
+        self.pid = None
+
+    def read(self, pv: float) -> float:
+        """Take this tick's PV (PV units); returns the rate of its median-of-3 filter, PV/s."""
+        self.pv = pv
+        self._pv_hist.append(pv)
+        if len(self._pv_hist) > 3:
+            del self._pv_hist[0]
+        pvf = sorted(self._pv_hist)[len(self._pv_hist) // 2] if len(self._pv_hist) != 2 else (
+            0.5 * (self._pv_hist[0] + self._pv_hist[1])
+        )
+        rate = 0.0 if self._pvf_prev is None else (pvf - self._pvf_prev) / self.period
+        self._pvf_prev = pvf
+        return rate
+
+    def mode_output(self, pv: float) -> float:
+        """This tick's output of the current non-idle mode, offset included (output units)."""
+        assert self.limits is not None
+        u = 0.0
+        if self.mode == m.Mode.HOST:
+            u = self.host_output
+        elif self.mode == m.Mode.RELAY:
+            u = self._relay_output(pv)
+        elif self.mode == m.Mode.PID:
+            u = self._pid_output(pv, self.limits.output_limit)
+        return u + self.offset
+
+    def _relay_output(self, pv: float) -> float:
+        e = self.relay_centre - pv
+        if e > self.relay_hyst:
+            self.relay_high = True
+        elif e < -self.relay_hyst:
+            self.relay_high = False
+        if self.relay_high:
+            return self.relay_bias + self.relay_high_amp
+        return self.relay_bias - self.relay_low_amp
+
+    def _pid_output(self, pv: float, limit: float) -> float:
+        p = self.pid
+        assert p is not None
+        h = self.period
+        if p.pv_prev is None:
+            p.pv_prev = pv
+        e = p.setpoint - pv
+        # derivative on measurement through a first-order filter, backward difference
+        if p.kd != 0.0:
+            tf = abs(p.kd / (p.kp * p.n)) if p.kp != 0.0 else 0.0
+            p.deriv = (tf * p.deriv - p.kd * (pv - p.pv_prev)) / (tf + h)
+        else:
+            p.deriv = 0.0
+        p.pv_prev = pv
+        v = p.bias + p.kp * (p.b * p.setpoint - pv) + p.integral + p.deriv
+        # Saturation is decided on the total drive (PID output plus the load-test offset), not by
+        # comparing floats after adding and removing the offset, which rarely round-trips exactly.
+        high = v + self.offset > limit
+        low = v + self.offset < -limit
+        u = (limit - self.offset) if high else (-limit - self.offset) if low else v
+        if p.tt > 0.0:
+            # back-calculation: the integral is pulled towards the saturated output
+            p.integral += p.ki * h * e + (h / p.tt) * (u - v)
+        elif not (high or low) or (high and p.ki * e < 0.0) or (low and p.ki * e > 0.0):
+            # clamping: integrate unless saturated and the error drives further into it
+            p.integral += p.ki * h * e
+        return v
+
+    def setpoint(self) -> float:
+        """The Sample's setpoint field: PID setpoint, relay centre, else 0 (PV units)."""
+        if self.mode == m.Mode.PID and self.pid is not None:
+            return self.pid.setpoint
+        if self.mode == m.Mode.RELAY:
+            return self.relay_centre
+        return 0.0
+
+
 class Device:
-    """Simulated controller board with one axis.
+    """Simulated controller board with one axis, or several (``[[axis]]`` in the plant file).
 
     Args:
         config: plant file contents.
         faults: device- and link-level fault spec (the config's [faults] merged with --faults).
-        seed: sensor noise seed (None: the config's [device] seed).
+        seed: sensor noise seed (None: the config's [device] seed); axis i > 0 draws its noise
+            from the seed sequence (seed, i).
         boot_id: callable giving a fresh boot id (random by default).
         log: called with one-line messages meant for the device's stderr.
     """
@@ -123,15 +257,14 @@ class Device:
         self.fault_spec = faults if faults is not None else config.faults
         self.faults = DeviceFaults(self.fault_spec)
         self._no_ack = self.fault_spec.no_ack_types
-        rng = np.random.default_rng(dev.seed if seed is None else seed)
-        self.plant = LtiPlant(
-            config.plant.num, config.plant.den, config.plant.delay, max_step=dev.period / 10
-        )
-        self.actuator = Actuator(config.actuator.limit, config.actuator.deadband)
-        self.sensor = Sensor(
-            config.sensor.noise, config.sensor.resolution, config.sensor.offset, rng
-        )
-        self.load = config.plant.load
+        base = dev.seed if seed is None else seed
+        self.axes = [
+            Axis(axis, dev.period, np.random.default_rng(base if i == 0 else [base, i]))
+            for i, axis in enumerate(config.axis_configs)
+        ]
+        resolutions = {a.sensor.resolution for a in self.axes}
+        # one declared quantisation step for the board; axes that differ declare none (0)
+        self.pv_resolution = resolutions.pop() if len(resolutions) == 1 else 0.0
         self.capabilities = m.CAP_HOST_LOOP | m.CAP_STORE_GAINS
         if dev.relay:
             self.capabilities |= m.CAP_DEVICE_RELAY
@@ -149,31 +282,61 @@ class Device:
         self.boot_id = self._new_boot_id() & 0xFFFFFFFF
         self.k = 0  # device tick counter; device time = k * tick_us
         self._seq = 0
-        self.mode = m.Mode.IDLE
-        self.limits: AxisLimits | None = None
-        self.host_output = 0.0
-        self.offset = 0.0
-        self.relay_centre = 0.0
-        self.relay_bias = 0.0
-        self.relay_high_amp = 0.0
-        self.relay_low_amp = 0.0
-        self.relay_hyst = 0.0
-        self.relay_high = False
-        self.pid: PidState | None = None
-        self.fault: m.FaultCode | None = None
-        self.fault_value = 0.0
-        self.fault_us = 0
-        self.streaming = False
-        self.decimation = 1
-        self.applied = 0.0  # drive applied over the current tick interval, output units
-        self.clamped = False
+        for axis in self.axes:
+            axis.power_up()
         self.last_rx_k = 0
         self._pending_stops: list[int] = []
-        self._pv_hist: list[float] = []  # last three raw PV values (for the rate check)
-        self._pvf_prev: float | None = None
-        self.pv = self.sensor.offset  # last PV read
-        self.stored_gains: tuple[float, float, float] | None = None
         self.last_received: int | None = None
+
+    @property
+    def axis_count(self) -> int:
+        """Number of axes (the handshake's axis_count)."""
+        return len(self.axes)
+
+    # Axis 0's state, for the one-axis board and the tests written for it.
+    @property
+    def mode(self) -> m.Mode:
+        return self.axes[0].mode
+
+    @property
+    def limits(self) -> AxisLimits | None:
+        return self.axes[0].limits
+
+    @property
+    def pv(self) -> float:
+        return self.axes[0].pv
+
+    @property
+    def applied(self) -> float:
+        return self.axes[0].applied
+
+    @property
+    def streaming(self) -> bool:
+        return self.axes[0].streaming
+
+    @property
+    def fault(self) -> m.FaultCode | None:
+        return self.axes[0].fault
+
+    @property
+    def fault_us(self) -> int:
+        return self.axes[0].fault_us
+
+    @property
+    def offset(self) -> float:
+        return self.axes[0].offset
+
+    @property
+    def plant(self) -> LtiPlant:
+        return self.axes[0].plant
+
+    @property
+    def sensor(self) -> Sensor:
+        return self.axes[0].sensor
+
+    @property
+    def stored_gains(self) -> tuple[float, float, float] | None:
+        return self.axes[0].stored_gains
 
     @property
     def device_us(self) -> int:
@@ -198,24 +361,27 @@ class Device:
     def _unsolicited(self, msg: m.Message) -> Outgoing:
         return Outgoing(msg, self._next_seq())
 
-    def _fault_msg(self) -> m.Fault:
-        assert self.fault is not None
-        return m.Fault(int(self.fault), 0, float(self.fault_value), self.fault_us)
+    def _fault_msg(self, axis: int) -> m.Fault:
+        a = self.axes[axis]
+        assert a.fault is not None
+        return m.Fault(int(a.fault), axis, float(a.fault_value), a.fault_us)
 
-    @property
-    def watchdog_armed(self) -> bool:
-        return self.limits is not None and self.mode != m.Mode.IDLE
+    def watchdog_armed(self, axis: int = 0) -> bool:
+        """True while the axis is in a non-idle mode with its limits set."""
+        a = self.axes[axis]
+        return a.limits is not None and a.mode != m.Mode.IDLE
 
-    def flags(self) -> int:
-        """Sample.flags for the current state."""
+    def flags(self, axis: int = 0) -> int:
+        """Sample.flags of an axis for the current state."""
+        a = self.axes[axis]
         return m.make_flags(
-            self.mode,
-            streaming=self.streaming,
-            fault=self.fault is not None,
-            clamped=self.clamped,
-            watchdog_armed=self.watchdog_armed,
-            limits_set=self.limits is not None,
-            relay_high=self.mode == m.Mode.RELAY and self.relay_high,
+            a.mode,
+            streaming=a.streaming,
+            fault=a.fault is not None,
+            clamped=a.clamped,
+            watchdog_armed=self.watchdog_armed(axis),
+            limits_set=a.limits is not None,
+            relay_high=a.mode == m.Mode.RELAY and a.relay_high,
         )
 
     # ------------------------------------------------------------ frames
@@ -275,56 +441,60 @@ class Device:
                 self.config.device.name,
                 FIRMWARE,
                 self.boot_id,
-                AXIS_COUNT,
+                self.axis_count,
                 self.tick_us,
                 self.capabilities,
                 float(self.config.device.max_output),
-                float(self.config.sensor.resolution),  # the quantisation step it declares
+                float(self.pv_resolution),  # the quantisation step it declares
             )
             if version == 1:
                 reply = _HelloReplyV1(*dataclasses.astuple(reply))
             out = [Outgoing(reply, seq)]
-            if self.fault is not None:  # a latched fault is reported again on reconnect
-                out.append(self._unsolicited(self._fault_msg()))
+            for i, a in enumerate(self.axes):  # a latched fault is reported again on reconnect
+                if a.fault is not None:
+                    out.append(self._unsolicited(self._fault_msg(i)))
             return out
         if isinstance(msg, m.Ping):
             return [Outgoing(m.Pong(msg.nonce, msg.host_us, self.device_us, self.boot_id), seq)]
         if isinstance(msg, m.Stop):
             if self.fault_spec.ignore_stop:
                 return []
-            self._go_idle()
-            self.offset = 0.0  # Stop also clears the offset
+            for a in self.axes:  # Stop has no axis: it idles every one
+                a.go_idle()
+                a.offset = 0.0  # Stop also clears the offset
             self._pending_stops.append(seq)
             return []
         if isinstance(msg, m.ClearFault):
-            if self.fault is not None:
-                self._log(f"fault {self.fault.name} cleared by the host")
-            self.fault = None
+            for i, a in enumerate(self.axes):  # ClearFault has no axis: it clears every one
+                if a.fault is not None:
+                    self._log(f"fault {a.fault.name} cleared by the host{self._on(i)}")
+                a.fault = None
             return ack()
         if isinstance(msg, m.StoreGains):
-            if msg.axis >= AXIS_COUNT:
-                return nak(m.NakCode.BAD_AXIS, AXIS_COUNT)
+            if msg.axis >= self.axis_count:
+                return nak(m.NakCode.BAD_AXIS, self.axis_count)
             if not msg.is_finite():
                 return nak(m.NakCode.OUT_OF_RANGE, math.nan)
-            self.stored_gains = (msg.kp, msg.ki, msg.kd)
+            self.axes[msg.axis].stored_gains = (msg.kp, msg.ki, msg.kd)
             return ack()
 
         axis = getattr(msg, "axis", None)
         if axis is None:  # pragma: no cover - every remaining request has an axis
             return nak(m.NakCode.UNKNOWN_TYPE, t)
-        if axis >= AXIS_COUNT:
-            return nak(m.NakCode.BAD_AXIS, AXIS_COUNT)
+        if axis >= self.axis_count:
+            return nak(m.NakCode.BAD_AXIS, self.axis_count)
         if not msg.is_finite():
             return nak(m.NakCode.OUT_OF_RANGE, math.nan)
+        a = self.axes[axis]
 
         if isinstance(msg, m.SetLimits):
-            return self._set_limits(msg, ack, nak)
+            return self._set_limits(a, msg, ack, nak)
         if isinstance(msg, m.GetLimits):
-            lim = self.limits
+            lim = a.limits
             if lim is None:
                 return nak(m.NakCode.LIMITS_NOT_SET)
             reply = m.Limits(
-                0, lim.output_limit, lim.pv_low, lim.pv_high, lim.pv_rate_limit, lim.watchdog_ms
+                axis, lim.output_limit, lim.pv_low, lim.pv_high, lim.pv_rate_limit, lim.watchdog_ms
             )
             return [Outgoing(reply, seq)]
         if isinstance(msg, m.Stream):
@@ -332,89 +502,90 @@ class Device:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.enable)
             if msg.enable and msg.decimation < 1:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.decimation)
-            self.streaming = bool(msg.enable)
+            a.streaming = bool(msg.enable)
             if msg.enable:
-                self.decimation = msg.decimation
+                a.decimation = msg.decimation
             return ack()
         if isinstance(msg, m.SetOutput):
-            if msg.output == 0.0 and (self.limits is None or self.fault is not None):
-                self.host_output = 0.0  # a zero command is always harmless
+            if msg.output == 0.0 and (a.limits is None or a.fault is not None):
+                a.host_output = 0.0  # a zero command is always harmless
                 return ack()
-            refusal = self._motion_refusal()
+            refusal = self._motion_refusal(a)
             if refusal is not None:
                 return nak(*refusal)
-            assert self.limits is not None
-            if abs(msg.output) > self.limits.output_limit:
+            assert a.limits is not None
+            if abs(msg.output) > a.limits.output_limit:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.output)
-            self.host_output = float(msg.output)
-            if self.mode != m.Mode.HOST:
-                self._enter(m.Mode.HOST)
+            a.host_output = float(msg.output)
+            if a.mode != m.Mode.HOST:
+                self._enter(a, m.Mode.HOST)
             return ack()
         if isinstance(msg, m.StartRelay):
             if not self.capabilities & m.CAP_DEVICE_RELAY:
-                return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
-            refusal = self._motion_refusal()
+                return nak(m.NakCode.NOT_ALLOWED, int(a.mode))
+            refusal = self._motion_refusal(a)
             if refusal is not None:
                 return nak(*refusal)
-            assert self.limits is not None
+            assert a.limits is not None
             if msg.amp_high < 0.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.amp_high)
             if msg.amp_low < 0.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.amp_low)
             if msg.hysteresis < 0.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.hysteresis)
-            lim = self.limits.output_limit
+            lim = a.limits.output_limit
             for value in (msg.bias + msg.amp_high, msg.bias - msg.amp_low):
                 if abs(value) > lim:
                     return nak(m.NakCode.OUT_OF_RANGE, value)
-            self.relay_centre = msg.centre
-            self.relay_bias = msg.bias
-            self.relay_high_amp = msg.amp_high
-            self.relay_low_amp = msg.amp_low
-            self.relay_hyst = msg.hysteresis
-            self.relay_high = self.pv < msg.centre
-            self._enter(m.Mode.RELAY)
+            a.relay_centre = msg.centre
+            a.relay_bias = msg.bias
+            a.relay_high_amp = msg.amp_high
+            a.relay_low_amp = msg.amp_low
+            a.relay_hyst = msg.hysteresis
+            a.relay_high = a.pv < msg.centre
+            self._enter(a, m.Mode.RELAY)
             return ack()
         if isinstance(msg, m.SetPid):
             if not self.capabilities & m.CAP_DEVICE_PID:
-                return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
-            refusal = self._motion_refusal()
+                return nak(m.NakCode.NOT_ALLOWED, int(a.mode))
+            refusal = self._motion_refusal(a)
             if refusal is not None:
                 return nak(*refusal)
-            assert self.limits is not None
+            assert a.limits is not None
             if not 0.0 <= msg.setpoint_weight <= 1.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.setpoint_weight)
             if msg.deriv_filter_n <= 0.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.deriv_filter_n)
             if msg.tracking_time < 0.0:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.tracking_time)
-            if abs(msg.bias) > self.limits.output_limit:
+            if abs(msg.bias) > a.limits.output_limit:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.bias)
-            self.pid = PidState(
+            a.pid = PidState(
                 msg.kp, msg.ki, msg.kd, msg.setpoint_weight, msg.deriv_filter_n,
                 msg.tracking_time, msg.setpoint, msg.bias,
             )
-            self._enter(m.Mode.PID)
+            self._enter(a, m.Mode.PID)
             return ack()
         if isinstance(msg, m.SetSetpoint):
-            if self.mode == m.Mode.PID and self.pid is not None:
-                self.pid.setpoint = msg.setpoint
+            if a.mode == m.Mode.PID and a.pid is not None:
+                a.pid.setpoint = msg.setpoint
                 return ack()
-            if self.mode == m.Mode.RELAY:
-                self.relay_centre = msg.setpoint
+            if a.mode == m.Mode.RELAY:
+                a.relay_centre = msg.setpoint
                 return ack()
-            return nak(m.NakCode.NOT_ALLOWED, int(self.mode))
+            return nak(m.NakCode.NOT_ALLOWED, int(a.mode))
         if isinstance(msg, m.SetOffset):
-            if self.limits is None:
+            if a.limits is None:
                 return nak(m.NakCode.LIMITS_NOT_SET)
-            if abs(msg.offset) > self.limits.output_limit:
+            if abs(msg.offset) > a.limits.output_limit:
                 return nak(m.NakCode.OUT_OF_RANGE, msg.offset)
-            self.offset = msg.offset
+            a.offset = msg.offset
             return ack()
         return nak(m.NakCode.UNKNOWN_TYPE, t)  # pragma: no cover - registry and code in step
 
     def _set_limits(
         self,
+        a: Axis,
         msg: m.SetLimits,
         ack: Callable[[], list[Outgoing]],
         nak: Callable[[m.NakCode, float], list[Outgoing]],
@@ -432,73 +603,49 @@ class Device:
             watchdog = msg.watchdog_ms / 1000.0
         else:
             return nak(m.NakCode.OUT_OF_RANGE, msg.watchdog_ms)
-        self.limits = AxisLimits(
+        a.limits = AxisLimits(
             msg.output_limit, msg.pv_low, msg.pv_high, msg.pv_rate_limit, msg.watchdog_ms,
             watchdog,
         )
         return ack()
 
-    def _motion_refusal(self) -> tuple[m.NakCode, float] | None:
-        if self.limits is None:
+    def _motion_refusal(self, a: Axis) -> tuple[m.NakCode, float] | None:
+        if a.limits is None:
             return (m.NakCode.LIMITS_NOT_SET, 0.0)
-        if self.fault is not None:
-            return (m.NakCode.FAULT_LATCHED, float(self.fault))
+        if a.fault is not None:
+            return (m.NakCode.FAULT_LATCHED, float(a.fault))
         return None
 
-    def _enter(self, mode: m.Mode) -> None:
-        self.mode = mode
+    def _enter(self, a: Axis, mode: m.Mode) -> None:
+        a.mode = mode
         self.last_rx_k = self.k
 
-    def _go_idle(self) -> None:
-        self.mode = m.Mode.IDLE
-        self.host_output = 0.0
-        self.pid = None
+    def _on(self, axis: int) -> str:
+        """" on axis N" in a log line of a board with several axes, else nothing."""
+        return f" on axis {axis}" if self.axis_count > 1 else ""
 
-    def _latch(self, code: m.FaultCode, value: float) -> None:
-        self.fault = code
-        self.fault_value = value
-        self.fault_us = self.device_us
-        self._go_idle()
-        self._log(f"fault {code.name} latched (value {value:g}) at t={self.t:.3f} s")
+    def _latch(self, axis: int, code: m.FaultCode, value: float) -> None:
+        a = self.axes[axis]
+        a.fault = code
+        a.fault_value = value
+        a.fault_us = self.device_us
+        a.go_idle()
+        self._log(f"fault {code.name} latched{self._on(axis)} (value {value:g}) "
+                  f"at t={self.t:.3f} s")
 
     # ------------------------------------------------------------ tick
-    def _relay_output(self, pv: float) -> float:
-        e = self.relay_centre - pv
-        if e > self.relay_hyst:
-            self.relay_high = True
-        elif e < -self.relay_hyst:
-            self.relay_high = False
-        if self.relay_high:
-            return self.relay_bias + self.relay_high_amp
-        return self.relay_bias - self.relay_low_amp
-
-    def _pid_output(self, pv: float, limit: float) -> float:
-        p = self.pid
-        assert p is not None
-        h = self.period
-        if p.pv_prev is None:
-            p.pv_prev = pv
-        e = p.setpoint - pv
-        # derivative on measurement through a first-order filter, backward difference
-        if p.kd != 0.0:
-            tf = abs(p.kd / (p.kp * p.n)) if p.kp != 0.0 else 0.0
-            p.deriv = (tf * p.deriv - p.kd * (pv - p.pv_prev)) / (tf + h)
-        else:
-            p.deriv = 0.0
-        p.pv_prev = pv
-        v = p.bias + p.kp * (p.b * p.setpoint - pv) + p.integral + p.deriv
-        # Saturation is decided on the total drive (PID output plus the load-test offset), not by
-        # comparing floats after adding and removing the offset, which rarely round-trips exactly.
-        high = v + self.offset > limit
-        low = v + self.offset < -limit
-        u = (limit - self.offset) if high else (-limit - self.offset) if low else v
-        if p.tt > 0.0:
-            # back-calculation: the integral is pulled towards the saturated output
-            p.integral += p.ki * h * e + (h / p.tt) * (u - v)
-        elif not (high or low) or (high and p.ki * e < 0.0) or (low and p.ki * e > 0.0):
-            # clamping: integrate unless saturated and the error drives further into it
-            p.integral += p.ki * h * e
-        return v
+    def _check(self, a: Axis, pv: float, rate: float) -> tuple[m.FaultCode, float] | None:
+        """The tick's safety checks of a non-idle axis: watchdog, PV window, PV rate."""
+        lim = a.limits
+        assert lim is not None
+        silence_ticks = self.k - self.last_rx_k
+        if silence_ticks * self.period >= lim.watchdog - 1e-9:
+            return (m.FaultCode.WATCHDOG, silence_ticks * self.period)
+        if not lim.pv_low <= pv <= lim.pv_high:
+            return (m.FaultCode.PV_WINDOW, pv)
+        if lim.pv_rate_limit > 0.0 and abs(rate) > lim.pv_rate_limit:
+            return (m.FaultCode.PV_RATE, rate)
+        return None
 
     def tick(self) -> list[Outgoing]:
         """Run one device tick (see the module docstring); returns the frames to send."""
@@ -511,62 +658,37 @@ class Device:
         if self.faults.disconnect_due(since):
             self.disconnect_requested = True
 
-        pv = self.faults.pv(self.sensor.read(self.plant.y), since)
-        self.pv = pv
-        # median-of-3 filtered PV for the rate check
-        self._pv_hist.append(pv)
-        if len(self._pv_hist) > 3:
-            del self._pv_hist[0]
-        pvf = sorted(self._pv_hist)[len(self._pv_hist) // 2] if len(self._pv_hist) != 2 else (
-            0.5 * (self._pv_hist[0] + self._pv_hist[1])
-        )
-        rate = 0.0 if self._pvf_prev is None else (pvf - self._pvf_prev) / self.period
-        self._pvf_prev = pvf
+        latched: list[bool] = []
+        for i, a in enumerate(self.axes):
+            raw = a.sensor.read(a.plant.y)
+            pv = self.faults.pv(raw, since) if i == 0 else raw
+            rate = a.read(pv)
+            u = 0.0
+            failed = None
+            if a.fault is None and a.mode != m.Mode.IDLE and a.limits is not None:
+                u = a.mode_output(pv)
+                failed = self._check(a, pv, rate)
+                if failed is not None:
+                    self._latch(i, *failed)
+                    u = 0.0
+            latched.append(failed is not None)
+            lim = a.limits
+            a.clamped = False
+            if lim is not None and abs(u) > lim.output_limit:
+                u = math.copysign(lim.output_limit, u)
+                a.clamped = True
+            applied = a.actuator.saturate(u)
+            a.applied = applied
+            sign = self.faults.actuator_sign() if i == 0 else 1.0
+            a.plant.advance(sign * a.actuator.apply(applied) + a.load, self.period)
 
-        lim = self.limits
-        u = 0.0
-        latched = False
-        if self.fault is None and self.mode != m.Mode.IDLE and lim is not None:
-            if self.mode == m.Mode.HOST:
-                u = self.host_output
-            elif self.mode == m.Mode.RELAY:
-                u = self._relay_output(pv)
-            elif self.mode == m.Mode.PID:
-                u = self._pid_output(pv, lim.output_limit)
-            u += self.offset
-            silence_ticks = self.k - self.last_rx_k
-            if silence_ticks * self.period >= lim.watchdog - 1e-9:
-                self._latch(m.FaultCode.WATCHDOG, silence_ticks * self.period)
-                latched = True
-                u = 0.0
-            elif not lim.pv_low <= pv <= lim.pv_high:
-                self._latch(m.FaultCode.PV_WINDOW, pv)
-                latched = True
-                u = 0.0
-            elif lim.pv_rate_limit > 0.0 and abs(rate) > lim.pv_rate_limit:
-                self._latch(m.FaultCode.PV_RATE, rate)
-                latched = True
-                u = 0.0
-        self.clamped = False
-        if lim is not None and abs(u) > lim.output_limit:
-            u = math.copysign(lim.output_limit, u)
-            self.clamped = True
-        applied = self.actuator.saturate(u)
-        self.applied = applied
-        drive = self.faults.actuator_sign() * self.actuator.apply(applied) + self.load
-        self.plant.advance(drive, self.period)
-
-        if self.streaming and self.k % self.decimation == 0:
-            if self.mode == m.Mode.PID and self.pid is not None:
-                sp = self.pid.setpoint
-            elif self.mode == m.Mode.RELAY:
-                sp = self.relay_centre
-            else:
-                sp = 0.0
-            sample = m.Sample(0, self.device_us, float(pv), float(applied), float(sp), self.flags())
-            out.append(self._unsolicited(sample))
-        if latched:  # after this tick's Sample, so the host has the evidence first
-            out.append(self._unsolicited(self._fault_msg()))
+        for i, a in enumerate(self.axes):
+            if a.streaming and self.k % a.decimation == 0:
+                sample = m.Sample(i, self.device_us, float(a.pv), float(a.applied),
+                                  float(a.setpoint()), self.flags(i))
+                out.append(self._unsolicited(sample))
+            if latched[i]:  # after this tick's Sample, so the host has the evidence first
+                out.append(self._unsolicited(self._fault_msg(i)))
         for seq in self._pending_stops:
             out.append(Outgoing(m.Stopped(), seq))
         self._pending_stops.clear()

@@ -125,15 +125,18 @@ def test_builtin_scenarios_load_and_oscillate_nicely(name):
     cfg = load_config(name)
     assert cfg.source == f"scenario {name}"
     assert cfg.device.period == 0.01
-    ku, tu = _ultimate(cfg.plant.num, cfg.plant.den, cfg.plant.delay)
-    # "nice" for a 10 ms tick: 20-100 ticks per period, a relay cycle within a second or so
-    assert 0.2 < tu < 1.0
-    assert 5.0 < ku < 200.0
-    # the figures written in the scenario comments (python-control)
-    documented = {"cart-wheel": (60.4, 0.40), "cart-wheel-loaded": (91.7, 0.53),
-                  "mast-pan": (19.2, 0.80)}[name]
-    assert ku == pytest.approx(documented[0], rel=0.01)
-    assert tu == pytest.approx(documented[1], rel=0.01)
+    # the figures written in the scenario comments (python-control), one pair an axis
+    documented = {"cart-wheel": [(60.4, 0.40)], "cart-wheel-loaded": [(91.7, 0.53)],
+                  "mast-pan": [(19.2, 0.80)],
+                  "drive-base": [(47.4, 0.313), (53.0, 0.324)]}[name]
+    assert len(cfg.axis_configs) == len(documented)
+    for axis, (ku_doc, tu_doc) in zip(cfg.axis_configs, documented, strict=True):
+        ku, tu = _ultimate(axis.plant.num, axis.plant.den, axis.plant.delay)
+        # "nice" for a 10 ms tick: 20-100 ticks per period, a relay cycle within a second or so
+        assert 0.2 < tu < 1.0
+        assert 5.0 < ku < 200.0
+        assert ku == pytest.approx(ku_doc, rel=0.01)
+        assert tu == pytest.approx(tu_doc, rel=0.01)
 
 
 def test_scenario_kinds():
@@ -144,3 +147,70 @@ def test_scenario_kinds():
     assert mast.plant.den[-1] == 0.0  # integrating
     assert mast.actuator.deadband > 0.0
     assert mast.plant.delay > 0.0 and cart.plant.delay > 0.0
+
+
+# ------------------------------------------------------------------ several axes ([[axis]])
+
+_TWO_AXES = """
+[device]
+period = 0.01
+[[axis]]
+name = "left"
+[axis.plant]
+num = [2.0]
+den = [0.5, 1.0]
+[axis.sensor]
+resolution = 0.1
+[[axis]]
+[axis.plant]
+num = [3.0]
+den = [0.4, 1.0]
+delay = 0.02
+"""
+
+
+def test_axis_tables_each_hold_their_own_plant(tmp_path):
+    cfg = load_config(_write(tmp_path, _TWO_AXES))
+    left, right = cfg.axis_configs
+    assert left.name == "left" and right.name == ""
+    assert left.plant.num == (2.0,) and left.sensor.resolution == 0.1
+    assert right.plant.den == (0.4, 1.0) and right.plant.delay == 0.02
+    assert right.sensor == MockConfig().sensor and right.actuator == MockConfig().actuator
+    # axis 0 is also the config's plant, actuator and sensor (the one-axis view)
+    assert cfg.plant == left.plant and cfg.sensor == left.sensor
+
+
+def test_single_axis_file_is_one_axis(tmp_path):
+    cfg = load_config(_write(tmp_path, "[plant]\nnum = [3]\nden = [1, 2]\n"))
+    assert cfg.axes == ()
+    (only,) = cfg.axis_configs
+    assert only.plant == cfg.plant and only.actuator == cfg.actuator
+
+
+@pytest.mark.parametrize(
+    ("text", "match"),
+    [
+        (_TWO_AXES + "[plant]\nnum = [1.0]\n", r"\[plant\]: not allowed beside \[\[axis\]\]"),
+        ("[[axis]]\n[axis.plant]\nnumm = [1.0]\n", r"\[\[axis\]\] 0 \[plant\] numm: unknown key"),
+        ("[[axis]]\n[[axis]]\n[axis.plant]\nden = [0.0, 1.0]\n",
+         r"\[\[axis\]\] 1 \[plant\] den: leading coefficient"),
+        ("[[axis]]\ngain = 2\n", r"\[\[axis\]\] 0 gain: unknown key"),
+        ("[[axis]]\nname = 3\n", r"\[\[axis\]\] 0 name: expected a string"),
+        ("axis = 3\n", r"\[\[axis\]\]: expected an array of tables"),
+        ("[axis]\nname = 'x'\n", r"\[\[axis\]\]: expected an array of tables"),
+        ("[[axis]]\n" * 9, r"\[\[axis\]\]: between 1 and 8 axes, got 9"),
+        ("[[axis]]\n[axis.actuator]\ndeadband = 200.0\n",
+         r"\[\[axis\]\] 0 \[actuator\] deadband: must be in"),
+    ],
+)
+def test_bad_axis_tables_name_the_key(tmp_path, text, match):
+    with pytest.raises(MockConfigError, match=match):
+        load_config(_write(tmp_path, text))
+
+
+def test_drive_base_wheels_differ_a_little():
+    left, right = load_config("drive-base").axis_configs
+    assert left.name == "left wheel" and right.name == "right wheel"
+    assert left.plant != right.plant
+    assert left.actuator.deadband != right.actuator.deadband
+    assert left.sensor == right.sensor

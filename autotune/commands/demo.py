@@ -3,14 +3,20 @@
 Starts the simulated board (autotune.simdevice: `python -m mock_device` on a pseudo-terminal) in
 the background and runs start screen, relay, proposals, confirmation step and accept against it,
 exactly as against a real board on a serial port. `--yes` runs it unattended.
+
+`--plant drive-base` runs a plan (autotune.job.plan): the two wheel loops of a two-wheel drive
+base, one after the other on one connection, each loop's files under OUT/<loop name>/, then the
+matched-loop report (autotune.commands.matched) in summary.json and summary.txt beside them.
 """
 
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import sys
 from pathlib import Path
 
+from autotune.commands.matched import run_plan_verb
 from autotune.commands.options import add_view_options, default_out_dir, terminal_for
 from autotune.config import Config, config_from_dict, load_config, with_overrides
 from autotune.errors import UserError
@@ -20,7 +26,7 @@ from autotune.ui.app import run_job
 
 HELP = "run the whole tuning job against the built-in simulated board (no hardware needed)"
 
-PLANTS = ("cart-wheel", "mast-pan")
+PLANTS = ("cart-wheel", "mast-pan", "drive-base")
 
 # Demo settings per scenario (invented demo data): limits and relay targets that suit each plant.
 # cart-wheel: wheel speed in rad/s, output in % duty; mast-pan: pan angle in degrees, % duty.
@@ -45,6 +51,22 @@ DEMO_CONFIG: dict[str, dict[str, object]] = {
         "design.step_size": 12.0,
         "step.duration": 20.0,
     },
+    # drive-base: two wheel-speed loops in rad/s, output in % duty (each wheel much like the
+    # cart's); the limits hold for both wheels. The second wheel's analysis follows a whole
+    # loop's run: a longer watchdog than the others' leaves a busy machine room at --speed
+    "drive-base": {
+        "safety.watchdog": 2.0,
+        "safety.output_limit": 40.0,
+        "safety.pv_window": 6.0,
+        "relay.target_amplitude": 0.4,
+        "design.step_size": 2.5,
+    },
+}
+
+# The plan of a scenario with several loops: [[loop]] tables as in a config file.
+DEMO_PLANS: dict[str, list[dict[str, object]]] = {
+    "drive-base": [{"name": "left", "axis": 0, "role": "matched"},
+                   {"name": "right", "axis": 1, "role": "matched"}],
 }
 
 
@@ -60,8 +82,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "accepted and written."
     )
     p.add_argument("--plant", choices=PLANTS, default="cart-wheel",
-                   help="simulated scenario: a cart's wheel-speed loop or a camera mast's "
-                        "pan-angle loop (default: cart-wheel)")
+                   help="simulated scenario: a cart's wheel-speed loop, a camera mast's "
+                        "pan-angle loop, or the two wheel loops of a drive base, tuned in "
+                        "turn and compared (default: cart-wheel)")
     p.add_argument("--yes", action="store_true",
                    help="run unattended: no questions, default proposal, accept a passing step")
     p.add_argument("--out", metavar="DIR",
@@ -79,10 +102,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def build_config(args: argparse.Namespace) -> Config:
     """The demo's config: the scenario's settings, then the config file, then the options."""
+    plan = {"loop": DEMO_PLANS[args.plant]} if args.plant in DEMO_PLANS else {}
     if args.config:
         cfg = load_config(args.config)
+        if plan and not cfg.plan:  # the file's settings on the scenario's plan
+            cfg = dataclasses.replace(cfg, plan=config_from_dict(plan, "<demo>").plan)
     else:
-        cfg = with_overrides(config_from_dict({}, "<demo>"), dict(DEMO_CONFIG[args.plant]),
+        cfg = with_overrides(config_from_dict(plan, "<demo>"), dict(DEMO_CONFIG[args.plant]),
                              origin=f"{args.plant} demo scenario")
     return with_overrides(cfg, {"connection.plant": args.plant,
                                 "connection.speed": args.speed,
@@ -98,7 +124,10 @@ def run(args: argparse.Namespace) -> int:
     # mock_device` process on a pty) in the background and ends it with the job
     req = JobRequest(cfg=cfg, board=BoardRequest(SIM, args.plant, args.speed, None, args.seed),
                      out_dir=out, verb="demo", yes=args.yes)
+    if cfg.plan:
+        return run_plan_verb(args, req)
     outcome = run_job(req, term=terminal_for(args))
     if outcome.exit_code != 0:
         print(f"autotune demo: {outcome.message or outcome.reason}", file=sys.stderr)
     return outcome.exit_code
+

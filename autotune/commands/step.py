@@ -171,6 +171,10 @@ def choose_gains(args: argparse.Namespace, filter_n: float
 
 def run(args: argparse.Namespace) -> int:
     cfg = with_overrides(load_config(args.config), _overrides(args))
+    if cfg.plan:
+        raise UserError(f"{cfg.source}: step runs one loop with given gains, and this "
+                        "configuration holds a [[loop]] plan: use a configuration without one "
+                        "(--config) and --axis for the loop")
     board = BoardRequest.of(cfg, args.faults, args.seed)
     choice, pool, model = choose_gains(args, cfg.step.deriv_filter_n)
     if args.gains_file:

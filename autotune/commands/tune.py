@@ -7,6 +7,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from autotune.commands.matched import run_plan_verb
 from autotune.commands.options import (
     add_connection_options,
     add_safety_options,
@@ -17,7 +18,7 @@ from autotune.commands.options import (
     terminal_for,
 )
 from autotune.config import RelayConfig, load_config, with_overrides
-from autotune.errors import EXIT_OK
+from autotune.errors import EXIT_OK, EXIT_USAGE, UserError
 from autotune.job.requests import BoardRequest, JobRequest
 from autotune.ui.app import run_job
 
@@ -88,6 +89,11 @@ def run(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else default_out_dir("tune")
     req = JobRequest(cfg=cfg, board=board, out_dir=out, verb="tune", yes=args.yes,
                      force=args.force, confirm_step=not args.no_step, csv=args.csv)
+    if cfg.plan:  # the config's [[loop]] plan: each loop in turn, OUT/<loop name>/
+        if args.axis is not None:
+            raise UserError(f"--axis {args.axis}: {cfg.source} holds a [[loop]] plan, whose "
+                            "loops name their own axes", exit_code=EXIT_USAGE)
+        return run_plan_verb(args, req)
     outcome = run_job(req, term=terminal_for(args))
     if outcome.exit_code != EXIT_OK:
         print(f"autotune tune: {outcome.reason}: {outcome.message}", file=sys.stderr)

@@ -171,10 +171,14 @@ class _Leave(Exception):  # noqa: N818 (control flow: the operator ends the job)
 
 class TuningJob:
     """One job (see the module docstring). `run()` returns a JobOutcome and never leaves the
-    motor powered; analyse=False skips the model fit and design (relay figures only)."""
+    motor powered; analyse=False skips the model fit and design (relay figures only);
+    connection: an open connection to the board to use and leave open (a plan's loops share
+    one, autotune.job.plan); None opens the request's port."""
 
-    def __init__(self, request: JobRequest, operator: Operator, *, analyse: bool = True) -> None:
+    def __init__(self, request: JobRequest, operator: Operator, *, analyse: bool = True,
+                 connection: Any = None) -> None:
         self.req = request
+        self.connection = connection
         self.cfg = request.cfg
         self.op = operator
         self.analyse = analyse
@@ -207,7 +211,8 @@ class TuningJob:
         opts = RunOptions(port=req.board.port, yes=req.yes, out_dir=req.out_dir,
                           plant=req.board.plant, speed=req.board.speed, faults=req.board.faults,
                           seed=req.board.seed, verb=req.verb, keys=False, cautions_shown=True,
-                          confirm=self._confirm_start, alarm=self.op.alarm)
+                          confirm=self._confirm_start, alarm=self.op.alarm,
+                          connection=self.connection)
         header: dict[str, Any] = {"job": {"verb": req.verb, "relay": req.relay,
                                           "confirm_step": req.confirm_step}}
         if req.gains is not None:

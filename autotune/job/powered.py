@@ -107,6 +107,58 @@ def plain_alarm(text: str) -> None:
     print(text, file=sys.stderr, flush=True)
 
 
+@dataclass
+class Connection:
+    """An open connection to a board: the link after the handshake, its device info, the URL
+    opened, the simulated board's speed (1 for a real one) and the simulated board itself
+    (None for a real one). A plan's loops share one (`RunOptions.connection`): each run uses
+    it and leaves it open; `close` ends it."""
+
+    link: Any
+    info: Any
+    url: str
+    speed: float
+    sim: SimDevice | None = None
+
+    def close(self) -> None:
+        """Close the link, then end the simulated board (never raises)."""
+        with contextlib.suppress(Exception):
+            self.link.close()
+        if self.sim is not None:
+            with contextlib.suppress(Exception):
+                self.sim.close()
+
+
+def open_connection(opts: RunOptions, baudrate: int, watchdog: float) -> Connection:
+    """Open the port of `opts` (starting the simulated board for "sim") and shake hands; the
+    heartbeat feeds a device watchdog of `watchdog` s (device time) five times a period.
+    UserError (exit 4) when the port cannot be opened or the board does not answer."""
+    url = opts.port
+    sim = None
+    if url == SIM:
+        sim = start_sim_device(opts.plant, speed=opts.speed, faults=opts.faults, seed=opts.seed)
+        url = sim.url
+    # a real board runs at speed 1; a simulated one started elsewhere runs at opts.speed
+    speed = opts.speed
+    heartbeat = min(0.05, watchdog / 5.0) / speed
+    # at high simulated speeds no faster than every 2 ms of wall clock while that still
+    # feeds the watchdog five times per period (thousands of Pings a second only load the
+    # host and the line)
+    heartbeat = max(heartbeat, min(0.002, watchdog / 5.0 / speed))
+    link = None
+    try:
+        link = Link.open(url, baudrate=baudrate, heartbeat_interval=heartbeat,
+                         retries=LINK_RETRIES)
+        info = link.handshake()
+    except LinkError as exc:
+        Connection(link, None, url, speed, sim).close()
+        raise UserError(f"{opts.port}: {exc}", exit_code=EXIT_LINK) from None
+    except BaseException:
+        Connection(link, None, url, speed, sim).close()
+        raise
+    return Connection(link, info, url, speed, sim)
+
+
 class PoweredRun:
     """Connection, confirmation, limits, recording, checks and the stop path of one run.
 
@@ -129,6 +181,7 @@ class PoweredRun:
         self.sim: SimDevice | None = None
         self.link: Any = None
         self.info: Any = None
+        self.shared = False  # the connection is a plan's (RunOptions.connection): left open
         self.url = options.port
         self.speed = 1.0
         self.recording = RunRecorder()
@@ -209,29 +262,15 @@ class PoweredRun:
         return self
 
     def connect(self) -> Any:
-        """Open the port (starting the simulated board for "sim") and shake hands; from then
-        on a signal is a stop request."""
+        """Open the port (starting the simulated board for "sim") and shake hands, or take the
+        connection `RunOptions.connection` holds; from then on a signal is a stop request."""
         opts = self.options
-        url = opts.port
-        if url == SIM:
-            self.sim = start_sim_device(opts.plant, speed=opts.speed, faults=opts.faults,
-                                        seed=opts.seed)
-            url = self.sim.url
-        # a real board runs at speed 1; a simulated one started elsewhere runs at opts.speed
-        self.speed = opts.speed
-        self.url = url
-        watchdog = self.cfg.safety.watchdog
-        heartbeat = min(0.05, watchdog / 5.0) / self.speed
-        # at high simulated speeds no faster than every 2 ms of wall clock while that still
-        # feeds the watchdog five times per period (thousands of Pings a second only load the
-        # host and the line)
-        heartbeat = max(heartbeat, min(0.002, watchdog / 5.0 / self.speed))
-        try:
-            self.link = Link.open(url, baudrate=self.cfg.connection.baudrate,
-                                  heartbeat_interval=heartbeat, retries=LINK_RETRIES)
-            self.info = self.link.handshake()
-        except LinkError as exc:
-            raise UserError(f"{opts.port}: {exc}", exit_code=EXIT_LINK) from None
+        conn = opts.connection
+        self.shared = conn is not None
+        if conn is None:
+            conn = open_connection(opts, self.cfg.connection.baudrate, self.cfg.safety.watchdog)
+        self.link, self.info, self.url, self.speed, self.sim = (
+            conn.link, conn.info, conn.url, conn.speed, conn.sim)
         self._exits.enter_context(self._signal_watcher())
         self._exits.enter_context(signals.diverted(self._on_signal))
         info = self.info
@@ -834,16 +873,18 @@ class PoweredRun:
                 if not link.lost and not link.stop_only:
                     with contextlib.suppress(Exception):
                         link.request(Stream(self.axis, 0, 1), timeout=0.2, retries=0)
-                with contextlib.suppress(Exception):
-                    link.close()
+                if not self.shared:
+                    with contextlib.suppress(Exception):
+                        link.close()
                 if self.recording.writer is not None:
-                    # what came after the last stage read (the reader ran until the close):
-                    # every sample received is in the session file
+                    # what came after the last stage read (the reader ran until the close, or
+                    # the stream was turned off on a shared link): every sample received is
+                    # in the session file
                     with contextlib.suppress(Exception):
                         self.catch_up(Phase.STOPPING.value if self.outcome.stop is not None
                                       else None)
         finally:
-            if self.sim is not None:
+            if self.sim is not None and not self.shared:
                 with contextlib.suppress(Exception):
                     self.sim.close()
             if not keep_writer:

@@ -66,6 +66,8 @@ class RunOptions:
     handshake, True to go ahead (it handles --yes itself and may raise UserError, e.g. when
     there is nobody to ask); None: `yes` goes ahead, else nothing is powered. alarm: the front end's "raise an alarm" (one line in
     capitals that must reach the operator); None prints it on stderr.
+    connection: an open connection (autotune.job.powered.Connection) the run uses instead of
+    opening the port, and leaves open: the loops of a plan share one.
     """
 
     port: str
@@ -82,6 +84,7 @@ class RunOptions:
     cautions_shown: bool = False
     confirm: Callable[[Any], bool] | None = None
     alarm: Callable[[str], None] | None = None
+    connection: Any = None
 
 
 @dataclass

@@ -520,14 +520,16 @@ def finish_view(summary: JobSummary) -> FinishView:
 
 
 def run_job(request: JobRequest, console: Console | None = None, stdin: Any = None,
-            term: Terminal | None = None, unattended: bool | None = None) -> JobOutcome:
+            term: Terminal | None = None, unattended: bool | None = None,
+            connection: Any = None) -> JobOutcome:
     """Run a job on the terminal (full screen, or plain lines when stdout is not a terminal),
     then print the finish screen; the JobOutcome says how it ended. `unattended` (default:
-    request.yes) draws the screens without the keys that start a stage."""
+    request.yes) draws the screens without the keys that start a stage; `connection`: a
+    plan's open connection to use and leave open (autotune.job.plan)."""
     term = term or Terminal(console, stdin)
     op = TerminalOperator(term, unattended=request.yes if unattended is None else unattended)
     with term:
-        outcome = TuningJob(request, op).run()
+        outcome = TuningJob(request, op, connection=connection).run()
     summary = op.summary
     if summary is not None:
         view = finish_view(summary)
