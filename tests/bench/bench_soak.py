@@ -28,7 +28,8 @@ def main() -> None:
           f"({wall:.0f} s wall), {f['samples']:.0f} samples, {f['cycles']:.0f} cycles, sample "
           f"loss {f['loss']:.3f} (predicted {f['loss_predicted']:.3f}), "
           f"{f['rejected']:.0f} frames rejected, memory growth {f['memory_growth_bytes']:.0f} B "
-          f"over {f['over_samples']:.0f} samples (allowed {f['memory_allowed_bytes']:.0f})")
+          f"over {f['over_samples']:.0f} samples, {f['bytes_per_sample']:.0f} B per sample "
+          f"(allowed {f['bytes_per_sample_allowed']:.0f})")
 
 
 if __name__ == "__main__":
