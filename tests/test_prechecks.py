@@ -334,3 +334,18 @@ def test_significant_drift_ignores_a_slope_that_is_only_noise() -> None:
     # A real drift of 0.5 PV units/s (a load on an integrating loop) stands far above the noise.
     drifting = assess_rest(t, 0.5 * t + rng.normal(0.0, 0.005, t.size), np.zeros(t.size))
     assert drifting.significant_drift == pytest.approx(0.5, rel=0.05)
+
+
+def test_rest_noise_of_a_quantised_sensor_keeps_its_flicker() -> None:
+    """Gaussian noise of 0.02 read through a 0.05 quantiser rests mostly on one level (its
+    median absolute deviation is about zero): the flicker by one count is the sensor's noise
+    and stays in the estimate (about 0.021 here, computed from the samples themselves), and
+    spikes of 20 counts are still set aside."""
+    rng = np.random.default_rng(5)
+    t = np.arange(1000) * DT
+    pv = quantise(rng.normal(0, 0.02, t.size), 0.05)
+    clean = float(np.std(pv, ddof=2))
+    pv[::97] += 1.0
+    r = assess_rest(t, pv, np.zeros(t.size))
+    assert clean > 0.01
+    assert r.noise_std == pytest.approx(clean, rel=0.1)

@@ -146,15 +146,17 @@ OUTLIER_SIGMAS = 5.0  # residuals beyond this many robust sigmas are outliers (c
 #                      practice, no source)
 
 
-def _inliers(resid: np.ndarray) -> np.ndarray:
-    """Mask of the residuals within OUTLIER_SIGMAS robust standard deviations (1.4826 x the
-    median absolute deviation, which is the standard deviation for Gaussian noise). All are
-    kept when the MAD is zero (a quantised sensor resting on one level: its flicker is the
-    noise) or when fewer than 3 would remain."""
-    mad = float(np.median(np.abs(resid - np.median(resid))))
-    if not mad > 0:
+def _inliers(resid: np.ndarray, resolution: float) -> np.ndarray:
+    """Mask of the residuals within OUTLIER_SIGMAS robust standard deviations: 1.4826 x the
+    median absolute deviation (the standard deviation for Gaussian noise), at least the
+    sensor's `resolution` (PV units): a quantised sensor resting mostly on one level has a MAD
+    near zero, and its flicker by a count is its noise, never an outlier. All are kept when
+    no scale is known or fewer than 3 would remain."""
+    centre = float(np.median(resid))
+    scale = max(1.4826 * float(np.median(np.abs(resid - centre))), resolution)
+    if not scale > 0:
         return np.ones(resid.size, dtype=bool)
-    keep = np.abs(resid - np.median(resid)) <= OUTLIER_SIGMAS * 1.4826 * mad
+    keep = np.abs(resid - centre) <= OUTLIER_SIGMAS * scale
     return keep if int(keep.sum()) >= 3 else np.ones(resid.size, dtype=bool)
 
 
@@ -179,7 +181,7 @@ def assess_rest(t: ArrayLike, pv: ArrayLike, out: ArrayLike, *,
         slope, noise = 0.0, 0.0
     elif span > 0:
         slope, intercept = np.polyfit(tc, pa, 1)
-        keep = _inliers(pa - (slope * tc + intercept))
+        keep = _inliers(pa - (slope * tc + intercept), smallest_step(pa))
         if not np.all(keep):  # the line again without the outliers
             slope, intercept = np.polyfit(tc[keep], pa[keep], 1)
         resid = (pa - (slope * tc + intercept))[keep]
