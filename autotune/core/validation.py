@@ -54,9 +54,13 @@ class DcPoint:
 
     @property
     def self_regulating(self) -> bool:
-        """The mean output moved far beyond its uncertainty while the PV settled: the loop has
-        a finite static gain."""
-        return self.settled and abs(self.du) > 4.0 * self.du_sigma and self.gain is not None
+        """The mean output moved far beyond its uncertainty while the PV settled, the two in
+        the loop's own direction (a positive gain: the direction check has made the loop's sign
+        positive): the loop has a finite static gain. A negative ratio is no such evidence:
+        behind a dead zone an integrating loop holds its PV with the mean output off its
+        operating point, by an amount the relay's duty sets, not the PV."""
+        return (self.settled and abs(self.du) > 4.0 * self.du_sigma and self.gain is not None
+                and self.gain > 0.0)
 
     def as_dict(self) -> dict[str, Any]:
         return {"gain": self.gain, "uncertainty": self.sigma, "mean_output_shift": self.du,
