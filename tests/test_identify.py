@@ -197,24 +197,22 @@ def test_points_for_the_design_hold_the_static_gain_and_the_harmonics():
 
 
 def test_gains_for_a_record_no_model_explains_hold_on_every_candidate():
-    """The mast behind a dead zone of a tenth of the relay's start amplitude: the swing does
-    not show the dead zone and no model reproduces the record. The proposals are then designed
-    on every candidate model fitted to it, and the default keeps a modest peak sensitivity on
-    the true loop (integrator, lag and dead time without the dead zone: python-control
-    frequency response, the dead time and half a tick of hold applied exactly). Designed on the
-    chosen (self-regulating) model alone, the same default reached Ms 5."""
+    """The cart wheel read through a coarse, noise-free encoder (a twentieth of the target
+    swing): no model reproduces the record. The proposals are then designed on every candidate
+    model fitted to it: the default keeps the Ms target on each candidate, and a modest peak
+    sensitivity on the true loop (python-control frequency response, the dead time and half a
+    tick of hold applied exactly)."""
     from autotune.config import DesignConfig
     from autotune.core.conditions import condition_set_of_identification
     from autotune.job.tune import propose_gains
 
-    num, den, delay = MAST
+    num, den, delay = CART
     ts = 0.01
     rc = RelayConfig(max_time=120.0)
-    sim = simulate_tune(num, den, delay, ts=ts, relay_cfg=rc, output_limit=30.0, noise=0.03,
-                        resolution=360 / 4096, deadband=0.75, seed=1)
+    sim = simulate_tune(num, den, delay, ts=ts, relay_cfg=rc, output_limit=30.0, noise=0.0,
+                        resolution=0.025, seed=1)
     ident = identify(analysis_inputs(sim_record(sim, rc, 30.0)))
-    if ident.reliable:
-        pytest.skip("the record was explained by a model this time: nothing to fall back on")
+    assert not ident.reliable  # the case this test is about (deterministic simulation)
     conds = condition_set_of_identification("s", ident)
     assert len(conds) >= 2 and not conds[0].alternative
     assert all(c.alternative for c in conds[1:])
@@ -223,6 +221,9 @@ def test_gains_for_a_record_no_model_explains_hold_on_every_candidate():
     assert any("each other candidate" in n for n in notes), notes
     d = next(p for p in props if p["default"])
     assert not d["reliable"]
+    target = DesignConfig().ms_target
+    assert len(d["per_session"]) == len(conds)
+    assert all(f["predicted"]["ms"] <= target + 0.05 for f in d["per_session"]), d
     # python-control: the loop transfer C(s) G(s) e^{-s (L + ts/2)} on a dense grid
     w = np.logspace(-2, 3, 4000)
     c = control.tf([d["kd"], d["kp"], d["ki"]], [1.0, 0.0]) if d["kd"] == 0 else \
@@ -230,4 +231,4 @@ def test_gains_for_a_record_no_model_explains_hold_on_every_candidate():
     resp = control.frequency_response(c * control.tf(num, den), w)
     loop = np.asarray(resp.complex).ravel() * np.exp(-1j * w * (delay + ts / 2))
     ms = float(np.max(1.0 / np.abs(1.0 + loop)))
-    assert ms < 2.2, (ms, d)  # robust range Ms 1.2-2 (from memory); plus 10 % for the grid
+    assert ms < 1.6, (ms, d)  # the benchmark's goal (tests/bench/bench_identify.py)
