@@ -2,12 +2,7 @@
 
 from __future__ import annotations
 
-import math
-
-import control  # python-control: reference for the scenarios' ultimate points
-import numpy as np
 import pytest
-from scipy.optimize import brentq
 
 from mock_device.config import (
     SCENARIOS,
@@ -16,6 +11,7 @@ from mock_device.config import (
     load_config,
     parse_config,
 )
+from tests.relaysim import true_ultimate
 
 
 def _write(tmp_path, text: str):
@@ -108,18 +104,6 @@ def test_parse_config_source_in_message():
         parse_config({"plant": {"x": 1}}, "mine")
 
 
-def _ultimate(num, den, delay):
-    """Ultimate gain and period from python-control's frequency response (phase -180 deg)."""
-    sys = control.tf(list(num), list(den))
-    ws = np.logspace(-1, 3, 4000)
-    resp = control.frequency_response(sys, ws)
-    ph = np.unwrap(np.asarray(resp.phase).ravel()) - ws * delay
-    i = int(np.argmax(ph < -np.pi))
-    w180 = brentq(lambda w: np.interp(w, ws, ph) + np.pi, ws[i - 1], ws[i], xtol=1e-12)
-    sys_mag = abs(complex(control.evalfr(sys, 1j * w180)))
-    return 1.0 / sys_mag, 2 * math.pi / w180
-
-
 @pytest.mark.parametrize("name", SCENARIOS)
 def test_builtin_scenarios_load_and_oscillate_nicely(name):
     cfg = load_config(name)
@@ -131,7 +115,7 @@ def test_builtin_scenarios_load_and_oscillate_nicely(name):
                   "drive-base": [(47.4, 0.313), (53.0, 0.324)]}[name]
     assert len(cfg.axis_configs) == len(documented)
     for axis, (ku_doc, tu_doc) in zip(cfg.axis_configs, documented, strict=True):
-        ku, tu = _ultimate(axis.plant.num, axis.plant.den, axis.plant.delay)
+        ku, tu = true_ultimate(axis.plant.num, axis.plant.den, axis.plant.delay)
         # "nice" for a 10 ms tick: 20-100 ticks per period, a relay cycle within a second or so
         assert 0.2 < tu < 1.0
         assert 5.0 < ku < 200.0

@@ -6,13 +6,10 @@ an abort during the first loop stops the run within two ticks and the plan with 
 from __future__ import annotations
 
 import json
-import math
 from pathlib import Path
 
-import control  # python-control: the reference for each wheel's ultimate point
 import numpy as np
 import pytest
-from scipy.optimize import brentq
 
 from autotune.config import config_from_dict
 from autotune.core.progress import Phase
@@ -22,6 +19,7 @@ from autotune.job.plan import run_plan
 from autotune.job.requests import BoardRequest, JobRequest
 from autotune.recorder import read_session
 from mock_device.config import load_config
+from tests.relaysim import true_ultimate
 
 TICK = 0.01  # s, the scenario's device tick
 
@@ -36,18 +34,6 @@ def plan_config(**safety: float):
                  {"name": "right", "axis": 1, "role": "matched",
                   "limits": {"output_limit": 35.0}}],
     }, "plan.toml")
-
-
-def ultimate_point(num, den, delay: float) -> tuple[float, float]:
-    """Ku (output units per PV unit) and Tu (s) of num/den e^{-delay s}: python-control's
-    frequency response, the frequency where the phase (dead time included) is -180 degrees."""
-    sys = control.tf(list(num), list(den))
-    ws = np.logspace(-1, 3, 4000)
-    resp = control.frequency_response(sys, ws)
-    ph = np.unwrap(np.asarray(resp.phase).ravel()) - ws * delay
-    i = int(np.argmax(ph < -np.pi))
-    w180 = brentq(lambda w: np.interp(w, ws, ph) + np.pi, ws[i - 1], ws[i], xtol=1e-12)
-    return 1.0 / abs(complex(control.evalfr(sys, 1j * w180))), 2 * math.pi / w180
 
 
 def test_drive_base_plan_tunes_both_wheels_on_one_connection(tmp_path: Path) -> None:
@@ -77,7 +63,7 @@ def test_drive_base_plan_tunes_both_wheels_on_one_connection(tmp_path: Path) -> 
         assert entry["gains"]["source"] == "accepted"
         # the analysis accuracy the single-loop tests hold (10 % on Ku, 5 % on Tu) against
         # python-control's ultimate point of the wheel's true model (the scenario file)
-        ku, tu = ultimate_point(axis.plant.num, axis.plant.den, axis.plant.delay)
+        ku, tu = true_ultimate(axis.plant.num, axis.plant.den, axis.plant.delay)
         figures = entry["figures"]
         assert figures["end_reason"] == "converged"
         assert figures["ultimate_gain"] == pytest.approx(ku, rel=0.10)
