@@ -57,10 +57,12 @@ def assert_one_line_format(stdout: str) -> list[str]:
     return tags
 
 
-def test_tune_on_a_terminal_uses_the_bench_view_and_writes_gains(tmp_path: Path) -> None:
+def test_tune_on_a_terminal_uses_the_bench_view_and_writes_gains(tmp_path: Path,
+                                                                 config_file: str) -> None:
     out = tmp_path / "run"
     child = pexpect.spawn(sys.executable, ["-m", "autotune", "tune", "--port", "sim", "--yes",
-                                           "--speed", "5", "--out", str(out)],
+                                           "--speed", "5", "--config", config_file,
+                                           "--out", str(out)],
                           cwd=str(tmp_path), timeout=120, encoding="utf-8",
                           env=dict(os.environ, COLUMNS="100", LINES="30"),
                           dimensions=(30, 100))
