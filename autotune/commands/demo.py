@@ -33,6 +33,10 @@ PLANTS = ("cart-wheel", "mast-pan", "drive-base")
 # The watchdog (device time) is longer than a real board's so that a demo run many times faster
 # than the wall clock (--speed) on a busy machine does not trip it with a late heartbeat: 2 s of
 # device time is 0.4 s of wall clock at --speed 5 (1 s, tried before, tripped now and then).
+DEMO_WATCHDOG_WALL = 1.0
+"""The demo's watchdog covers at least this many seconds of wall clock, whatever --speed: a
+host on a heavily loaded machine may fall silent for some tenths of a second while it analyses
+(common practice, no source)."""
 DEMO_CONFIG: dict[str, dict[str, object]] = {
     "cart-wheel": {
         "safety.watchdog": 2.0,
@@ -108,7 +112,12 @@ def build_config(args: argparse.Namespace) -> Config:
         if plan and not cfg.plan:  # the file's settings on the scenario's plan
             cfg = dataclasses.replace(cfg, plan=config_from_dict(plan, "<demo>").plan)
     else:
-        cfg = with_overrides(config_from_dict(plan, "<demo>"), dict(DEMO_CONFIG[args.plant]),
+        settings = dict(DEMO_CONFIG[args.plant])
+        # at least DEMO_WATCHDOG_WALL s of wall clock at any --speed (device time runs faster)
+        # (and within the 60 s the wire format carries)
+        settings["safety.watchdog"] = round(min(60.0, max(float(settings["safety.watchdog"]),
+                                                          DEMO_WATCHDOG_WALL * args.speed)), 3)
+        cfg = with_overrides(config_from_dict(plan, "<demo>"), settings,
                              origin=f"{args.plant} demo scenario")
     return with_overrides(cfg, {"connection.plant": args.plant,
                                 "connection.speed": args.speed,
