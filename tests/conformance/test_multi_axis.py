@@ -264,6 +264,10 @@ def _relay_rule_holds(recs: list[SampleRecord], centre: float, hyst: float, high
     high = recs[0].output == high_out
     for r in recs[1:]:
         e = centre - r.pv
+        if abs(abs(e) - hyst) <= 1e-6 * max(1.0, abs(centre)):
+            # on the threshold to the wire's float32 precision (a board may decide on a
+            # wider float than the Sample carries): either side is within the rule
+            high = r.output == high_out
         high = True if e > hyst else False if e < -hyst else high
         assert r.output == (high_out if high else low_out), r
         assert bool(r.flags & m.FLAG_RELAY_HIGH) == high and r.setpoint == f32(centre)
