@@ -14,13 +14,15 @@ import control  # python-control: the reference for frequency response and DC ga
 import numpy as np
 import pytest
 
-from autotune.config import RelayConfig
+from autotune.config import DesignConfig, RelayConfig
 from autotune.core.analysis import AnalysisError, _likely_cause
+from autotune.core.conditions import condition_set_of_identification
 from autotune.core.harmonics import FourierPoint, cycle_estimate
 from autotune.core.identify import analysis_inputs, identify
 from autotune.core.lti import DelayedTF, fopdt, sopdt
 from autotune.core.model import FittedModel
 from autotune.core.validation import check_model
+from autotune.job.tune import propose_gains
 from tests.relaysim import BATCH, sim_record, simulate_tune, true_ultimate
 
 CART = ([0.25], [0.048, 0.68, 1.0], 0.05)  # mock_device/scenarios/cart-wheel.toml
@@ -202,10 +204,6 @@ def test_gains_for_a_record_no_model_explains_hold_on_every_candidate():
     model fitted to it: the default keeps the Ms target on each candidate, and a modest peak
     sensitivity on the true loop (python-control frequency response, the dead time and half a
     tick of hold applied exactly)."""
-    from autotune.config import DesignConfig
-    from autotune.core.conditions import condition_set_of_identification
-    from autotune.job.tune import propose_gains
-
     num, den, delay = CART
     ts = 0.01
     rc = RelayConfig(max_time=120.0)

@@ -17,9 +17,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from autotune.config import config_from_dict
 from autotune.core.safety import SafetyGuard, SafetyLimits
 from autotune.job import signals
 from autotune.job.checks import SampleChecks
+from autotune.job.powered import PoweredRun, RunOptions
 from autotune.job.stop import stop_deadline
 from mock_device.faults import FaultSpec, parse_fault_spec
 from protocol import messages as m
@@ -240,9 +242,6 @@ def test_a_signal_while_the_main_thread_holds_the_locks_does_not_hang() -> None:
     """A signal's handler runs between two bytecodes of the main thread, which may be inside
     the link's write lock (sending an output), the recorder's or the run's own stop lock: the
     handler takes none of them, and the stop request follows once they are free."""
-    from autotune.config import config_from_dict
-    from autotune.job.powered import PoweredRun, RunOptions
-
     run = PoweredRun(config_from_dict({}, "t.toml"), RunOptions(port="loop://", keys=False))
     run.link = Link("loop://", reply_timeout=0.1, retries=0, silence_timeout=None)
     try:

@@ -161,7 +161,7 @@ def condition_set_of_identification(name: str, ident: Any) -> tuple[Condition, .
     model = ident.analysis.model
     for kind, cand in getattr(model, "candidates", {}).items():
         tf = cand.tf
-        if tf is model.tf or kind == model.kind:
+        if kind == model.kind:  # the chosen one, already first
             continue
         if not all(math.isfinite(c) for c in (*tf.num, *tf.den, tf.delay)):
             continue
