@@ -347,7 +347,8 @@ def dc_point(t: np.ndarray, y: np.ndarray, u: np.ndarray, cycles: Sequence[Cycle
         sigma = abs(gain) * math.hypot(dy_sigma / max(abs(dy), 1e-300), du_sigma / abs(du))
         sigma = max(sigma, dy_sigma / abs(du))
     return DcPoint(gain, sigma, du, du_sigma, settled,
-                   {"mean_pv_shift": dy, "mean_pv_drift": drift, "cycles": n})
+                   {"mean_pv_shift": dy, "mean_pv_shift_uncertainty": dy_sigma,
+                    "mean_pv_drift": drift, "cycles": n}, dy=dy, dy_sigma=dy_sigma)
 
 
 def normalized_dead_time(cycles: Sequence[Cycle], amp_high: float, amp_low: float,
