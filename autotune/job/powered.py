@@ -159,6 +159,17 @@ def open_connection(opts: RunOptions, baudrate: int, watchdog: float) -> Connect
     return Connection(link, info, url, speed, sim)
 
 
+def duration_advice(speed: float) -> str:
+    """What to do when the powered run outlasted safety.max_duration (s, device time); `speed`:
+    how much faster than the wall clock the (simulated) board runs."""
+    text = ": raise safety.max_duration in the configuration if this loop needs longer"
+    if speed > 1.0:
+        text += (f"; the simulated board runs {speed:g} times faster than the wall clock, so "
+                 "the host's own work while the motor holds (analysis, design) takes that "
+                 "many times as much device time: run at a lower --speed")
+    return text
+
+
 class PoweredRun:
     """Connection, confirmation, limits, recording, checks and the stop path of one run.
 
@@ -512,7 +523,10 @@ class PoweredRun:
             cause = StopCause("error:checks", f"the host checks failed: {exc!r}", EXIT_FAILED,
                               rec.t)
         if cause is not None:
-            self.request_stop(cause.reason, cause.message, cause.exit_code, cause.t)
+            message = cause.message
+            if cause.reason == "limit:duration":
+                message += duration_advice(self.speed)
+            self.request_stop(cause.reason, message, cause.exit_code, cause.t)
 
     # ------------------------------------------------------------------ stop requests
     def request_stop(self, reason: str, message: str = "", exit_code: int = EXIT_FAILED,

@@ -149,6 +149,10 @@ def test_checks_go_on_while_a_request_is_retried(tmp_path: Path) -> None:
                                 {"connection": {"loop": "device"},
                                  "safety": {"max_duration": max_duration}})
     assert outcome.reason == "limit:duration", (outcome.reason, outcome.message)
+    # the message says what to do: the limit's name, and at a simulated speed above 1 that the
+    # host's own work takes that many times as much device time
+    assert "safety.max_duration" in outcome.message
+    assert ("lower --speed" in outcome.message) == (tr.run.speed > 1.0)
     assert outcome.stop_confirmed is True
     stop = next(e for e in s.events if e["kind"] == "stop_request")
     assert stop["during_request"] == "StartRelay"
