@@ -135,6 +135,17 @@ def true_ultimate(num, den, delay: float) -> tuple[float, float]:
     return 1.0 / abs(g(w180)), 2 * np.pi / w180
 
 
+def with_mode(num, den, delay: float, factor: float, zeta: float = 0.15
+              ) -> tuple[list[float], list[float], float]:
+    """The plant num/den with `delay` (s) times a lightly damped mode
+    wn^2 / (s^2 + 2 zeta wn s + wn^2) at `factor` times its ultimate frequency (a compliant
+    belt, a flexible mast)."""
+    _, tu = true_ultimate(num, den, delay)
+    wn = factor * 2 * np.pi / tu
+    return (list(np.array(num) * wn**2), list(np.polymul(den, [1.0, 2 * zeta * wn, wn**2])),
+            delay)
+
+
 def batch_run(name: str, noise_frac: float, *, cycles: int = 12, seed: int = 1,
               ticks_per_period: int = 100) -> tuple[RelayRecord, float, float]:
     """Relay experiment on a batch plant with d = 1, tick = Tu/ticks_per_period.

@@ -23,7 +23,7 @@ from autotune.core.lti import DelayedTF, fopdt, sopdt
 from autotune.core.model import FittedModel
 from autotune.core.validation import check_model
 from autotune.job.tune import propose_gains
-from tests.relaysim import BATCH, sim_record, simulate_tune, true_ultimate
+from tests.relaysim import BATCH, sim_record, simulate_tune, true_ultimate, with_mode
 
 CART = ([0.25], [0.048, 0.68, 1.0], 0.05)  # mock_device/scenarios/cart-wheel.toml
 MAST = ([0.9], [0.25, 1.0, 0.0], 0.06)  # mock_device/scenarios/mast-pan.toml
@@ -88,6 +88,36 @@ def test_no_dead_zone_is_reported_on_a_clean_loop():
                          resolution=0.005)
     assert ident.dead_zone_used == 0.0
     assert not any("dead zone" in w for w in ident.warnings)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_a_dead_zone_the_swing_cannot_show_is_found_by_the_fit(seed):
+    """mast-pan with a dead zone of 0.75 (10 % of the start amplitude 7.5, 13-16 % of the
+    final one): two cycles at each of two amplitudes scatter too much for the swing to show it
+    (its estimate comes out -0.07 +/- 0.66 on seed 1), yet left in it moves Ku by 7-17 %. The
+    fit of the whole record through the change of amplitude finds it; Ku and Tu from
+    python-control's frequency response of the linear plant (tests/relaysim.true_ultimate)."""
+    ku, tu = true_ultimate(*MAST)
+    _, sim, ident = _run(*MAST, ts=0.01, noise=0.03, resolution=360 / 4096, deadband=0.75,
+                         seed=seed)
+    assert ident.dead_zone_used == pytest.approx(0.75, abs=0.1)
+    assert any("dead zone" in w for w in ident.warnings)
+    assert ident.analysis.ku == pytest.approx(ku, rel=0.04)
+    assert ident.analysis.tu == pytest.approx(tu, rel=0.03)
+
+
+@pytest.mark.parametrize("case", ["cart-wheel", "cart mode 3x", "mast load"])
+def test_the_fit_finds_no_dead_zone_where_there_is_none(case):
+    """Clean loops (no dead zone) whose swing estimate scatters: the fit alone must not make
+    one up, neither from unmodelled dynamics (a mode at 3 x the ultimate frequency) nor from a
+    constant load on an integrating loop (where any dead zone fits about as well)."""
+    plant, kw = {"cart-wheel": (CART, {"noise": 0.02, "resolution": 0.05}),
+                 "cart mode 3x": (with_mode(*CART, 3.0), {"noise": 0.02, "resolution": 0.05}),
+                 "mast load": (MAST, {"noise": 0.03, "resolution": 360 / 4096, "load": 1.0})
+                 }[case]
+    for seed in (1, 2, 3):
+        _, sim, ident = _run(*plant, ts=0.01, seed=seed, **kw)
+        assert ident.dead_zone_used == 0.0, (seed, ident.dead_zone_method)
 
 
 def test_a_lag_far_beyond_the_record_is_not_offered():

@@ -55,6 +55,12 @@ from autotune.core.robust import MeasuredPoint
 
 ANALYSED_PHASES = ("precheck:rest", "precheck:direction", "precheck:breakaway", "relay")
 JOINT_SIGMAS = 3.0  # the joint fit searches the dead zone within this many standard errors
+FIT_DEAD_ZONE_GAIN = 0.5
+"""With no estimate that shows a dead zone, a dead zone found by the model fit alone is taken
+only when it brings the fit's residual to at most this fraction of the residual without it
+(a misfit of unmodelled dynamics moves it by a few per cent, a dead zone the swing's scatter
+hides by a factor of three to four: tests/bench/bench_identify.py; common practice, no
+source)."""
 
 
 @dataclass(frozen=True)
@@ -414,6 +420,20 @@ def _identify(inp: AnalysisInputs) -> Identification:
                          f"swing at the relay amplitudes says {windows[0][0]:.3g}: friction "
                          "that differs at rest and in motion, or backlash; the figure that "
                          f"explains the whole record best ({width:.3g}) was used")
+    elif (measured is None and est is not None and len(set(est.stages)) >= 2
+          and (hold is None or not hold.significant)):
+        # the swing at two amplitudes is too scattered to show a dead zone: the whole record,
+        # through the change of amplitude, may still tell it; taken only when the fit says so
+        # plainly (FIT_DEAD_ZONE_GAIN)
+        found = _joint_dead_zone(inp, an, 0.0, 0.95 * min(est.stages))
+        if found > NEGLIGIBLE_FRACTION * d_final:
+            trial = _analyse(inp, found, modes=False)
+            if trial.model.residual <= FIT_DEAD_ZONE_GAIN * an.model.residual:
+                width, an, method = found, trial, "model fit through the relay amplitudes"
+                sigma = max(0.1 * found, 0.5 * abs(found - est.raw))
+                est = replace(est, value=found, significant=True, sigma=sigma,
+                              note=f"{est.note}; the swing alone ({est.raw:.3g} +/- "
+                                   f"{est.sigma:.2g}) could not show it")
     if not an.model.reliable:
         an = _analyse(inp, width, modes=True)
     if width > 0:

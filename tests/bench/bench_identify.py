@@ -52,7 +52,13 @@ from autotune.core.identify import analysis_inputs, identify  # noqa: E402
 from autotune.core.lti import DelayedTF  # noqa: E402
 from autotune.core.pid import PidGains  # noqa: E402
 from autotune.job.tune import propose_gains  # noqa: E402
-from tests.relaysim import BATCH, sim_record, simulate_tune, true_ultimate  # noqa: E402
+from tests.relaysim import (  # noqa: E402
+    BATCH,
+    sim_record,
+    simulate_tune,
+    true_ultimate,
+    with_mode,
+)
 
 TARGET = RelayConfig().target_amplitude
 LIMIT = 30.0
@@ -85,14 +91,6 @@ def _static(num, den) -> tuple[float | None, float | None]:
     return None, num[-1] / den[-2]
 
 
-def _mode(num, den, delay, factor: float, zeta: float = 0.15):
-    """The plant times a lightly damped mode wn^2 / (s^2 + 2 zeta wn s + wn^2) at `factor`
-    times its ultimate frequency."""
-    _, tu = true_ultimate(num, den, delay)
-    wn = factor * 2 * math.pi / tu
-    return list(np.array(num) * wn**2), list(np.polymul(den, [1.0, 2 * zeta * wn, wn**2])), delay
-
-
 def cases(quick: bool) -> list[Case]:
     out: list[Case] = []
     names = list(BATCH)[::4] if quick else list(BATCH)
@@ -117,7 +115,7 @@ def cases(quick: bool) -> list[Case]:
         out.append(Case("mast load", *MAST, 0.01, noise=0.03, resolution=360 / 4096,
                         load=1.0))
         for f in (2.0, 3.0, 5.0):
-            out.append(Case(f"cart mode {f:g}x", *_mode(*CART, f), 0.01, noise=0.02,
+            out.append(Case(f"cart mode {f:g}x", *with_mode(*CART, f), 0.01, noise=0.02,
                             resolution=0.05))
         for plant, pname in ((CART, "cart"), (MAST, "mast")):
             for q in ((0.05, 0.15) if pname == "cart" else (0.1,)):
