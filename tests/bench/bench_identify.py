@@ -31,7 +31,8 @@ Columns: Ku, Tu, gain (static, or velocity for an integrating loop) and dead-zon
 cycles, the default proposal's Ms on the true plant, warnings (short tags).
 Goals (issue): Ku within 3 %, Tu within 2 %, gain within 5 %, at most 8 Tu, Ms at most 1.6.
 
-Run: .venv/bin/python tests/bench/bench_identify.py [--quick]
+Run: .venv/bin/python tests/bench/bench_identify.py [--quick] [--seeds N]
+(--seeds N: every case on noise seeds 1..N, one row each, the worst over all; default seed 1)
 """
 
 from __future__ import annotations
@@ -156,20 +157,23 @@ def main() -> None:
     worst = {"ku": 0.0, "tu": 0.0, "k": 0.0, "time": 0.0, "ms": 0.0}
     fails = []
     t_all = time.perf_counter()
-    for c in cases(quick):
+    n_seeds = int(sys.argv[sys.argv.index("--seeds") + 1]) if "--seeds" in sys.argv else 1
+    runs = [(c, seed) for c in cases(quick) for seed in range(1, n_seeds + 1)]
+    for c, seed in runs:
+        row = c.name if n_seeds == 1 else f"{c.name} #{seed}"
         ku, tu = true_ultimate(c.num, c.den, c.delay)
         k_true, kv_true = _static(c.num, c.den)
         rc = RelayConfig(max_time=max(120.0, 30.0 * tu))
         sim = simulate_tune(c.num, c.den, c.delay, ts=c.ts, relay_cfg=rc, output_limit=LIMIT,
                             pv_window=c.pv_window, noise=c.noise, resolution=c.resolution,
-                            deadband=c.deadband, load=c.load, out_delay=c.out_delay, seed=1)
+                            deadband=c.deadband, load=c.load, out_delay=c.out_delay, seed=seed)
         exp = sim.experiment
         t_run = (sim.t[sim.phase == "relay"][-1] - sim.t_pulse) / tu
         try:
             ident = identify(analysis_inputs(sim_record(sim, rc, LIMIT)))
         except Exception as exc:  # noqa: BLE001 - a benchmark row, not a crash
-            print(f"{c.name:16s} | analysis failed: {exc}")
-            fails.append(c.name)
+            print(f"{row:16s} | analysis failed: {exc}")
+            fails.append(row)
             continue
         an = ident.analysis
         e_ku, e_tu = an.ku / ku - 1, an.tu / tu - 1
@@ -185,7 +189,7 @@ def main() -> None:
         plant = DelayedTF(tuple(c.num), tuple(c.den), c.delay)
         ms = default_ms(props, plant, c.ts)
         ms_s = "-" if ms is None else ("unst" if math.isinf(ms) else f"{ms:.2f}")
-        print(f"{c.name:16s} | {100 * e_ku:+6.2f}% {100 * e_tu:+6.2f}% {100 * e_k:+6.2f}% "
+        print(f"{row:16s} | {100 * e_ku:+6.2f}% {100 * e_tu:+6.2f}% {100 * e_k:+6.2f}% "
               f"{100 * e_dz:+6.2f}% | {t_run:6.2f} {len(exp.cycles):3d} "
               f"{exp.end_reason:>9s} | {ms_s:>5s} | {an.model.kind:14s} "
               f"{tags(list(ident.warnings) + notes)}")
@@ -197,7 +201,7 @@ def main() -> None:
         if ms is not None:
             worst["ms"] = max(worst["ms"], ms)
         if exp.end_reason != "converged":
-            fails.append(f"{c.name} ({exp.end_reason})")
+            fails.append(f"{row} ({exp.end_reason})")
     print()
     print(f"worst |error|: Ku {100 * worst['ku']:.2f}% (goal 3), Tu {100 * worst['tu']:.2f}% "
           f"(goal 2), gain {100 * worst['k']:.2f}% (goal 5); longest run {worst['time']:.2f} "
