@@ -184,6 +184,32 @@ def test_joint_proposals_default_meets_the_target_on_every_condition() -> None:
 MS_SLACK = 0.02  # the design's hold model against the exact sampled loop
 
 
+def test_a_point_known_to_no_better_than_its_own_size_blocks_nothing() -> None:
+    """A fifth harmonic buried in a coarse encoder's steps (measured to +/-600 %, as on a
+    camera mast with a 10 % encoder) holds -1 inside its uncertainty for any gains: it must
+    neither make the proposals unrunnable nor their Ms at the points infinite. The points that
+    say anything still bind: the true fifth-harmonic response (python-control's frequency
+    response, control.evalfr) at +/-20 % is held to Ms 1.4 by the design."""
+    plant = sopdt(0.25, 0.6, 0.08, 0.05)
+    ku, tu = plant.ultimate_point()
+    w1 = 2 * math.pi / tu
+    pc = control.tf(plant.num, plant.den)
+    true5 = complex(control.evalfr(pc, 5j * w1)) * complex(np.exp(-5j * w1 * plant.delay))
+    good = MeasuredPoint(w1, complex(plant.freq_response(w1)), 0.02, 1)
+    junk = MeasuredPoint(5 * w1, 30.0 * true5, 6.0, 5)  # wildly off, and says so
+    spec = design.DesignSpec()
+    res = design.design_proposals([design.Condition("m", plant, ku, tu, (good, junk))], spec)
+    chosen = res.get(res.default) if res.default else None
+    assert chosen is not None and chosen.runnable, res.note
+    assert math.isfinite(float(chosen.predicted["ms_points"]))
+    honest = MeasuredPoint(5 * w1, true5, 0.2, 5)
+    res2 = design.design_proposals([design.Condition("m", plant, ku, tu, (good, honest))], spec)
+    kept = res2.get(res2.default) if res2.default else None
+    assert kept is not None and float(kept.predicted["ms_points"]) <= 1.4 + design.MS_TOLERANCE
+    # a point beyond the bound alone: nothing to judge at the points
+    assert math.isnan(robust.points_sensitivity((junk,), chosen.gains, spec.n, TS))
+
+
 def test_default_without_a_qualified_proposal_is_the_most_robust_and_says_so() -> None:
     plant = sopdt(1.0, 1.0, 0.5, 0.5)
     spec = design.DesignSpec(max_settling_time=0.01)  # no loop settles in 10 ms

@@ -489,12 +489,13 @@ def _meets_spec(pred: dict[str, float | bool], spec: DesignSpec) -> bool:
 def _not_runnable(cond: Condition, pred: dict[str, float | bool], gains: PidGains,
                   spec: DesignSpec, several: bool) -> str:
     """Why `gains` must not run on this condition ("" when they may): unstable on the model,
-    or a measured point within its uncertainty of -1."""
+    or a measured point within its uncertainty of -1 (of the points that say anything:
+    `robust.informative`)."""
     where = f" of {cond.name}" if several else ""
     if not pred["stable"]:
         return f"closed loop unstable on the model{where}"
     ts = loop_period(cond.model, spec)
-    for pt in cond.points:
+    for pt in robust.informative(cond.points):
         if robust.point_clearance(pt, gains, spec.n, ts) <= 0.0:
             return (f"at the measured point {pt.w:.3g} rad/s{where} the loop comes within the "
                     "point's uncertainty of -1: it may be unstable")

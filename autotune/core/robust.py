@@ -342,18 +342,27 @@ def point_clearance(point: MeasuredPoint, gains: PidGains, n: float = 10.0,
 
 def points_sensitivity(points: Sequence[MeasuredPoint], gains: PidGains, n: float = 10.0,
                        ts: float | None = None) -> float:
-    """Worst-case Ms over the measured points: the largest 1/clearance (`point_clearance`),
-    inf when a clearance is <= 0, nan without points."""
+    """Worst-case Ms over the measured points that bound anything (relative uncertainty below
+    MAX_POINT_UNCERTAINTY): the largest 1/clearance (`point_clearance`), inf when a clearance
+    is <= 0, nan without such points. A point known to +/-600 % (a fifth harmonic buried in a
+    coarse encoder's steps) holds -1 inside its uncertainty for any gains; it says nothing."""
+    points = informative(points)
     if not points:
         return math.nan
     worst = min(point_clearance(p, gains, n, ts) for p in points)
     return math.inf if worst <= 0.0 else 1.0 / worst
 
 
+def informative(points: Sequence[MeasuredPoint]) -> list[MeasuredPoint]:
+    """The points that say anything about a loop: relative uncertainty below
+    MAX_POINT_UNCERTAINTY (beyond it the uncertainty holds -1 for any gains)."""
+    return [p for p in points if 0.0 <= p.uncertainty < MAX_POINT_UNCERTAINTY]
+
+
 def _usable(points: Sequence[MeasuredPoint]) -> list[MeasuredPoint]:
-    """The points that can bind a design with integral action: w > 0 and an uncertainty below
-    MAX_POINT_UNCERTAINTY (the static gain never binds one: |L(0)| is infinite)."""
-    return [p for p in points if p.w > 0.0 and 0.0 <= p.uncertainty < MAX_POINT_UNCERTAINTY]
+    """The points that can bind a design with integral action: `informative` ones with w > 0
+    (the static gain never binds one: |L(0)| is infinite)."""
+    return [p for p in informative(points) if p.w > 0.0]
 
 
 def _point_exclusions(a: np.ndarray, b: np.ndarray, u: np.ndarray, r: float
