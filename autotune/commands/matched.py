@@ -28,6 +28,7 @@ from autotune.commands.sessions import (
 from autotune.config import LoopConfig
 from autotune.core import design
 from autotune.core.conditions import compare_figures, loop_mismatch
+from autotune.core.matching import RISE_MATCH, match_rise_times, rise_spread
 from autotune.errors import EXIT_OK
 from autotune.job.job import JobOutcome
 from autotune.job.plan import PlanOutcome, run_plan
@@ -36,21 +37,9 @@ from autotune.job.requests import JobRequest
 from autotune.recorder import write_atomic, write_result
 from autotune.ui.app import run_job
 
-RISE_MATCH = 0.05
-"""Predicted rise times within this fraction of each other make two closed loops alike (a
-drive base drives straight when its wheels answer a common setpoint alike; common practice, no
-source)."""
-
 
 def _rise_times(p: design.Proposal) -> dict[str, float]:
     return {f.name: float(f.predicted["rise_time"]) for f in p.per_condition}
-
-
-def rise_spread(times: Sequence[float]) -> float:
-    """(largest - smallest) / smallest of the rise times (s); nan when one is not finite."""
-    if not times or not all(math.isfinite(t) and t > 0 for t in times):
-        return math.nan
-    return (max(times) - min(times)) / min(times)
 
 
 def matched_report(names: Sequence[str], paths: Sequence[str | Path]
@@ -62,8 +51,12 @@ def matched_report(names: Sequence[str], paths: Sequence[str | Path]
     dead zone, each model's parameters: its time constants), the joint design's proposals on
     all loops, and the choice: "common" when the joint default keeps the Ms target on every
     loop and its predicted rise times agree within RISE_MATCH, else "per-loop" (each loop's
-    own default design, the same design on that loop alone) with the reason. Gains that make
-    the closed loops alike where the common ones do not are not sought here."""
+    own gains, with the reason). The per-loop gains are those of `matching.match_rise_times`:
+    the slowest loop keeps its own default, each faster one is slowed along its own robust
+    designs until the predicted rise times agree (report["per_loop"]: each loop's gains, rise
+    time (s), overshoot (%), Ms; report["match"]: which gains ("common" or "per-loop"), whether
+    they are alike, the predicted rise-time spread and the reason, also when they cannot
+    be matched)."""
     loaded = [load_session(str(p), n) for n, p in zip(names, paths, strict=True)]
     # different axes by design; the units and the tick must agree
     why = loop_mismatch(list(names), [dataclasses.replace(s.loop, axis=0) for s in loaded])
@@ -113,20 +106,36 @@ def matched_report(names: Sequence[str], paths: Sequence[str | Path]
                 f"the common {common.name} (kp {common.gains.kp:.4g}, ki {common.gains.ki:.4g}"
                 f"/s, kd {common.gains.kd:.4g} s) keeps the Ms target on every loop and their "
                 f"predicted rise times agree within {spread * 100:.1f} %")
-    if choice == "per-loop":  # each loop's own design (the same design, on that loop alone)
-        own: dict[str, Any] = {}
-        for s in used:
-            mine = design.design_proposals([s.condition] if s.condition else [], spec_of(s))
-            p = mine.get(mine.default) if mine.default else None
-            own[s.name] = None if p is None else {
-                "proposal": p.name, "kp": p.gains.kp, "ki": p.gains.ki, "kd": p.gains.kd,
-                "rise_time": float(p.predicted["rise_time"])}
-        report["per_loop"] = own
-        for name, g in own.items():
-            if g is not None:
-                lines.append(f"{name}: own {g['proposal']}: kp {g['kp']:.4g}, ki "
-                             f"{g['ki']:.4g}/s, kd {g['kd']:.4g} s, predicted rise time "
-                             f"{g['rise_time']:.3g} s")
+    if choice == "per-loop":  # each loop's own gains, matched where they can be
+        match = match_rise_times([dataclasses.replace(s.condition, name=s.name)
+                                  for s in used if s.condition], [spec_of(s) for s in used])
+        report["per_loop"] = {lp.name: lp.as_dict(sp) for lp, sp in
+                              zip(match.loops, [spec_of(s) for s in used], strict=True)}
+        report["match"] = {"gains": "per-loop", "matched": match.matched,
+                           "reference": match.reference, "rise_time": match.rise_time,
+                           "rise_spread": match.spread, "tolerance": match.tolerance,
+                           "reason": match.reason}
+        for lp in match.loops:
+            p = lp.proposal
+            if p is None:
+                lines.append(f"{lp.name}: no safe design of its own")
+                continue
+            role = "reference" if lp.reference else ("matched" if lp.matched else "own")
+            lines.append(f"{lp.name}: {role} {p.name}: kp {p.gains.kp:.4g}, ki "
+                         f"{p.gains.ki:.4g}/s, kd {p.gains.kd:.4g} s, b "
+                         f"{p.setpoint_weight:g}; predicted rise time {lp.rise_time:.3g} s, "
+                         f"overshoot {lp.overshoot:.3g} %, Ms {lp.ms:.3g}")
+        spread = "-" if math.isnan(match.spread) else f"{match.spread * 100:.1f} %"
+        lines.append(f"per-loop rise-time spread: {spread}: {match.reason}")
+        if match.matched:
+            reason += f"; {match.reason}"
+        else:
+            reason += f"; per-loop gains not matched: {match.reason}"
+    elif choice == "common":
+        report["match"] = {"gains": "common", "matched": True, "reference": None,
+                           "rise_time": max(report["common"]["rise_time"].values()),
+                           "rise_spread": report["common"]["rise_spread"],
+                           "tolerance": RISE_MATCH, "reason": reason}
     report.update(choice=choice, reason=reason)
     lines.append(f"choice: {choice}: {reason}")
     return report, lines

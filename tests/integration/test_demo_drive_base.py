@@ -47,6 +47,15 @@ def test_unattended_drive_base_demo_writes_every_loop_and_the_summary(tmp_path: 
         assert common["rise_spread"] <= RISE_MATCH
     else:
         assert set(matched["per_loop"]) == {"left", "right"}
+        for lp in matched["per_loop"].values():
+            assert {"kp", "ki", "kd", "rise_time", "ms", "matched"} <= set(lp)
+    # which gains are matched, and their predicted rise-time spread
+    match = matched["match"]
+    assert match["gains"] == matched["choice"]
+    if match["matched"]:
+        assert match["rise_spread"] <= RISE_MATCH
+    else:
+        assert match["reason"] in matched["reason"]
     text = (out / "summary.txt").read_text()
     assert "matched loops: left, right" in text and "choice:" in text
     assert f"summary: {out / 'summary.json'}" in proc.stdout
