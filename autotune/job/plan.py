@@ -20,9 +20,14 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+from autotune.cautions import CAUTION_ITEMS, CAUTION_TITLE
 from autotune.config import LoopConfig, check_against_device
+from autotune.core.cascade import DriveGeometry
+from autotune.core.pid import PidGains
+from autotune.core.steptest import model_from_dict
 from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
 from autotune.gainsfile import GainsFileError, read_gains_file
+from autotune.job.heading import HeadingSettings, Wheel, run_heading
 from autotune.job.job import JobOutcome, Quiet, TuningJob
 from autotune.job.limits import load_limits, start_samples
 from autotune.job.powered import Connection, open_connection
@@ -116,19 +121,29 @@ def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
     board = request.board
     opts = RunOptions(port=board.port, plant=board.plant, speed=board.speed,
                       faults=board.faults, seed=board.seed, yes=request.yes)
-    watchdog = min(cfg.for_loop(loop).safety.watchdog for loop in cfg.plan)
+    wheels_of = [loop for loop in cfg.plan if loop.role != "heading"]
+    watchdog = min(cfg.for_loop(loop).safety.watchdog for loop in wheels_of)
     outcome = PlanOutcome(EXIT_OK, "done", f"{len(runs)} loops tuned", runs)
     conn = open_connection(opts, cfg.connection.baudrate, watchdog)
     try:
         info = conn.info
-        for loop in cfg.plan:
+        for loop in wheels_of:
             check_against_device(cfg.for_loop(loop), info.max_output, info.axis_count,
                                  info.tick)
         conn.link.start_heartbeat()
         say(f"connected to {info.device_name or 'device'} ({info.axis_count} axes, tick "
             f"{info.tick * 1000:g} ms) on {board.port}: a plan of {len(runs)} loops")
-        _preload_limits(conn, request, runs, say)
-        for run in runs:
+        _preload_limits(conn, request, [r for r in runs if r.loop.role != "heading"], say)
+        for i, run in enumerate(runs):
+            if run.loop.role == "heading":
+                say(f"loop {run.loop.name} (heading, on the two wheel loops before it)")
+                run.outcome = _run_heading_loop(conn, request, runs[:i], run, say)
+                if run.outcome.exit_code != EXIT_OK:
+                    outcome.exit_code = run.outcome.exit_code
+                    outcome.reason = run.outcome.reason
+                    outcome.message = f"loop {run.loop.name}: {run.outcome.message}"
+                    break
+                continue
             say(f"loop {run.loop.name} (axis {run.loop.axis}, {run.loop.role})")
             loop_req = replace(request, cfg=cfg.for_loop(run.loop), out_dir=run.out_dir,
                                gains_file=None)
@@ -150,6 +165,51 @@ def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
             outcome.summary_path = write_result(request.out_dir / SUMMARY_FILE,
                                                 plan_summary(outcome))
     return outcome
+
+
+def _wheel_of(run: LoopRun) -> Wheel:
+    """A wheel loop that ended well as the heading loop's inner loop: its identified model
+    (result.json) and its accepted gains (its gains file, else the default proposal)."""
+    out = run.outcome
+    result = _result_of(run)
+    model = model_from_dict(result.get("model") or {})
+    if out is None or model is None:
+        raise UserError(f"loop {run.loop.name}: no identified model for the heading loop",
+                        exit_code=EXIT_FAILED)
+    if out.gains_path is not None and Path(out.gains_path).is_file():
+        rec = read_gains_file(out.gains_path)
+        return Wheel(run.loop.axis, model, rec.gains, rec.setpoint_weight,
+                     rec.deriv_filter_n, rec.tracking_time)
+    g = _gains_of(out, result)
+    if g is None:
+        raise UserError(f"loop {run.loop.name}: no gains for the heading loop",
+                        exit_code=EXIT_FAILED)
+    prop = next(p for p in result.get("proposals") or () if p.get("default"))
+    return Wheel(run.loop.axis, model, PidGains(g["kp"], g["ki"], g["kd"]),
+                 float(prop.get("setpoint_weight", 1.0)))
+
+
+def _run_heading_loop(conn: Connection, request: JobRequest, before: list[LoopRun],
+                      run: LoopRun, say: Callable[[str], None]) -> JobOutcome:
+    """The heading loop on the two matched wheel loops before it (left, then right):
+    cautions and the same typed confirmation (--yes stands for it), then
+    autotune.job.heading.run_heading; its outcome as a JobOutcome."""
+    left, right = (_wheel_of(r) for r in before if r.loop.role == "matched")
+    loop = run.loop
+    for line in (CAUTION_TITLE, *CAUTION_ITEMS):
+        say(line)
+    if not request.yes:
+        raise UserError("the heading loop powers both wheels: run it with --yes after "
+                        "reading the cautions (typing yes at the prompt is not offered "
+                        "here yet)", exit_code=EXIT_USAGE)
+    assert loop.wheel_radius is not None and loop.track_width is not None  # validated
+    settings = HeadingSettings(DriveGeometry(loop.wheel_radius, loop.track_width),
+                               host_ticks=loop.host_ticks)
+    res = run_heading(conn.link, conn.info.tick, conn.speed, left, right, settings,
+                      run.out_dir, say, header={"config": request.cfg.to_dict()})
+    return JobOutcome(res.exit_code, res.reason, res.message, res.result,
+                      session_path=res.session_path, result_path=res.result_path,
+                      stop_confirmed=res.stop_confirmed)
 
 
 def _result_of(run: LoopRun) -> dict[str, Any]:
