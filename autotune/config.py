@@ -339,8 +339,24 @@ class Config:
         if not self.plan:
             d.pop("plan", None)  # a one-loop run's header is as it always was
         else:
-            d["plan"] = [dict(loop, limits=dict(loop["limits"])) for loop in d["plan"]]
+            d["plan"] = [_loop_dict(loop) for loop in d["plan"]]
         return d
+
+
+HEADING_KEYS = ("wheel_radius", "track_width", "host_ticks")
+"""The [[loop]] keys of a "heading" loop only."""
+
+
+def _loop_dict(loop: dict[str, Any]) -> dict[str, Any]:
+    """A [[loop]] as plain data: its limits a table; the heading keys only on a heading loop,
+    its axis not there (it has none of its own)."""
+    out = dict(loop, limits=dict(loop["limits"]))
+    if out["role"] == "heading":
+        out.pop("axis", None)
+    else:
+        for key in HEADING_KEYS:
+            out.pop(key, None)
+    return out
 
 
 SECTIONS: dict[str, type] = {

@@ -134,46 +134,73 @@ class _Loop:
         self.pending: dict[int, dict[float, Any]] = {left.axis: {}, right.axis: {}}
         self.ticks = 0
         self.prev = (0.0, 0.0)
+        self.nak0 = getattr(link, "last_nak", None)
         self.relay_t: list[float] = []
         self.relay_theta: list[float] = []
         self.relay_u: list[float] = []
 
     def send_u(self, u: float) -> None:
         """The differential setpoint u (rad/s) on the base speed: left base - u, right
-        base + u (each acknowledged by the board before the next)."""
+        base + u (both sent at once, the replies not awaited: the board's setpoints come
+        back in the samples, a refusal is counted by the link)."""
         self.u = u
         base = self.s.base_speed
-        self.link.request(SetSetpoint(self.left.axis, base - u))
-        self.link.request(SetSetpoint(self.right.axis, base + u))
+        self.link.send(SetSetpoint(self.left.axis, base - u))
+        self.link.send(SetSetpoint(self.right.axis, base + u))
+
+    def _feed(self, rec: Any) -> tuple[float, Any, Any] | None:
+        """One sample in: the tick (t, left, right) once both axes' samples of it are in,
+        the heading integrated up to it; else None."""
+        if rec.axis not in self.pending:
+            return None
+        key = round(rec.t / self.tick)
+        self.pending[rec.axis][key] = rec
+        other = self.right.axis if rec.axis == self.left.axis else self.left.axis
+        if key not in self.pending[other]:
+            return None
+        lrec = self.pending[self.left.axis].pop(key)
+        rrec = self.pending[self.right.axis].pop(key)
+        for side in self.pending.values():  # older unpaired ticks will not pair now
+            for k in [k for k in side if k < key]:
+                del side[k]
+        t = lrec.t
+        if self.t_prev is not None:
+            self.theta = heading_step(self.theta, self.prev[0], self.prev[1],
+                                      self.s.geometry, t - self.t_prev)
+        self.t_prev, self.prev = t, (lrec.pv, rrec.pv)
+        self.ticks += 1
+        return t, lrec, rrec
+
+    def _check_faults(self) -> None:
+        """A fault latched on either axis, or a setpoint the board refused: stop."""
+        nak = getattr(self.link, "last_nak", None)
+        if nak is not None and nak is not self.nak0:
+            raise HeadingStopped(f"the board refused a setpoint (code {nak[1].code})")
+        for fault in self.link.poll_faults():
+            raise HeadingStopped(f"the board latched a fault on axis {fault.axis} "
+                                 f"(code {fault.code})")
 
     def next_tick(self) -> tuple[float, Any, Any]:
         """The next device tick with both axes' samples: (t, left, right); the heading
-        integrated up to it and the tick recorded."""
+        integrated up to it."""
         while True:
-            for fault in self.link.poll_faults():
-                raise HeadingStopped(f"the board latched a fault on axis {fault.axis} "
-                                     f"(code {fault.code})")
+            self._check_faults()
             rec = self.link.next_sample(timeout=self.wait)
             if rec is None:
                 raise HeadingStopped("no samples from the board")
-            if rec.axis not in self.pending:
-                continue
-            key = round(rec.t / self.tick)
-            self.pending[rec.axis][key] = rec
-            other = self.right.axis if rec.axis == self.left.axis else self.left.axis
-            if key in self.pending[other]:
-                lrec = self.pending[self.left.axis].pop(key)
-                rrec = self.pending[self.right.axis].pop(key)
-                for side in self.pending.values():  # older unpaired ticks will not pair now
-                    for k in [k for k in side if k < key]:
-                        del side[k]
-                t = lrec.t
-                if self.t_prev is not None:
-                    self.theta = heading_step(self.theta, self.prev[0], self.prev[1],
-                                              self.s.geometry, t - self.t_prev)
-                self.t_prev, self.prev = t, (lrec.pv, rrec.pv)
-                self.ticks += 1
-                return t, lrec, rrec
+            got = self._feed(rec)
+            if got is not None:
+                return got
+
+    def catch_up(self, phase: str) -> None:
+        """Take in every sample queued while the host was busy (the analysis, the design):
+        the heading integrated over them and each tick recorded under `phase`, no action
+        taken on them (the next decision is on fresh samples)."""
+        self._check_faults()
+        for rec in self.link.drain_samples():
+            got = self._feed(rec)
+            if got is not None:
+                self.record(*got, phase)
 
     def record(self, t: float, lrec: Any, rrec: Any, phase: str) -> None:
         if phase == "relay":
@@ -203,9 +230,10 @@ def run_heading(link: Any, tick: float, speed: float, left: Wheel, right: Wheel,
     s = settings
     h = s.host_ticks * tick
     t_l, t_r = inner_loops(left, right, tick)
-    # the host answers a tick's samples in the next tick at the earliest: one tick of dead
-    # time of the outer loop's own, besides the hold of its period (the design's)
-    plant = outer_plant(t_l, t_r, s.geometry, delay=tick)
+    # dead time of the outer loop's own, besides the hold of its period (the design's): the
+    # host answers a tick's samples in the next tick at the earliest (one tick), and the
+    # forward-Euler heading holds each tick's speeds over the tick after it (half a tick)
+    plant = outer_plant(t_l, t_r, s.geometry, delay=1.5 * tick)
     expected = outer_ultimate(plant, s.relay_ticks * tick)
     out_dir.mkdir(parents=True, exist_ok=True)
     session_path = out_dir / "session.jsonl"
@@ -237,6 +265,7 @@ def run_heading(link: Any, tick: float, speed: float, left: Wheel, right: Wheel,
             loop.record(t, lrec, rrec, "settle")
             t, lrec, rrec = loop.next_tick()
         # ---- relay on the heading reached, every relay_ticks device ticks
+        loop.catch_up("settle")
         centre = loop.theta
         loop.sp = centre
         say("heading: relay on the heading")
@@ -286,7 +315,8 @@ def run_heading(link: Any, tick: float, speed: float, left: Wheel, right: Wheel,
         if sep.warning:
             say(f"heading: warning: {sep.warning}")
             writer.event(t, "separation_warning", sep.as_dict())
-        # ---- the outer confirmation step
+        # ---- the outer confirmation step, on fresh samples
+        loop.catch_up("design")
         result.update(_step(loop, chosen, s, h, writer))
         pred = chosen.predicted.get("overshoot", math.nan)
         meas = result["step"]["overshoot"]

@@ -20,17 +20,23 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-from autotune.cautions import CAUTION_ITEMS, CAUTION_TITLE
 from autotune.config import LoopConfig, check_against_device
 from autotune.core.cascade import DriveGeometry
 from autotune.core.pid import PidGains
 from autotune.core.steptest import model_from_dict
-from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
+from autotune.errors import (
+    EXIT_ABORTED,
+    EXIT_FAILED,
+    EXIT_LINK,
+    EXIT_OK,
+    EXIT_USAGE,
+    UserError,
+)
 from autotune.gainsfile import GainsFileError, read_gains_file
 from autotune.job.heading import HeadingSettings, Wheel, run_heading
 from autotune.job.job import JobOutcome, Quiet, TuningJob
 from autotune.job.limits import load_limits, start_samples
-from autotune.job.powered import Connection, open_connection
+from autotune.job.powered import CAUTIONS, Connection, open_connection
 from autotune.job.requests import JobRequest
 from autotune.job.terms import RunOptions
 from autotune.recorder import check_out_dir, write_result
@@ -106,10 +112,13 @@ def quiet_loop(request: JobRequest, connection: Connection, loop: LoopConfig) ->
 
 
 def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
-             say: Callable[[str], None] = lambda _line: None) -> PlanOutcome:
+             say: Callable[[str], None] = lambda _line: None,
+             confirm: Callable[[Any], bool] | None = None) -> PlanOutcome:
     """Run the plan of `request.cfg` (see the module docstring); `run_loop` runs each loop's
-    job (see RunLoop); `say` prints the plan's own lines. Never leaves a motor powered; the
-    connection is closed on every path out."""
+    job (see RunLoop); `say` prints the plan's own lines; `confirm` asks the operator before
+    a heading loop powers the wheels (as `RunOptions.confirm`: given the device info, True to
+    go ahead; None: --yes stands for it, else the heading loop is refused). Never leaves a
+    motor powered; the connection is closed on every path out."""
     cfg = request.cfg
     if not cfg.plan:
         raise UserError("the configuration holds no [[loop]] plan", exit_code=EXIT_USAGE)
@@ -137,7 +146,7 @@ def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
         for i, run in enumerate(runs):
             if run.loop.role == "heading":
                 say(f"loop {run.loop.name} (heading, on the two wheel loops before it)")
-                run.outcome = _run_heading_loop(conn, request, runs[:i], run, say)
+                run.outcome = _run_heading_loop(conn, request, runs[:i], run, say, confirm)
                 if run.outcome.exit_code != EXIT_OK:
                     outcome.exit_code = run.outcome.exit_code
                     outcome.reason = run.outcome.reason
@@ -190,18 +199,24 @@ def _wheel_of(run: LoopRun) -> Wheel:
 
 
 def _run_heading_loop(conn: Connection, request: JobRequest, before: list[LoopRun],
-                      run: LoopRun, say: Callable[[str], None]) -> JobOutcome:
-    """The heading loop on the two matched wheel loops before it (left, then right):
-    cautions and the same typed confirmation (--yes stands for it), then
-    autotune.job.heading.run_heading; its outcome as a JobOutcome."""
+                      run: LoopRun, say: Callable[[str], None],
+                      confirm: Callable[[Any], bool] | None) -> JobOutcome:
+    """The heading loop on the two matched wheel loops before it (left, then right): the
+    cautions and the same deliberate confirmation as every powered run (`confirm`, else
+    --yes, else refused), then autotune.job.heading.run_heading; its outcome as a
+    JobOutcome."""
     left, right = (_wheel_of(r) for r in before if r.loop.role == "matched")
     loop = run.loop
-    for line in (CAUTION_TITLE, *CAUTION_ITEMS):
+    for line in CAUTIONS:
         say(line)
-    if not request.yes:
-        raise UserError("the heading loop powers both wheels: run it with --yes after "
-                        "reading the cautions (typing yes at the prompt is not offered "
-                        "here yet)", exit_code=EXIT_USAGE)
+    if confirm is not None:
+        if not confirm(conn.info):
+            raise UserError("not confirmed; nothing was powered", exit_code=EXIT_ABORTED)
+    elif request.yes:
+        say("--yes given: going ahead without asking.")
+    else:
+        raise UserError("refusing to power the wheels without confirmation: nobody to ask; "
+                        "pass --yes once the cautions above are met", exit_code=EXIT_USAGE)
     assert loop.wheel_radius is not None and loop.track_width is not None  # validated
     settings = HeadingSettings(DriveGeometry(loop.wheel_radius, loop.track_width),
                                host_ticks=loop.host_ticks)
