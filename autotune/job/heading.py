@@ -80,7 +80,8 @@ class HeadingSettings:
     (rad); relay_cycles: cycles recorded (the first two are dropped as the transient);
     step_size: the heading step of the confirmation (rad); output_limit: the largest
     differential setpoint the outer loop may ask (rad/s); ms_target: the outer design's Ms
-    bound; overshoot_tolerance: measured minus predicted overshoot allowed (percentage points).
+    bound (1.3: gentler than a single loop's 1.4, the outer model carries the errors of both
+    wheels' identified models; common practice, no source); overshoot_tolerance: measured minus predicted overshoot allowed (percentage points).
     """
 
     geometry: DriveGeometry
@@ -93,7 +94,7 @@ class HeadingSettings:
     relay_cycles: int = 8
     step_size: float = 0.3
     output_limit: float = 2.0
-    ms_target: float = 1.4
+    ms_target: float = 1.3
     overshoot_tolerance: float = 5.0
 
 

@@ -21,6 +21,7 @@ from autotune.gainsfile import read_gains_file
 from autotune.job.plan import run_plan
 from autotune.job.requests import BoardRequest, JobRequest
 from autotune.recorder import read_session
+from mock_device.config import load_config
 
 TICK = 0.01  # s, the scenario's device tick
 HOST_TICKS = 5  # the heading loop's period: 50 ms
@@ -40,11 +41,14 @@ def heading_plan():
     }, "plan.toml")
 
 
-def pc_wheel_loop(folder: Path) -> control.TransferFunction:
-    """python-control's closed loop of one wheel: its identified model (result.json) with the
-    dead time and the board hold's half tick as a 6th-order Padé, its accepted gains (gains
-    file), derivative on the measurement, proportional on b sp - pv."""
+def pc_wheel_loop(folder: Path, true_model: bool = False) -> control.TransferFunction:
+    """python-control's closed loop of one wheel: its identified model (result.json; or, with
+    true_model, the scenario file's) with the dead time and the board hold's half tick as a
+    6th-order Padé, its accepted gains (gains file), derivative on the measurement,
+    proportional on b sp - pv."""
     m = model_from_dict(json.loads((folder / "result.json").read_text())["model"])
+    if true_model:
+        m = load_config("drive-base").axis_configs[0 if folder.name == "left" else 1].plant
     rec = read_gains_file(folder / "gains.toml")
     g, b, n = rec.gains, rec.setpoint_weight, rec.deriv_filter_n
     pn, pd = control.pade(m.delay + TICK / 2, 6)
@@ -97,18 +101,27 @@ def test_heading_loop_on_the_two_wheel_loops(tmp_path: Path) -> None:
     # heading's half tick and the relay's hold (half a tick) as a 6th-order Padé; Ku the
     # gain margin, Tu from the phase crossover frequency (control.margin, python-control)
     pn, pd = control.pade(TICK + TICK / 2 + TICK / 2, 6)
-    outer = (R / W) * (pc_wheel_loop(out / "left") + pc_wheel_loop(out / "right")) \
-        * control.tf([1], [1, 0]) * control.tf(pn, pd)
-    gm, _pm, wcg, _wcp = control.margin(outer)
-    ku_true, tu_true = gm, 2 * math.pi / wcg
-    print(f"heading: Ku {result['ultimate_gain']:.3f} (python-control {ku_true:.3f}), "
-          f"Tu {result['ultimate_period']:.3f} s ({tu_true:.3f} s), step overshoot "
+    truth = {}
+    for which in (False, True):
+        outer = (R / W) * (pc_wheel_loop(out / "left", which)
+                           + pc_wheel_loop(out / "right", which)) \
+            * control.tf([1], [1, 0]) * control.tf(pn, pd)
+        gm, _pm, wcg, _wcp = control.margin(outer)
+        truth[which] = gm, 2 * math.pi / wcg
+    (ku_true, tu_true), (ku_plant, tu_plant) = truth[False], truth[True]
+    print(f"heading: Ku {result['ultimate_gain']:.3f} (python-control {ku_true:.3f} on the "
+          f"identified wheels, {ku_plant:.3f} on the true ones), Tu "
+          f"{result['ultimate_period']:.3f} s ({tu_true:.3f} s, {tu_plant:.3f} s), overshoot "
           f"{result['step']['overshoot']:.1f} % (predicted "
           f"{result['step']['predicted_overshoot']:.1f} %), separation "
           f"{result['separation']['ratio']:.2f}")
     assert result["ultimate_period"] == pytest.approx(tu_true, rel=0.10)
-    # the describing function on the heading's first harmonic
-    assert result["ultimate_gain"] == pytest.approx(ku_true, rel=0.10)
+    assert result["ultimate_period"] == pytest.approx(tu_plant, rel=0.10)
+    # the describing function on the heading's first harmonic: 1-16 % from the truth on the
+    # identified wheels over 7 runs (those models differ from run to run, and from the true
+    # wheels, by more than the heading's relay does), 6-7 % from the truth on the true ones
+    assert result["ultimate_gain"] == pytest.approx(ku_true, rel=0.20)
+    assert result["ultimate_gain"] == pytest.approx(ku_plant, rel=0.12)
     assert result["expected_ultimate"][0] == pytest.approx(ku_true, rel=0.02)
     # the 4x separation (common practice, no source) holds with these wheel loops
     assert result["separation"]["ok"] is True and result["separation"]["ratio"] >= 4.0
