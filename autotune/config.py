@@ -40,9 +40,12 @@ from autotune.core.relay import RelayPlan
 from autotune.errors import ConfigError
 
 LoopMode = Literal["auto", "host", "device"]
-LoopRole = Literal["single", "matched"]
+LoopRole = Literal["single", "matched", "heading"]
 """A loop of a plan: "single" is tuned on its own; "matched" loops (two wheels of a drive base,
-say) are tuned in turn and then compared, for gains that make them respond alike."""
+say) are tuned in turn and then compared, for gains that make them respond alike; "heading" is
+the loop on top of the two matched wheel loops before it (the drive base's heading from the
+wheel-speed difference, run on the host every `host_ticks` device ticks; it has no axis of its
+own and needs wheel_radius and track_width)."""
 MAX_LOOPS = 8
 """Most loops a plan may hold (a drive base and a few more; the board's axes bound it too)."""
 LOOP_NAME_CHARS = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_-")
@@ -268,13 +271,19 @@ class LoopConfig:
         None = connection.sign.
     limits: the ``[safety]`` keys set for this loop (``[loop.limits]``), as (key, value) pairs;
         every other limit is the ``[safety]`` one.
+    wheel_radius, track_width: the drive base's wheel radius and track width (m; a "heading"
+        loop's, turning wheel speeds in rad/s into the heading rate).
+    host_ticks: a "heading" loop's period in device ticks (the host runs it).
     """
 
     name: str
-    axis: int
+    axis: int = -1
     role: LoopRole = "single"
     sign: int | None = None
     limits: tuple[tuple[str, Any], ...] = ()
+    wheel_radius: float | None = None
+    track_width: float | None = None
+    host_ticks: int = 5
 
 
 @dataclass(frozen=True)
@@ -330,8 +339,24 @@ class Config:
         if not self.plan:
             d.pop("plan", None)  # a one-loop run's header is as it always was
         else:
-            d["plan"] = [dict(loop, limits=dict(loop["limits"])) for loop in d["plan"]]
+            d["plan"] = [_loop_dict(loop) for loop in d["plan"]]
         return d
+
+
+HEADING_KEYS = ("wheel_radius", "track_width", "host_ticks")
+"""The [[loop]] keys of a "heading" loop only."""
+
+
+def _loop_dict(loop: dict[str, Any]) -> dict[str, Any]:
+    """A [[loop]] as plain data: its limits a table; the heading keys only on a heading loop,
+    its axis not there (it has none of its own)."""
+    out = dict(loop, limits=dict(loop["limits"]))
+    if out["role"] == "heading":
+        out.pop("axis", None)
+    else:
+        for key in HEADING_KEYS:
+            out.pop(key, None)
+    return out
 
 
 SECTIONS: dict[str, type] = {
@@ -453,12 +478,13 @@ def _plan_from_list(value: Any, path: str) -> tuple[LoopConfig, ...]:
             if key not in _LOOP_KEYS:
                 known = ", ".join(sorted(_LOOP_KEYS))
                 raise ConfigError(path, f"{where}.{key}", f"unknown key (known keys: {known})")
-        for key in ("name", "axis"):
+        for key in ("name",) if table.get("role") == "heading" else ("name", "axis"):
             if key not in table:
                 raise ConfigError(path, f"{where}.{key}", "must be given")
         hints = typing.get_type_hints(LoopConfig)
         kwargs: dict[str, Any] = {}
-        for key in ("name", "axis", "role", "sign"):
+        for key in ("name", "axis", "role", "sign", "wheel_radius", "track_width",
+                    "host_ticks"):
             if key in table:
                 try:
                     kwargs[key] = _coerce(hints[key], table[key])
@@ -494,6 +520,9 @@ def _validate_plan(cfg: Config, src: str) -> None:
             raise ConfigError(src, f"{where}.name", f"{loop.name!r} is taken by "
                               f"loop[{names[loop.name.lower()]}]")
         names[loop.name.lower()] = i
+        if loop.role == "heading":
+            _validate_heading(plan, i, src)
+            continue
         if not 0 <= loop.axis <= 255:
             raise ConfigError(src, f"{where}.axis", f"must be 0..255, got {loop.axis}")
         if loop.axis in axes:
@@ -507,7 +536,24 @@ def _validate_plan(cfg: Config, src: str) -> None:
         raise ConfigError(src, f"loop[{i}].role",
                           "a matched loop needs another matched loop to be compared with")
     for loop in plan:
-        validate(cfg.for_loop(loop), source=f"{src}, loop {loop.name!r}")
+        if loop.role != "heading":
+            validate(cfg.for_loop(loop), source=f"{src}, loop {loop.name!r}")
+
+
+def _validate_heading(plan: tuple[LoopConfig, ...], i: int, src: str) -> None:
+    """A heading loop: two matched loops before it (its wheels), its geometry given (m, > 0),
+    host_ticks 1..1000."""
+    loop = plan[i]
+    where = f"loop[{i}]"
+    if sum(lp.role == "matched" for lp in plan[:i]) != 2:
+        raise ConfigError(src, f"{where}.role", "a heading loop comes after exactly two "
+                          "matched loops (its left and right wheel, in that order)")
+    for key in ("wheel_radius", "track_width"):
+        v = getattr(loop, key)
+        if v is None or not (math.isfinite(v) and v > 0):
+            raise ConfigError(src, f"{where}.{key}", f"must be given, in m (> 0), got {v!r}")
+    if not 1 <= loop.host_ticks <= 1000:
+        raise ConfigError(src, f"{where}.host_ticks", f"must be 1..1000, got {loop.host_ticks}")
 
 
 def load_config(path: str | Path | None) -> Config:

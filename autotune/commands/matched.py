@@ -35,7 +35,7 @@ from autotune.job.plan import PlanOutcome, run_plan
 from autotune.job.powered import Connection
 from autotune.job.requests import JobRequest
 from autotune.recorder import write_atomic, write_result
-from autotune.ui.app import run_job
+from autotune.ui.app import Terminal, TerminalOperator, run_job
 
 
 def _rise_times(p: design.Proposal) -> dict[str, float]:
@@ -148,7 +148,16 @@ def run_plan_verb(args: argparse.Namespace, req: JobRequest) -> int:
     def run_loop(r: JobRequest, conn: Connection, loop: LoopConfig) -> JobOutcome:
         return run_job(r, term=terminal_for(args), connection=conn)
 
-    outcome = run_plan(req, run_loop, say=print)
+    def confirm(info: Any) -> bool:
+        """A heading loop's confirmation: --yes, else the operator types yes (line mode)."""
+        if req.yes:
+            return True
+        term = Terminal(stdin=sys.stdin, rich=False)
+        with term:
+            return TerminalOperator(term, unattended=False).confirm_power(
+                "run the heading loop: both wheels turn together and the base steers")
+
+    outcome = run_plan(req, run_loop, say=print, confirm=confirm)
     if outcome.exit_code == EXIT_OK:
         _matched(outcome)
     if outcome.summary_path is not None:

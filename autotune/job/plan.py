@@ -21,11 +21,22 @@ from pathlib import Path
 from typing import Any
 
 from autotune.config import LoopConfig, check_against_device
-from autotune.errors import EXIT_FAILED, EXIT_LINK, EXIT_OK, EXIT_USAGE, UserError
+from autotune.core.cascade import DriveGeometry
+from autotune.core.pid import PidGains
+from autotune.core.steptest import model_from_dict
+from autotune.errors import (
+    EXIT_ABORTED,
+    EXIT_FAILED,
+    EXIT_LINK,
+    EXIT_OK,
+    EXIT_USAGE,
+    UserError,
+)
 from autotune.gainsfile import GainsFileError, read_gains_file
+from autotune.job.heading import HeadingSettings, Wheel, run_heading
 from autotune.job.job import JobOutcome, Quiet, TuningJob
 from autotune.job.limits import load_limits, start_samples
-from autotune.job.powered import Connection, open_connection
+from autotune.job.powered import CAUTIONS, Connection, open_connection
 from autotune.job.requests import JobRequest
 from autotune.job.terms import RunOptions
 from autotune.recorder import check_out_dir, write_result
@@ -101,10 +112,13 @@ def quiet_loop(request: JobRequest, connection: Connection, loop: LoopConfig) ->
 
 
 def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
-             say: Callable[[str], None] = lambda _line: None) -> PlanOutcome:
+             say: Callable[[str], None] = lambda _line: None,
+             confirm: Callable[[Any], bool] | None = None) -> PlanOutcome:
     """Run the plan of `request.cfg` (see the module docstring); `run_loop` runs each loop's
-    job (see RunLoop); `say` prints the plan's own lines. Never leaves a motor powered; the
-    connection is closed on every path out."""
+    job (see RunLoop); `say` prints the plan's own lines; `confirm` asks the operator before
+    a heading loop powers the wheels (as `RunOptions.confirm`: given the device info, True to
+    go ahead; None: --yes stands for it, else the heading loop is refused). Never leaves a
+    motor powered; the connection is closed on every path out."""
     cfg = request.cfg
     if not cfg.plan:
         raise UserError("the configuration holds no [[loop]] plan", exit_code=EXIT_USAGE)
@@ -116,19 +130,29 @@ def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
     board = request.board
     opts = RunOptions(port=board.port, plant=board.plant, speed=board.speed,
                       faults=board.faults, seed=board.seed, yes=request.yes)
-    watchdog = min(cfg.for_loop(loop).safety.watchdog for loop in cfg.plan)
+    wheels_of = [loop for loop in cfg.plan if loop.role != "heading"]
+    watchdog = min(cfg.for_loop(loop).safety.watchdog for loop in wheels_of)
     outcome = PlanOutcome(EXIT_OK, "done", f"{len(runs)} loops tuned", runs)
     conn = open_connection(opts, cfg.connection.baudrate, watchdog)
     try:
         info = conn.info
-        for loop in cfg.plan:
+        for loop in wheels_of:
             check_against_device(cfg.for_loop(loop), info.max_output, info.axis_count,
                                  info.tick)
         conn.link.start_heartbeat()
         say(f"connected to {info.device_name or 'device'} ({info.axis_count} axes, tick "
             f"{info.tick * 1000:g} ms) on {board.port}: a plan of {len(runs)} loops")
-        _preload_limits(conn, request, runs, say)
-        for run in runs:
+        _preload_limits(conn, request, [r for r in runs if r.loop.role != "heading"], say)
+        for i, run in enumerate(runs):
+            if run.loop.role == "heading":
+                say(f"loop {run.loop.name} (heading, on the two wheel loops before it)")
+                run.outcome = _run_heading_loop(conn, request, runs[:i], run, say, confirm)
+                if run.outcome.exit_code != EXIT_OK:
+                    outcome.exit_code = run.outcome.exit_code
+                    outcome.reason = run.outcome.reason
+                    outcome.message = f"loop {run.loop.name}: {run.outcome.message}"
+                    break
+                continue
             say(f"loop {run.loop.name} (axis {run.loop.axis}, {run.loop.role})")
             loop_req = replace(request, cfg=cfg.for_loop(run.loop), out_dir=run.out_dir,
                                gains_file=None)
@@ -150,6 +174,57 @@ def run_plan(request: JobRequest, run_loop: RunLoop = quiet_loop, *,
             outcome.summary_path = write_result(request.out_dir / SUMMARY_FILE,
                                                 plan_summary(outcome))
     return outcome
+
+
+def _wheel_of(run: LoopRun) -> Wheel:
+    """A wheel loop that ended well as the heading loop's inner loop: its identified model
+    (result.json) and its accepted gains (its gains file, else the default proposal)."""
+    out = run.outcome
+    result = _result_of(run)
+    model = model_from_dict(result.get("model") or {})
+    if out is None or model is None:
+        raise UserError(f"loop {run.loop.name}: no identified model for the heading loop",
+                        exit_code=EXIT_FAILED)
+    if out.gains_path is not None and Path(out.gains_path).is_file():
+        rec = read_gains_file(out.gains_path)
+        return Wheel(run.loop.axis, model, rec.gains, rec.setpoint_weight,
+                     rec.deriv_filter_n, rec.tracking_time)
+    g = _gains_of(out, result)
+    if g is None:
+        raise UserError(f"loop {run.loop.name}: no gains for the heading loop",
+                        exit_code=EXIT_FAILED)
+    prop = next(p for p in result.get("proposals") or () if p.get("default"))
+    return Wheel(run.loop.axis, model, PidGains(g["kp"], g["ki"], g["kd"]),
+                 float(prop.get("setpoint_weight", 1.0)))
+
+
+def _run_heading_loop(conn: Connection, request: JobRequest, before: list[LoopRun],
+                      run: LoopRun, say: Callable[[str], None],
+                      confirm: Callable[[Any], bool] | None) -> JobOutcome:
+    """The heading loop on the two matched wheel loops before it (left, then right): the
+    cautions and the same deliberate confirmation as every powered run (`confirm`, else
+    --yes, else refused), then autotune.job.heading.run_heading; its outcome as a
+    JobOutcome."""
+    left, right = (_wheel_of(r) for r in before if r.loop.role == "matched")
+    loop = run.loop
+    for line in CAUTIONS:
+        say(line)
+    if confirm is not None:
+        if not confirm(conn.info):
+            raise UserError("not confirmed; nothing was powered", exit_code=EXIT_ABORTED)
+    elif request.yes:
+        say("--yes given: going ahead without asking.")
+    else:
+        raise UserError("refusing to power the wheels without confirmation: nobody to ask; "
+                        "pass --yes once the cautions above are met", exit_code=EXIT_USAGE)
+    assert loop.wheel_radius is not None and loop.track_width is not None  # validated
+    settings = HeadingSettings(DriveGeometry(loop.wheel_radius, loop.track_width),
+                               host_ticks=loop.host_ticks)
+    res = run_heading(conn.link, conn.info.tick, conn.speed, left, right, settings,
+                      run.out_dir, say, header={"config": request.cfg.to_dict()})
+    return JobOutcome(res.exit_code, res.reason, res.message, res.result,
+                      session_path=res.session_path, result_path=res.result_path,
+                      stop_confirmed=res.stop_confirmed)
 
 
 def _result_of(run: LoopRun) -> dict[str, Any]:
